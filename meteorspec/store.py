@@ -1,0 +1,159 @@
+"""HDF5 output, one file per event (contract section 5, schema ``meteorspec-event/1``).
+
+Writes are atomic: the file is built under a temporary name in the same folder
+and renamed over the old one only when complete, so a crash never leaves a
+half-written file and never destroys the previous result. An existing
+``/review`` group (manual decisions) is copied into the new file unchanged.
+h5py is used only in this module.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import h5py
+import numpy as np
+
+from .errors import InputError
+from .result import EventResult
+
+SCHEMA = "meteorspec-event/1"
+
+def output_path(out_dir: str | Path, event_id: str) -> Path:
+    """``<out_dir>/<event id>.h5``."""
+    return Path(out_dir) / f"{event_id}.h5"
+
+
+def _str_array(values: list[str]) -> np.ndarray:
+    return np.array([v.encode("utf-8") for v in values], dtype=h5py.string_dtype("utf-8"))
+
+
+def _set_attr(obj: h5py.HLObject, key: str, value: Any) -> None:
+    if value is None:
+        value = np.nan
+    if isinstance(value, str):
+        obj.attrs[key] = value
+    elif isinstance(value, (list, tuple)) and value and all(isinstance(v, str) for v in value):
+        obj.attrs[key] = _str_array(list(value))
+    else:
+        obj.attrs[key] = value
+
+
+def _write_dataset(group: h5py.Group, name: str, data: Any, unit: str) -> None:
+    ds = group.create_dataset(name, data=data)
+    ds.attrs["unit"] = unit
+
+
+def _write_part(group: h5py.Group, part: dict[str, Any]) -> None:
+    """A stage's output: ``{"attrs": {...}, "datasets": {name: (array, unit)}, "groups": {...}}``."""
+    for key, value in part.get("attrs", {}).items():
+        _set_attr(group, key, value)
+    for name, (data, unit) in part.get("datasets", {}).items():
+        _write_dataset(group, name, data, unit)
+    for name, sub in part.get("groups", {}).items():
+        _write_part(group.create_group(name), sub)
+
+
+def _fill(f: h5py.File, result: EventResult) -> None:
+    f.attrs["schema"] = SCHEMA
+    f.attrs["event_id"] = result.event_id
+    f.attrs["station"] = result.station
+    f.attrs["start_utc"] = result.start_utc
+    f.attrs["software_version"] = result.software_version
+    f.attrs["status"] = result.status
+    f.attrs["flags"] = _str_array(list(result.flags))
+    f.attrs["error"] = result.error
+
+    if result.frames is not None:
+        g = f.create_group("frames")
+        g.attrs["interlaced"] = result.frames.interlaced
+        g.attrs["exposure_s"] = result.frames.exposure_s
+        _write_dataset(g, "time_s", result.frames.time_s, "s")
+        _write_dataset(g, "n_saturated_px", result.frames.n_saturated_px, "count")
+
+    if result.inputs:
+        g = f.create_group("inputs")
+        for rec in result.inputs:
+            sub = g.create_group(rec.role)
+            sub.attrs["path"] = rec.path
+            sub.attrs["sha256"] = rec.sha256
+            sub.attrs["size_bytes"] = rec.size_bytes
+
+    if result.station_values:
+        g = f.create_group("station")
+        for key, value in sorted(result.station_values.items()):
+            _set_attr(g, key, value)
+
+    for name, part in result.parts.items():
+        if part is not None:
+            _write_part(f.create_group(name), part)
+
+
+def write_event(path: str | Path, result: EventResult) -> Path:
+    """Write ``result`` to ``path`` atomically, keeping any existing ``/review`` group.
+
+    Parameters
+    ----------
+    path : str or Path
+        Final file name (``<event id>.h5``).
+    result : EventResult
+
+    Returns
+    -------
+    Path
+        The written file.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    os.close(fd)
+    tmp = Path(tmp_name)
+    try:
+        with h5py.File(tmp, "w") as f:
+            _fill(f, result)
+            if path.exists():
+                _carry_review(path, f)
+            elif "review" not in f:
+                f.create_group("review")
+        with open(tmp, "rb+") as fh:  # data on disk before the rename makes it visible
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return path
+
+
+def _carry_review(old: Path, new: h5py.File) -> None:
+    """Copy ``/review`` from the previous file; a previous file we cannot read is an error.
+
+    Refusing to overwrite an unreadable old file keeps manual decisions safe:
+    the operator sees the problem instead of losing the review log.
+    """
+    try:
+        with h5py.File(old, "r") as f:
+            if "review" in f:
+                f.copy(f["review"], new, name="review")
+            else:
+                new.create_group("review")
+    except OSError as exc:
+        raise InputError(old, f"existing output cannot be read, not overwriting it ({exc})") from None
+
+
+def read_root(path: str | Path) -> dict[str, Any]:
+    """Root attributes of an event file as plain Python values."""
+    try:
+        with h5py.File(path, "r") as f:
+            out: dict[str, Any] = {}
+            for key, value in f.attrs.items():
+                if isinstance(value, bytes):
+                    value = value.decode()
+                elif isinstance(value, np.ndarray) and value.dtype.kind in "OS":
+                    value = [v.decode() if isinstance(v, bytes) else str(v) for v in value]
+                out[key] = value
+            return out
+    except OSError as exc:
+        raise InputError(path, f"not a readable HDF5 file ({exc})") from None

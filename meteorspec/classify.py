@@ -1,0 +1,1365 @@
+"""Composition and spectral class of the meteoroid from the Na I, Mg I and Fe I line groups.
+
+Three parts:
+
+* **Composition** (contract section 6): the group intensities normalised to
+  ``na + mg + fe = 1``, with errors propagated through the normalisation.
+* **Class** in the published vocabulary (Borovicka et al. 2005, Icarus 174, 15; Vojacek et al.
+  2015, A&A 580, A67; Matlovic et al. 2019, A&A 629, A71): ``normal``, ``Na-poor``,
+  ``Na-free``, ``Na-enhanced``, ``Fe-poor``, ``iron`` or ``unclassified`` with the reason. The
+  class is judged relative to the *expected normal* (chondritic) position at the meteor's
+  speed, built here from the project's LTE model (:mod:`meteorspec.atomic`); the class
+  boundaries live in one table, ``calibration/classes.csv``, with a source for every number.
+* **Time-resolved composition**: per-frame ``na``, ``mg``, ``fe``, monochromatic light curves
+  of Na I, Mg I, Fe I and the atmospheric O I 777 nm triplet, and the differential-ablation
+  measure of Vojacek et al. (2019, A&A 621, A68): how early Na peaks relative to Mg and Fe.
+
+The expected-normal model
+-------------------------
+Optically thin LTE emission (:func:`meteorspec.atomic.line_energy_rate`) of the three groups for
+CI-chondrite element ratios (Lodders 2003, ApJ 591, 1220), with the neutral fraction of each
+element from the Saha equation (:func:`meteorspec.atomic.saha_ratio`) at one electron density,
+at a speed-dependent temperature
+
+    T(v) = T_high - (T_high - T_ref) * max(0, (v_flat - v) / (v_flat - v_ref))**2 .
+
+Above ``v_flat`` the temperature, and so the expected position, is constant (Na/Mg "about
+constant at high speed"); below it the plasma cools and the Na/Mg intensity ratio rises steeply
+(the Na line has a 2.1 eV upper level and a 5.1 eV ionisation energy, the Mg b lines 5.1 eV
+and 7.6 eV). Two numbers are calibrated, both by :func:`calibrate_normal_model`:
+
+1. a constant factor on the Na group, so that Na/Mg at high speed equals a target value
+   (``target_na_mg_high``, read from the published ternaries *from memory*); it stands in for
+   what the thin one-temperature model leaves out, above all self-absorption of the Na D
+   resonance lines;
+2. ``T_ref`` = T(10 km/s), so that Na/Mg at 10 km/s is enhanced over the high-speed value by
+   the geometric middle (61.6) of the factor 40 to 95 that Matlovic et al. (2020,
+   arXiv:2004.11109) estimate for an H chondrite at about 10 km/s.
+
+Every parameter, its unit and source are in ``calibration/classes_expected.csv``; see
+``calibration/classes_SOURCES.md`` for the reasoning and the reading of the published facts.
+
+Classification geometry
+-----------------------
+With the expected normal point ``(na0, mg0, fe0)`` at the speed, each class rule compares one
+of ``na_mg_rel = (na/mg) / (na0/mg0)``, ``fe_mg_rel = (fe/mg) / (fe0/mg0)``, the fractions
+``na_fraction``, ``mg_fraction``, ``fe_fraction`` or ``total_snr`` (summed group intensity over
+its error) with a threshold. In the ternary these are straight lines: constant Na/Mg is a ray
+from the Fe corner, constant Fe/Mg a ray from the Na corner. Rules of one ``order`` are
+combined with AND; the first order that matches gives the class.
+
+The class is that of the measured point; ``class_confidence`` is the fraction of Monte Carlo
+draws (group intensities from a multivariate normal with the covariance, speed from a normal
+with its error) that fall in the same class.
+"""
+
+from __future__ import annotations
+
+import csv
+import functools
+import math
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+from scipy.optimize import brentq
+
+from . import atomic
+from .errors import InputError
+from .resources import calibration_dir
+
+__all__ = [
+    "CLASS_NAMES",
+    "ClassRule",
+    "ClassTable",
+    "Composition",
+    "GROUPS",
+    "LIGHT_CURVE_BANDS_NM",
+    "NormalModel",
+    "TimeResolved",
+    "boundary_distance_sigma",
+    "calibrate_normal_model",
+    "classify",
+    "classify_points",
+    "composition_from_groups",
+    "expected_normal",
+    "light_curve_from_spectra",
+    "load_class_table",
+    "load_normal_model",
+    "normal_group_intensity",
+    "ternary_figure",
+    "time_resolved",
+    "time_resolved_from_fits",
+]
+
+GROUPS = ("na", "mg", "fe")
+"""Order of the groups in every array and covariance here (contract section 6)."""
+
+CLASS_NAMES = ("normal", "Na-poor", "Na-enhanced", "Na-free", "Fe-poor", "iron", "unclassified")
+"""Contract vocabulary (section 6)."""
+
+_QUANTITIES = ("na_mg_rel", "fe_mg_rel", "na_fraction", "mg_fraction", "fe_fraction",
+               "total_snr", "otherwise")
+_OPERATORS = {"<": np.less, "<=": np.less_equal, ">": np.greater, ">=": np.greater_equal}
+_QUANTITY_LABEL = {"na_mg_rel": "Na/Mg / normal", "fe_mg_rel": "Fe/Mg / normal",
+                   "na_fraction": "na", "mg_fraction": "mg", "fe_fraction": "fe",
+                   "total_snr": "total S/N"}
+_ELEMENT = {"na": "Na", "mg": "Mg", "fe": "Fe"}
+
+# Monochromatic bands for :func:`light_curve_from_spectra`: centre and half width, nm (air).
+# Centres from the NIST ASD lines of calibration/atomic/lines.csv (Na D 588.995/589.592;
+# Mg b 516.73-518.36; Fe I multiplet 15 members 537.15, 539.71 and 540.58, away from the Mg b
+# and Cr I 520.8 nm lines; O I 777.19/777.42/777.54). Half widths are a
+# project choice for ~1 nm resolution video spectra; pass your own for other instruments.
+LIGHT_CURVE_BANDS_NM: dict[str, tuple[float, float]] = {
+    "Na I": (589.29, 1.5),
+    "Mg I": (517.55, 1.8),
+    "Fe I": (538.86, 2.6),
+    "O I 777": (777.40, 1.5),
+}
+
+
+# --------------------------------------------------------------------------------------------
+# Data objects
+# --------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Composition:
+    """Composition and class of one meteor (contract section 5, ``/composition``).
+
+    Attributes
+    ----------
+    na, mg, fe : float
+        Relative group intensities, ``na + mg + fe = 1`` (NaN if nothing was measured).
+    na_err, mg_err, fe_err : float
+        1-sigma errors, propagated through the normalisation.
+    class_name : str
+        One of :data:`CLASS_NAMES`.
+    class_confidence : float
+        Fraction (0..1) of Monte Carlo draws in ``class_name``; 0 when unclassified.
+    class_reason : str
+        Why this class (for ``unclassified`` the problem with the input).
+    speed_km_s : float
+        The speed given, NaN if unknown.
+    flags : tuple of str
+        ``"speed_unknown"``, ``"speed_outside_model"``, ``"negative_intensity"``,
+        ``"class_uncertain"`` (confidence < 0.5).
+    speed_used_km_s : float
+        Speed at which the expected normal position was taken (the default when unknown).
+    expected_normal : tuple of float
+        ``(na0, mg0, fe0)`` at ``speed_used_km_s``.
+    class_probabilities : tuple of (str, float)
+        Share of the Monte Carlo draws in each class, largest first.
+    """
+
+    na: float
+    mg: float
+    fe: float
+    na_err: float
+    mg_err: float
+    fe_err: float
+    class_name: str
+    class_confidence: float
+    class_reason: str
+    speed_km_s: float
+    flags: tuple[str, ...] = ()
+    speed_used_km_s: float = math.nan
+    expected_normal: tuple[float, float, float] = (math.nan, math.nan, math.nan)
+    class_probabilities: tuple[tuple[str, float], ...] = ()
+
+    @property
+    def values(self) -> NDArray[np.float64]:
+        """``[na, mg, fe]``."""
+        return np.array([self.na, self.mg, self.fe])
+
+    @property
+    def errors(self) -> NDArray[np.float64]:
+        """``[na_err, mg_err, fe_err]``."""
+        return np.array([self.na_err, self.mg_err, self.fe_err])
+
+
+@dataclass(frozen=True)
+class ClassRule:
+    """One row of ``calibration/classes.csv``: ``quantity operator value`` gives ``class_name``."""
+
+    order: int
+    class_name: str
+    quantity: str
+    operator: str
+    value: float
+    source: str
+
+    def describe(self) -> str:
+        if self.quantity == "otherwise":
+            return "no other class matched"
+        return f"{_QUANTITY_LABEL[self.quantity]} {self.operator} {self.value:g}"
+
+
+@dataclass(frozen=True)
+class ClassTable:
+    """The class boundaries, in evaluation order (see :func:`load_class_table`)."""
+
+    rules: tuple[ClassRule, ...]
+    path: str = ""
+
+    def orders(self) -> list[tuple[int, str, tuple[ClassRule, ...]]]:
+        """``(order, class_name, rules)`` for each order, ascending."""
+        out = []
+        for order in sorted({r.order for r in self.rules}):
+            rules = tuple(r for r in self.rules if r.order == order)
+            out.append((order, rules[0].class_name, rules))
+        return out
+
+    def threshold(self, class_name: str, quantity: str) -> float:
+        """The value of the rule for ``class_name`` on ``quantity`` (NaN if there is none)."""
+        for r in self.rules:
+            if r.class_name == class_name and r.quantity == quantity:
+                return r.value
+        return math.nan
+
+
+@dataclass(frozen=True)
+class NormalModel:
+    """Parameters of the expected-normal curve (``calibration/classes_expected.csv``).
+
+    Attributes
+    ----------
+    abundance_na, abundance_mg, abundance_fe : float
+        CI-chondrite atoms per 1e6 Si atoms (Lodders 2003).
+    temperature_high_k : float
+        Plasma temperature at and above ``speed_flat_km_s``.
+    temperature_reference_k : float
+        Temperature at ``speed_reference_km_s`` (calibrated).
+    speed_flat_km_s, speed_reference_km_s : float
+        Knee of T(v) and the speed of the low-speed calibration point.
+    electron_density_m3 : float
+        Free-electron density of the Saha balance.
+    na_effective_factor : float
+        Multiplies the thin-LTE Na group energy (calibrated): stands for what the one-temperature
+        optically thin model leaves out, above all self-absorption of the Na D resonance lines.
+    speed_min_km_s, speed_max_km_s : float
+        Range of the model; speeds outside are clipped (and flagged by :func:`classify`).
+    default_speed_km_s, default_speed_err_km_s : float
+        Used when the speed is unknown.
+    target_na_mg_high, target_enhancement_reference : float
+        Calibration targets (see the module notes).
+    """
+
+    abundance_na: float
+    abundance_mg: float
+    abundance_fe: float
+    temperature_high_k: float
+    temperature_reference_k: float
+    speed_flat_km_s: float
+    speed_reference_km_s: float
+    electron_density_m3: float
+    na_effective_factor: float
+    speed_min_km_s: float
+    speed_max_km_s: float
+    default_speed_km_s: float
+    default_speed_err_km_s: float
+    target_na_mg_high: float
+    target_enhancement_reference: float
+    sources: tuple[tuple[str, str], ...] = field(default=(), compare=False)
+
+    def temperature_k(self, speed_km_s: ArrayLike) -> NDArray[np.float64]:
+        """T(v) of the module notes; speeds are clipped to the model range first."""
+        v = np.clip(np.asarray(speed_km_s, dtype=float), self.speed_min_km_s, self.speed_max_km_s)
+        x = np.clip((self.speed_flat_km_s - v) / (self.speed_flat_km_s - self.speed_reference_km_s),
+                    0.0, None)
+        drop = self.temperature_high_k - self.temperature_reference_k
+        return self.temperature_high_k - drop * x**2
+
+
+@dataclass(frozen=True, eq=False)
+class TimeResolved:
+    """Per-frame composition, light curves and the differential-ablation measure.
+
+    Attributes
+    ----------
+    time_s : ndarray of shape (n_frames,)
+    na, mg, fe, na_err, mg_err, fe_err : ndarray of shape (n_frames,)
+        Per-frame composition (NaN where the frame's summed group light is below 3 sigma).
+    light_curves, light_curve_errs : dict of str to ndarray of shape (n_frames,)
+        Keys ``"Na I"``, ``"Mg I"``, ``"Fe I"``, ``"O I 777"`` (NaN where not measured).
+    peak_time_s : dict of str to float
+        Time of the maximum of each light curve (NaN if it has no significant point).
+    na_peak_lead_s : float
+        Na peak time minus the mean of the Mg and Fe peak times; negative = Na peaks early.
+    na_peak_lead_fraction : float
+        ``na_peak_lead_s`` over ``duration_s``.
+    duration_s : float
+        Luminous duration: first to last frame whose summed group light is above 3 sigma,
+        plus one frame interval.
+    flags : tuple of str
+    """
+
+    time_s: NDArray[np.float64]
+    na: NDArray[np.float64]
+    mg: NDArray[np.float64]
+    fe: NDArray[np.float64]
+    na_err: NDArray[np.float64]
+    mg_err: NDArray[np.float64]
+    fe_err: NDArray[np.float64]
+    light_curves: dict[str, NDArray[np.float64]]
+    light_curve_errs: dict[str, NDArray[np.float64]]
+    peak_time_s: dict[str, float]
+    na_peak_lead_s: float
+    na_peak_lead_fraction: float
+    duration_s: float
+    flags: tuple[str, ...] = ()
+
+
+# --------------------------------------------------------------------------------------------
+# Tables
+# --------------------------------------------------------------------------------------------
+
+def _read_csv(path: Path, columns: list[str]) -> list[dict[str, str]]:
+    try:
+        with path.open(newline="", encoding="utf-8") as fh:
+            reader = csv.DictReader(fh)
+            missing = [c for c in columns if c not in (reader.fieldnames or [])]
+            if missing:
+                raise InputError(path, f"missing column(s) {', '.join(missing)}")
+            rows = [{k: (v or "").strip() for k, v in row.items() if k is not None}
+                    for row in reader]
+    except FileNotFoundError:
+        raise InputError(path, "file not found") from None
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(path, f"cannot read: {exc}") from None
+    if not rows:
+        raise InputError(path, "no data rows")
+    return rows
+
+
+def load_class_table(path: str | Path | None = None) -> ClassTable:
+    """Read the class boundaries.
+
+    Parameters
+    ----------
+    path : path, optional
+        CSV with columns ``order, class, quantity, operator, value, source``; default
+        ``calibration/classes.csv``.
+
+    Returns
+    -------
+    ClassTable
+
+    Raises
+    ------
+    InputError
+        Missing file or column, an unknown class, quantity or operator, a non-finite
+        threshold, an empty source, or one order holding two classes.
+
+    Notes
+    -----
+    Rules with the same ``order`` are combined with AND and give that row's class; orders are
+    tried from low to high and the first match wins. ``quantity = otherwise`` matches
+    everything (the fall-through class, ``normal``). A point that matches no order is
+    ``unclassified``. Rules of class ``unclassified`` (e.g. on ``total_snr``) apply to the
+    measured point only, not to the Monte Carlo draws.
+    """
+    path = calibration_dir() / "classes.csv" if path is None else Path(path)
+    rows = _read_csv(path, ["order", "class", "quantity", "operator", "value", "source"])
+    rules = []
+    for i, row in enumerate(rows, start=1):
+        where = f"data row {i}"
+        try:
+            order = int(row["order"])
+        except ValueError:
+            raise InputError(path, f"order {row['order']!r} is not an integer", key=where) from None
+        name, quantity, op = row["class"], row["quantity"], row["operator"]
+        if name not in CLASS_NAMES:
+            raise InputError(path, f"class {name!r} not in {', '.join(CLASS_NAMES)}", key=where)
+        if quantity not in _QUANTITIES:
+            raise InputError(path, f"quantity {quantity!r} not in {', '.join(_QUANTITIES)}",
+                             key=where)
+        if not row["source"]:
+            raise InputError(path, "empty source: every threshold needs one", key=where)
+        if quantity == "otherwise":
+            value = math.nan
+        else:
+            if op not in _OPERATORS:
+                raise InputError(path, f"operator {op!r} not in {', '.join(_OPERATORS)}", key=where)
+            try:
+                value = float(row["value"])
+            except ValueError:
+                raise InputError(path, f"value {row['value']!r} is not a number",
+                                 key=where) from None
+            if not math.isfinite(value):
+                raise InputError(path, "value must be finite", key=where)
+        rules.append(ClassRule(order, name, quantity, op, value, row["source"]))
+    table = ClassTable(tuple(sorted(rules, key=lambda r: r.order)), str(path))
+    for order, _, group in table.orders():
+        if len({r.class_name for r in group}) != 1:
+            raise InputError(path, f"order {order} holds more than one class")
+    return table
+
+
+_MODEL_PARAMETERS = [f.name for f in fields(NormalModel) if f.name != "sources"]
+
+
+def load_normal_model(path: str | Path | None = None) -> NormalModel:
+    """Read the expected-normal model parameters.
+
+    Parameters
+    ----------
+    path : path, optional
+        CSV with columns ``parameter, value, unit, source``, one row per
+        :class:`NormalModel` field; default ``calibration/classes_expected.csv``.
+
+    Returns
+    -------
+    NormalModel
+
+    Raises
+    ------
+    InputError
+        Missing file, column or parameter; a non-numeric, non-finite or non-positive value;
+        an empty source; inconsistent speeds or temperatures.
+    """
+    path = calibration_dir() / "classes_expected.csv" if path is None else Path(path)
+    rows = _read_csv(path, ["parameter", "value", "unit", "source"])
+    values: dict[str, float] = {}
+    sources = []
+    for i, row in enumerate(rows, start=1):
+        name = row["parameter"]
+        if name not in _MODEL_PARAMETERS:
+            raise InputError(path, f"unknown parameter {name!r}", key=f"data row {i}")
+        try:
+            value = float(row["value"])
+        except ValueError:
+            raise InputError(path, f"value {row['value']!r} is not a number", key=name) from None
+        if not (math.isfinite(value) and value > 0):
+            raise InputError(path, "value must be finite and > 0", key=name)
+        if not row["source"]:
+            raise InputError(path, "empty source", key=name)
+        values[name] = value
+        sources.append((name, row["source"]))
+    missing = [p for p in _MODEL_PARAMETERS if p not in values]
+    if missing:
+        raise InputError(path, f"missing parameter(s) {', '.join(missing)}")
+    model = NormalModel(**values, sources=tuple(sources))
+    if not (model.speed_min_km_s <= model.speed_reference_km_s < model.speed_flat_km_s
+            <= model.speed_max_km_s):
+        raise InputError(path, "need speed_min <= speed_reference < speed_flat <= speed_max")
+    if not model.temperature_reference_k < model.temperature_high_k:
+        raise InputError(path, "temperature_reference_k must be below temperature_high_k")
+    return model
+
+
+@functools.lru_cache(maxsize=2)
+def _default_model() -> NormalModel:
+    return load_normal_model()
+
+
+@functools.lru_cache(maxsize=2)
+def _default_table() -> ClassTable:
+    return load_class_table()
+
+
+# --------------------------------------------------------------------------------------------
+# Expected normal position
+# --------------------------------------------------------------------------------------------
+
+@functools.lru_cache(maxsize=1)
+def _group_lines() -> dict[str, atomic.LineList]:
+    lines = atomic.load_line_list()
+    allowed = lines.transition_type == "E1"
+    return {g: lines.select(atomic.group_mask(lines, g) & allowed) for g in GROUPS}
+
+
+def normal_group_intensity(temperature_k: ArrayLike, *, model: NormalModel | None = None,
+                           na_effective_factor: float | None = None) -> NDArray[np.float64]:
+    """LTE energy of the three groups for CI-chondrite element ratios.
+
+    Parameters
+    ----------
+    temperature_k : array_like
+        Plasma temperature(s), K.
+    model : NormalModel, optional
+        Abundances and electron density; default the project table.
+    na_effective_factor : float, optional
+        Override the model's Na factor (used by the calibration).
+
+    Returns
+    -------
+    ndarray of shape T.shape + (3,)
+        Energy of the ``na``, ``mg``, ``fe`` groups, arbitrary common scale.
+
+    Notes
+    -----
+    For each element: abundance x neutral fraction 1 / (1 + N_II/N_I) (Saha,
+    :func:`meteorspec.atomic.saha_ratio`, at the model's electron density) x the optically thin
+    LTE energy of the group's allowed lines per neutral atom
+    (:func:`meteorspec.atomic.line_energy_rate`); the Na group is then multiplied by
+    ``na_effective_factor``.
+    """
+    model = _default_model() if model is None else model
+    n_e = model.electron_density_m3
+    na_factor = (model.na_effective_factor if na_effective_factor is None
+                 else float(na_effective_factor))
+    t = np.asarray(temperature_k, dtype=float)
+    abundance = {"na": model.abundance_na, "mg": model.abundance_mg, "fe": model.abundance_fe}
+    out = []
+    for g, lines in _group_lines().items():
+        neutral = 1.0 / (1.0 + atomic.saha_ratio(_ELEMENT[g], 1, t, n_e))
+        per_atom = atomic.line_energy_rate(lines, t, 1.0).sum(axis=-1)
+        out.append(abundance[g] * neutral * per_atom * (na_factor if g == "na" else 1.0))
+    return np.stack(out, axis=-1)
+
+
+@functools.lru_cache(maxsize=8)
+def _normal_grid(model: NormalModel) -> tuple[NDArray, NDArray, NDArray]:
+    """log(na/mg) and log(fe/mg) of the expected normal on a 0.1 km/s speed grid."""
+    v = np.arange(model.speed_min_km_s, model.speed_max_km_s + 1e-9, 0.1)
+    e = normal_group_intensity(model.temperature_k(v), model=model)
+    return v, np.log(e[:, 0] / e[:, 1]), np.log(e[:, 2] / e[:, 1])
+
+
+def _expected_log_ratios(speed_km_s: NDArray, model: NormalModel) -> tuple[NDArray, NDArray]:
+    v_grid, log_na_mg, log_fe_mg = _normal_grid(model)
+    v = np.clip(speed_km_s, model.speed_min_km_s, model.speed_max_km_s)
+    return np.interp(v, v_grid, log_na_mg), np.interp(v, v_grid, log_fe_mg)
+
+
+def expected_normal(speed_km_s: ArrayLike, *,
+                    model: NormalModel | None = None) -> NDArray[np.float64]:
+    """Expected ``(na, mg, fe)`` of a chondritic meteoroid at the given speed.
+
+    Parameters
+    ----------
+    speed_km_s : array_like
+        Speed(s) at the start of the luminous trajectory, km/s. Values outside the model range
+        (``speed_min_km_s`` .. ``speed_max_km_s``, 10 .. 73 km/s in the project table) are
+        clipped to it; NaN gives NaN.
+    model : NormalModel, optional
+        Default: ``calibration/classes_expected.csv``.
+
+    Returns
+    -------
+    ndarray of shape speed.shape + (3,)
+        ``na + mg + fe = 1``.
+
+    Notes
+    -----
+    See the module notes; the curve is tabulated on a 0.1 km/s grid and interpolated linearly
+    in log(Na/Mg) and log(Fe/Mg) (interpolation error < 1e-4 relative).
+    """
+    model = _default_model() if model is None else model
+    v = np.asarray(speed_km_s, dtype=float)
+    a, b = _expected_log_ratios(v, model)
+    ratios = np.stack([np.exp(a), np.ones_like(a), np.exp(b)], axis=-1)
+    out = ratios / ratios.sum(axis=-1, keepdims=True)
+    return np.where(np.isnan(v)[..., None], np.nan, out)
+
+
+def calibrate_normal_model(model: NormalModel | None = None) -> tuple[float, float]:
+    """Solve the two calibrated parameters of the expected-normal model.
+
+    Parameters
+    ----------
+    model : NormalModel, optional
+        Its targets, abundances, ``temperature_high_k`` and speeds are used; its calibrated
+        values are ignored. Default: the project table.
+
+    Returns
+    -------
+    na_effective_factor : float
+        Such that Na/Mg at ``temperature_high_k`` equals ``target_na_mg_high``.
+    temperature_reference_k : float
+        Such that Na/Mg at T_ref over Na/Mg at T_high equals
+        ``target_enhancement_reference``.
+
+    Notes
+    -----
+    The Na factor scales Na/Mg linearly, so it is a ratio; T_ref is a one-dimensional monotonic
+    root find (Brent's method): a lower temperature raises Na/Mg through both the Boltzmann
+    factor and the Saha balance (the factor cancels in the enhancement). The values written in
+    ``calibration/classes_expected.csv`` came from
+    this function; ``tests/test_classify.py`` checks that they still do.
+    """
+    model = _default_model() if model is None else model
+    t_hi = model.temperature_high_k
+
+    def na_mg(t: float) -> float:
+        e = normal_group_intensity(t, model=model, na_effective_factor=1.0)
+        return float(e[0] / e[1])
+
+    high = na_mg(t_hi)
+    factor = model.target_na_mg_high / high
+    t_ref = brentq(lambda t: math.log(na_mg(t) / high / model.target_enhancement_reference),
+                   1500.0, t_hi - 1e-3, xtol=1e-6)
+    return factor, t_ref
+
+
+# --------------------------------------------------------------------------------------------
+# Composition
+# --------------------------------------------------------------------------------------------
+
+def _intensity_vector(intensity: dict[str, float] | ArrayLike) -> NDArray[np.float64]:
+    if isinstance(intensity, dict):
+        missing = [g for g in GROUPS if g not in intensity]
+        if missing:
+            raise ValueError(f"group intensity lacks {', '.join(missing)} (need na, mg, fe)")
+        return np.array([float(intensity[g]) for g in GROUPS])
+    arr = np.asarray(intensity, dtype=float)
+    if arr.shape != (3,):
+        raise ValueError(f"group intensity has shape {arr.shape}, expected (3,) "
+                         "in order na, mg, fe")
+    return arr
+
+
+def _covariance_matrix(covariance: ArrayLike) -> NDArray[np.float64]:
+    cov = np.asarray(covariance, dtype=float)
+    if cov.shape != (3, 3):
+        raise ValueError(f"group covariance has shape {cov.shape}, expected (3, 3) (na, mg, fe)")
+    return cov
+
+
+def _normalise(intensity: NDArray) -> tuple[NDArray, NDArray]:
+    """Fractions of the clipped intensities (..., 3) and their sum (...)."""
+    clipped = np.clip(intensity, 0.0, None)
+    total = clipped.sum(axis=-1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        frac = clipped / total[..., None]
+    frac = np.where((total > 0)[..., None], frac, np.nan)
+    return frac, total
+
+
+def composition_from_groups(
+        intensity: dict[str, float] | ArrayLike,
+        covariance: ArrayLike) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Normalised composition ``(na, mg, fe)`` and its 1-sigma errors.
+
+    Parameters
+    ----------
+    intensity : dict or array_like
+        Group intensities ``{"na": ..., "mg": ..., "fe": ...}`` (or an array in that order),
+        response-corrected energy, any common scale.
+    covariance : array_like of shape (3, 3)
+        Their covariance, order na, mg, fe.
+
+    Returns
+    -------
+    values : ndarray of shape (3,)
+        ``na + mg + fe = 1``; all NaN if an intensity is not finite or no group is positive.
+    errors : ndarray of shape (3,)
+        1-sigma; NaN if the covariance is not finite.
+
+    Raises
+    ------
+    ValueError
+        If a group is missing or the covariance is not 3 x 3.
+
+    Notes
+    -----
+    A negative intensity (noise around zero) counts as zero in the fractions. The errors are
+    first-order propagation, sigma_f^2 = diag(J C J^T), with the Jacobian of the
+    normalisation f_i = I_i / S, S = sum(I), J_ij = (delta_ij - f_i) / S, taken at the clipped
+    point *without* the zero slope of the clipping, so a group measured at or below zero still
+    carries its own error (sigma_i / S) instead of none.
+    """
+    vec = _intensity_vector(intensity)
+    cov = _covariance_matrix(covariance)
+    nan3 = np.full(3, np.nan)
+    if not np.all(np.isfinite(vec)):
+        return nan3, nan3.copy()
+    frac, total = _normalise(vec)
+    if not total > 0:
+        return nan3, nan3.copy()
+    if not np.all(np.isfinite(cov)):
+        return frac, nan3
+    jac = (np.eye(3) - frac[:, None]) / total
+    var = np.einsum("ij,jk,ik->i", jac, cov, jac)
+    return frac, np.sqrt(np.clip(var, 0.0, None))
+
+
+# --------------------------------------------------------------------------------------------
+# Classification
+# --------------------------------------------------------------------------------------------
+
+def _quantities(intensity: NDArray, speed_km_s: NDArray, model: NormalModel) -> dict[str, NDArray]:
+    """The rule quantities for points (..., 3) at speeds (...)."""
+    frac, _ = _normalise(intensity)
+    clipped = np.clip(intensity, 0.0, None)
+    log_na_mg0, log_fe_mg0 = _expected_log_ratios(speed_km_s, model)
+    na, mg, fe = clipped[..., 0], clipped[..., 1], clipped[..., 2]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        na_mg_rel = na / mg / np.exp(log_na_mg0)  # x/0 -> inf, 0/0 -> NaN (compares False)
+        fe_mg_rel = fe / mg / np.exp(log_fe_mg0)
+    return {"na_mg_rel": na_mg_rel, "fe_mg_rel": fe_mg_rel, "na_fraction": frac[..., 0],
+            "mg_fraction": frac[..., 1], "fe_fraction": frac[..., 2]}
+
+
+def _evaluate(quantities: dict[str, NDArray], table: ClassTable, *,
+              apply_unclassified_rules: bool) -> tuple[NDArray, NDArray]:
+    """Class name and matched order per point."""
+    shape = quantities["na_fraction"].shape
+    name = np.full(shape, "unclassified", dtype=object)
+    matched_order = np.full(shape, -1)
+    done = ~np.isfinite(quantities["na_fraction"])  # no positive group: stays unclassified
+    for order, class_name, rules in table.orders():
+        if class_name == "unclassified" and not apply_unclassified_rules:
+            continue
+        cond = np.ones(shape, dtype=bool)
+        for r in rules:
+            if r.quantity == "otherwise":
+                continue
+            with np.errstate(invalid="ignore"):
+                cond &= _OPERATORS[r.operator](quantities[r.quantity], r.value)
+        new = cond & ~done
+        name[new] = class_name
+        matched_order[new] = order
+        done |= new
+    return name, matched_order
+
+
+def classify_points(intensity: ArrayLike, speed_km_s: ArrayLike, *,
+                    table: ClassTable | None = None,
+                    model: NormalModel | None = None) -> NDArray[np.object_]:
+    """Class of noise-free points (vectorised; no confidence, no S/N rule).
+
+    Parameters
+    ----------
+    intensity : array_like of shape (..., 3)
+        Group intensities or fractions, order na, mg, fe.
+    speed_km_s : array_like
+        Broadcast against ``intensity[..., 0]``.
+    table, model : optional
+        Default: the project tables.
+
+    Returns
+    -------
+    ndarray of object (str), shape intensity.shape[:-1]
+    """
+    table = _default_table() if table is None else table
+    model = _default_model() if model is None else model
+    arr = np.asarray(intensity, dtype=float)
+    speed = np.broadcast_to(np.asarray(speed_km_s, dtype=float), arr.shape[:-1])
+    q = _quantities(arr, speed, model)
+    return _evaluate(q, table, apply_unclassified_rules=False)[0]
+
+
+def _unclassified(values: NDArray, errors: NDArray, reason: str, speed: float, used: float,
+                  expected: NDArray, flags: list[str]) -> Composition:
+    return Composition(*map(float, values), *map(float, errors), class_name="unclassified",
+                       class_confidence=0.0, class_reason=reason, speed_km_s=speed,
+                       flags=tuple(flags), speed_used_km_s=used,
+                       expected_normal=tuple(map(float, expected)))
+
+
+def _speed_inputs(speed_km_s: float | None, speed_err_km_s: float | None,
+                  model: NormalModel) -> tuple[float, float, float, list[str]]:
+    """(speed reported, speed used, its error, flags)."""
+    flags: list[str] = []
+    if speed_km_s is None or math.isnan(float(speed_km_s)):
+        return (math.nan, model.default_speed_km_s, model.default_speed_err_km_s,
+                ["speed_unknown"])
+    speed = float(speed_km_s)
+    if not (math.isfinite(speed) and speed > 0):
+        raise ValueError("speed_km_s must be finite and > 0 (or None / NaN if unknown), "
+                         f"got {speed}")
+    unknown_err = speed_err_km_s is None or math.isnan(float(speed_err_km_s))
+    err = 0.0 if unknown_err else float(speed_err_km_s)
+    if not (math.isfinite(err) and err >= 0):
+        raise ValueError(f"speed_err_km_s must be finite and >= 0, got {err}")
+    if not model.speed_min_km_s <= speed <= model.speed_max_km_s:
+        flags.append("speed_outside_model")
+    return speed, speed, err, flags
+
+
+def _psd_problem(cov: NDArray) -> str:
+    if not np.all(np.isfinite(cov)):
+        return "covariance has non-finite values"
+    scale = float(np.max(np.abs(np.diag(cov)))) if np.any(cov) else 0.0
+    if not np.allclose(cov, cov.T, rtol=1e-6, atol=1e-12 * max(scale, 1e-300)):
+        return "covariance is not symmetric"
+    if np.any(np.linalg.eigvalsh(cov) < -1e-9 * scale):
+        return "covariance is not positive semi-definite"
+    return ""
+
+
+def _reason(name: str, rules: tuple[ClassRule, ...], q: dict[str, NDArray], speed: float) -> str:
+    at = f"at {speed:.1f} km/s"
+    if name == "normal":
+        return (f"Na/Mg {float(q['na_mg_rel']):.2f} x and Fe/Mg {float(q['fe_mg_rel']):.2f} x the "
+                f"expected normal values {at}")
+    parts = [f"{_QUANTITY_LABEL[r.quantity]} = {float(q[r.quantity]):.3g} "
+             f"({r.operator} {r.value:g})" for r in rules if r.quantity != "otherwise"]
+    return f"{'; '.join(parts)} {at}"
+
+
+def classify(intensity: dict[str, float] | ArrayLike, covariance: ArrayLike, *,
+             speed_km_s: float | None, speed_err_km_s: float | None = None,
+             seed: int | np.random.Generator | None = 0, n_draws: int = 2000,
+             table: ClassTable | None = None, model: NormalModel | None = None) -> Composition:
+    """Composition and spectral class of one meteor.
+
+    Parameters
+    ----------
+    intensity : dict or array_like
+        Whole-flight group intensities ``{"na", "mg", "fe"}`` (contract section 6).
+    covariance : array_like of shape (3, 3)
+        Their covariance, order na, mg, fe.
+    speed_km_s : float or None
+        Speed at the start of the luminous trajectory; None or NaN = unknown, then the model's
+        default speed and its broad error are used and the result is flagged
+        ``"speed_unknown"``.
+    speed_err_km_s : float, optional
+        1-sigma speed error (None = 0).
+    seed : int, Generator or None
+        For the Monte Carlo confidence (``np.random.default_rng(seed)``).
+    n_draws : int
+        Monte Carlo draws, >= 1.
+    table, model : optional
+        Class boundaries and expected-normal model; default the project tables.
+
+    Returns
+    -------
+    Composition
+        ``unclassified`` (with the reason) for a non-finite intensity or covariance, a
+        covariance that is not symmetric positive semi-definite, no positive group, or a summed
+        group intensity below the table's S/N rule.
+
+    Raises
+    ------
+    ValueError
+        For a missing group, a covariance that is not 3 x 3, a speed <= 0 or infinite, a
+        negative speed error, or ``n_draws < 1``.
+
+    Notes
+    -----
+    The class is that of the measured point at the (used) speed; the confidence is the share
+    of ``n_draws`` Monte Carlo draws in that class, with intensities drawn from
+    N(intensity, covariance) and speeds from N(speed, speed_err) clipped to the model range.
+    See the module notes for the geometry and ``calibration/classes.csv`` for the boundaries.
+    """
+    table = _default_table() if table is None else table
+    model = _default_model() if model is None else model
+    if int(n_draws) < 1:
+        raise ValueError(f"n_draws must be >= 1, got {n_draws}")
+    vec = _intensity_vector(intensity)
+    cov = _covariance_matrix(covariance)
+    speed, used, speed_err, flags = _speed_inputs(speed_km_s, speed_err_km_s, model)
+    expected = expected_normal(used, model=model)
+    values, errors = composition_from_groups(vec, cov)
+    if np.any(vec < 0):
+        flags.append("negative_intensity")
+
+    if not np.all(np.isfinite(vec)):
+        bad = ", ".join(g for g, x in zip(GROUPS, vec) if not np.isfinite(x))
+        return _unclassified(values, errors, f"non-finite group intensity ({bad})", speed, used,
+                             expected, flags)
+    problem = _psd_problem(cov)
+    if problem:
+        return _unclassified(values, errors, problem, speed, used, expected, flags)
+    if not np.any(vec > 0):
+        return _unclassified(values, errors, "no group intensity above zero", speed, used,
+                             expected, flags)
+    total_err = math.sqrt(max(float(cov.sum()), 0.0))
+    total_snr = float(np.clip(vec, 0, None).sum()) / total_err if total_err > 0 else math.inf
+
+    q = _quantities(vec, np.asarray(used), model)
+    q["total_snr"] = np.asarray(total_snr)
+    name_arr, order_arr = _evaluate(q, table, apply_unclassified_rules=True)
+    name, order = str(name_arr), int(order_arr)
+    rules = next((r for o, _, r in table.orders() if o == order), ())
+    if name == "unclassified":
+        why = _reason(name, rules, q, used) if rules else "outside every class region"
+        return _unclassified(values, errors, why, speed, used, expected, flags)
+
+    rng = np.random.default_rng(seed)
+    draws = rng.multivariate_normal(vec, cov, size=int(n_draws), method="eigh")
+    speeds = np.clip(used + speed_err * rng.standard_normal(int(n_draws)),
+                     model.speed_min_km_s, model.speed_max_km_s)
+    draw_names, _ = _evaluate(_quantities(draws, speeds, model), table,
+                              apply_unclassified_rules=False)
+    labels, counts = np.unique(draw_names.astype(str), return_counts=True)
+    probabilities = sorted(((str(k), float(c) / n_draws) for k, c in zip(labels, counts)),
+                           key=lambda kv: (-kv[1], kv[0]))
+    confidence = float(np.mean(draw_names == name))
+    if confidence < 0.5:
+        flags.append("class_uncertain")
+    return Composition(*map(float, values), *map(float, errors), class_name=name,
+                       class_confidence=confidence, class_reason=_reason(name, rules, q, used),
+                       speed_km_s=speed, flags=tuple(flags), speed_used_km_s=used,
+                       expected_normal=tuple(map(float, expected)),
+                       class_probabilities=tuple(probabilities))
+
+
+def boundary_distance_sigma(intensity: dict[str, float] | ArrayLike, covariance: ArrayLike, *,
+                            speed_km_s: float, speed_err_km_s: float = 0.0,
+                            max_sigma: float = 4.0, step_sigma: float = 0.05,
+                            n_directions: int = 400, seed: int | None = 0,
+                            table: ClassTable | None = None,
+                            model: NormalModel | None = None) -> float:
+    """Distance, in standard deviations, from a point to the nearest class boundary.
+
+    Parameters
+    ----------
+    intensity : dict or array_like
+        Group intensities, order na, mg, fe (a noise-free "truth" point).
+    covariance : array_like of shape (3, 3)
+        Measurement covariance of the intensities.
+    speed_km_s, speed_err_km_s : float
+        Speed and its error (0 = exact); with an error the speed is a fourth dimension.
+    max_sigma, step_sigma : float
+        Search radius and step, in sigma.
+    n_directions : int
+        Random directions (seeded) in the whitened space, plus the +- coordinate axes.
+    seed, table, model : optional
+
+    Returns
+    -------
+    float
+        Smallest whitened (Mahalanobis) distance at which the class differs from the point's
+        own, to within ``step_sigma``; ``inf`` if none within ``max_sigma``.
+
+    Notes
+    -----
+    Used to pick the events "more than 2 sigma from a boundary" of the acceptance criterion.
+    The class regions are bounded by straight lines in the ternary, so the nearest boundary is
+    found by marching along many directions from the point in the space whitened by the
+    covariance (x = I + L z with C = L L^T).
+    """
+    vec = _intensity_vector(intensity)
+    cov = _covariance_matrix(covariance)
+    w, u = np.linalg.eigh(cov)
+    root = u * np.sqrt(np.clip(w, 0.0, None))
+    dim = 4 if speed_err_km_s > 0 else 3
+    rng = np.random.default_rng(seed)
+    dirs = rng.standard_normal((int(n_directions), dim))
+    dirs = np.vstack([dirs / np.linalg.norm(dirs, axis=1, keepdims=True),
+                      np.eye(dim), -np.eye(dim)])
+    radii = np.arange(step_sigma, max_sigma + 1e-12, step_sigma)
+    z = dirs[:, None, :] * radii[None, :, None]  # (n_dir, n_r, dim)
+    points = vec + z[..., :3] @ root.T
+    speeds = speed_km_s + (z[..., 3] * speed_err_km_s if dim == 4 else np.zeros(z.shape[:2]))
+    own = str(classify_points(vec, speed_km_s, table=table, model=model))
+    names = classify_points(points, speeds, table=table, model=model)
+    differs = names != own
+    if not np.any(differs):
+        return math.inf
+    first = np.where(differs.any(axis=1), radii[np.argmax(differs, axis=1)], np.inf)
+    return float(first.min())
+
+
+# --------------------------------------------------------------------------------------------
+# Time-resolved composition
+# --------------------------------------------------------------------------------------------
+
+def _peak_time(time_s: NDArray, flux: NDArray, err: NDArray, *, min_snr: float = 3.0) -> float:
+    """Time of the light-curve maximum, refined by a weighted parabola over +-2 frames.
+
+    A 1-2-1 smoothing picks the peak frame (one noisy frame cannot win alone); the parabola
+    through the raw points around it gives a sub-frame time, kept only if its vertex lies inside
+    the fitted window (otherwise the peak frame's own time is returned).
+    """
+    good = np.isfinite(flux) & np.isfinite(err) & (err > 0)
+    if not np.any(good & (flux > min_snr * np.where(good, err, np.inf))):
+        return math.nan
+    f = np.where(good, flux, 0.0)
+    smooth = np.convolve(np.pad(f, 1, mode="edge"), [0.25, 0.5, 0.25], mode="valid")
+    smooth = np.where(good, smooth, -np.inf)
+    k = int(np.argmax(smooth))
+    lo, hi = max(0, k - 2), min(len(f), k + 3)
+    sel = np.arange(lo, hi)[good[lo:hi]]
+    if sel.size < 3:
+        return float(time_s[k])
+    t0 = time_s[k]
+    coef = np.polyfit(time_s[sel] - t0, flux[sel], 2, w=1.0 / err[sel])
+    if coef[0] >= 0:  # not a maximum
+        return float(t0)
+    vertex = -coef[1] / (2.0 * coef[0])
+    if not time_s[sel[0]] - t0 <= vertex <= time_s[sel[-1]] - t0:
+        return float(t0)
+    return float(t0 + vertex)
+
+
+def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayLike],
+                  errors: dict[str, ArrayLike], *, o777_per_frame: ArrayLike | None = None,
+                  o777_err: ArrayLike | None = None, min_snr: float = 3.0) -> TimeResolved:
+    """Per-frame composition, light curves and how early Na peaks.
+
+    Parameters
+    ----------
+    time_s : array_like of shape (n_frames,)
+        Middle of each exposure, increasing.
+    group_intensity_per_frame : dict
+        ``{"na", "mg", "fe"}`` to arrays of shape (n_frames,): group intensities per frame
+        (from the per-frame plasma fit or :func:`light_curve_from_spectra`); NaN = not measured.
+    errors : dict
+        1-sigma errors of the same shape (groups taken as uncorrelated here).
+    o777_per_frame, o777_err : array_like of shape (n_frames,), optional
+        The atmospheric O I 777 nm light curve and its error; without them that curve is NaN
+        and the result is flagged ``"o777_missing"``.
+    min_snr : float
+        A frame enters the per-frame composition and the luminous duration only if its summed
+        group light has at least this S/N; a curve without a point above it has no peak.
+
+    Returns
+    -------
+    TimeResolved
+
+    Raises
+    ------
+    ValueError
+        For a missing group, arrays of different lengths, or times that do not increase.
+
+    Notes
+    -----
+    Differential ablation after Vojacek et al. (2019, A&A 621, A68): Na, the most volatile of
+    the three, is released early from a meteoroid that has kept its volatiles, so its light
+    curve peaks before those of Mg and Fe. ``na_peak_lead_s`` = t_peak(Na) - mean(t_peak(Mg),
+    t_peak(Fe)), and ``na_peak_lead_fraction`` divides it by the luminous duration. Peak
+    times come from a 1-2-1 smoothed maximum refined by a weighted parabola (sub-frame).
+    Flags: ``"o777_missing"``, ``"na_peak_unreliable"`` (Na never above ``min_snr``),
+    ``"peak_at_edge"`` (a group peaks in the first or last luminous frame, so the meteor may
+    have been cut), ``"no_luminous_frames"``.
+    """
+    t = np.asarray(time_s, dtype=float)
+    if t.ndim != 1 or t.size == 0:
+        raise ValueError(f"time_s must be a non-empty 1-D array, got shape {t.shape}")
+    if t.size > 1 and not np.all(np.diff(t) > 0):
+        raise ValueError("time_s must increase strictly")
+    flux, err = {}, {}
+    for g in GROUPS:
+        if g not in group_intensity_per_frame or g not in errors:
+            raise ValueError(f"per-frame intensities and errors need group {g!r}")
+        flux[g] = np.asarray(group_intensity_per_frame[g], dtype=float)
+        err[g] = np.asarray(errors[g], dtype=float)
+        if flux[g].shape != t.shape or err[g].shape != t.shape:
+            raise ValueError(f"group {g!r}: shapes {flux[g].shape} / {err[g].shape} differ from "
+                             f"time_s {t.shape}")
+    flags: list[str] = []
+    if o777_per_frame is None:
+        o_flux, o_err = np.full(t.shape, np.nan), np.full(t.shape, np.nan)
+        flags.append("o777_missing")
+    else:
+        o_flux = np.asarray(o777_per_frame, dtype=float)
+        o_err = (np.full(t.shape, np.nan) if o777_err is None
+                 else np.asarray(o777_err, dtype=float))
+        if o_flux.shape != t.shape or o_err.shape != t.shape:
+            raise ValueError(f"O I 777 arrays must have shape {t.shape}")
+
+    stack = np.stack([flux[g] for g in GROUPS], axis=-1)
+    estack = np.stack([err[g] for g in GROUPS], axis=-1)
+    frac, total = _normalise(stack)
+    total_err = np.sqrt(np.sum(estack**2, axis=-1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        luminous = np.isfinite(total) & (total > min_snr * total_err)
+        # Jacobian of the normalisation per frame, J[n, i, j] = (delta_ij - f_i) / S; the
+        # groups are uncorrelated here, so var_i = sum_j J_ij^2 s_j^2.
+        jac = (np.eye(3)[None] - frac[:, :, None]) / total[:, None, None]
+        var = np.einsum("nij,nj->ni", jac**2, estack**2)
+    frac = np.where(luminous[:, None], frac, np.nan)
+    ferr = np.where(luminous[:, None], np.sqrt(var), np.nan)
+
+    names = {"na": "Na I", "mg": "Mg I", "fe": "Fe I"}
+    curves = {names[g]: flux[g] for g in GROUPS} | {"O I 777": o_flux}
+    curve_errs = {names[g]: err[g] for g in GROUPS} | {"O I 777": o_err}
+    peaks = {k: _peak_time(t, curves[k], curve_errs[k], min_snr=min_snr) for k in curves}
+
+    if np.any(luminous):
+        idx = np.flatnonzero(luminous)
+        dt = float(np.median(np.diff(t))) if t.size > 1 else 0.0
+        duration = float(t[idx[-1]] - t[idx[0]] + dt)
+        first, last = t[idx[0]], t[idx[-1]]
+        for k in ("Na I", "Mg I", "Fe I"):
+            if np.isfinite(peaks[k]) and (abs(peaks[k] - first) < 0.5 * dt
+                                          or abs(peaks[k] - last) < 0.5 * dt):
+                flags.append("peak_at_edge")
+                break
+    else:
+        duration = math.nan
+        flags.append("no_luminous_frames")
+    others = [peaks[k] for k in ("Mg I", "Fe I") if np.isfinite(peaks[k])]
+    if not np.isfinite(peaks["Na I"]):
+        flags.append("na_peak_unreliable")
+    lead = peaks["Na I"] - float(np.mean(others)) if others else math.nan
+    lead_fraction = lead / duration if duration > 0 else math.nan
+    return TimeResolved(time_s=t, na=frac[:, 0], mg=frac[:, 1], fe=frac[:, 2],
+                        na_err=ferr[:, 0], mg_err=ferr[:, 1], fe_err=ferr[:, 2],
+                        light_curves=curves, light_curve_errs=curve_errs, peak_time_s=peaks,
+                        na_peak_lead_s=float(lead), na_peak_lead_fraction=float(lead_fraction),
+                        duration_s=duration, flags=tuple(flags))
+
+
+def time_resolved_from_fits(time_s: ArrayLike, fits: list[Any], *,
+                            o777_per_frame: ArrayLike | None = None,
+                            o777_err: ArrayLike | None = None,
+                            min_snr: float = 3.0) -> TimeResolved:
+    """:func:`time_resolved` from a list of per-frame plasma fits.
+
+    Parameters
+    ----------
+    time_s : array_like of shape (n_frames,)
+    fits : list
+        One object per frame with ``group_intensity`` and ``group_intensity_err`` dicts
+        (``meteorspec.plasma.PlasmaFit``), or None / a falsy failure object for a frame whose
+        fit failed (NaN there).
+    o777_per_frame, o777_err, min_snr
+        As in :func:`time_resolved`.
+    """
+    t = np.asarray(time_s, dtype=float)
+    if len(fits) != t.size:
+        raise ValueError(f"{len(fits)} plasma fits for {t.size} frame times")
+    flux = {g: np.full(t.size, np.nan) for g in GROUPS}
+    err = {g: np.full(t.size, np.nan) for g in GROUPS}
+    for i, fit in enumerate(fits):
+        if fit is None or not fit:
+            continue
+        for g in GROUPS:
+            flux[g][i] = float(fit.group_intensity[g])
+            err[g][i] = float(fit.group_intensity_err[g])
+    return time_resolved(t, flux, err, o777_per_frame=o777_per_frame, o777_err=o777_err,
+                         min_snr=min_snr)
+
+
+def light_curve_from_spectra(frame_spectra: Any, *, center_nm: float, half_width_nm: float,
+                             continuum_windows_nm: tuple[tuple[float, float], ...] | None = None,
+                             ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Monochromatic light curve: band integral minus a local linear continuum, per frame.
+
+    Parameters
+    ----------
+    frame_spectra : FrameSpectra-like
+        Needs ``wavelength_nm`` and ``bin_width_nm`` (n_wl,), ``flux``, ``variance`` and ``mask``
+        (n_frames, n_wl) (mask True = bad) (:class:`meteorspec.extract.FrameSpectra`).
+    center_nm, half_width_nm : float
+        The band ``[center - half_width, center + half_width]`` (air nm).
+    continuum_windows_nm : tuple of (lo, hi), optional
+        Where the continuum is measured. Default: one window on each side of the band, each as
+        wide as the half band and starting half a band width away from it.
+
+    Returns
+    -------
+    flux : ndarray of shape (n_frames,)
+        Band integral of ``flux * bin_width_nm`` minus the continuum line integrated over the
+        same bins; NaN for a frame with a masked bin inside the band or no unmasked continuum
+        bin (two are needed for the slope; with one the continuum is taken flat).
+    err : ndarray of shape (n_frames,)
+        1-sigma from ``variance``, including the continuum estimate.
+
+    Raises
+    ------
+    ValueError
+        For missing attributes, shapes that disagree, a band without bins, or windows that
+        overlap the band.
+
+    Notes
+    -----
+    A model-free measure for when the per-frame plasma fit is not available: blends inside the
+    band are counted. The continuum is an unweighted least-squares line through the window bins
+    (unweighted so that bright frames do not bias the slope through their own variance), and its
+    error is propagated exactly because it is linear in the data.
+    """
+    try:
+        wl = np.asarray(frame_spectra.wavelength_nm, dtype=float)
+        width = np.broadcast_to(np.asarray(frame_spectra.bin_width_nm, dtype=float), wl.shape)
+        flux = np.atleast_2d(np.asarray(frame_spectra.flux, dtype=float))
+        variance = np.atleast_2d(np.asarray(frame_spectra.variance, dtype=float))
+        mask = np.atleast_2d(np.asarray(frame_spectra.mask, dtype=bool))
+    except AttributeError as exc:
+        raise ValueError(f"frame spectra lack an attribute: {exc}") from None
+    if not (flux.shape == variance.shape == mask.shape and flux.shape[-1] == wl.size):
+        raise ValueError(f"frame spectra shapes disagree: flux {flux.shape}, variance "
+                         f"{variance.shape}, mask {mask.shape}, wavelength {wl.shape}")
+    if not (math.isfinite(center_nm) and math.isfinite(half_width_nm) and half_width_nm > 0):
+        raise ValueError("center_nm and half_width_nm must be finite, half_width_nm > 0")
+    lo, hi = center_nm - half_width_nm, center_nm + half_width_nm
+    if continuum_windows_nm is None:
+        gap, w = half_width_nm, half_width_nm
+        continuum_windows_nm = ((lo - gap - w, lo - gap), (hi + gap, hi + gap + w))
+    band = (wl >= lo) & (wl <= hi)
+    if not np.any(band):
+        raise ValueError(f"no wavelength bin inside the band {lo:.2f}-{hi:.2f} nm")
+    cont = np.zeros(wl.shape, dtype=bool)
+    for a, b in continuum_windows_nm:
+        if not a < b:
+            raise ValueError(f"continuum window ({a}, {b}) is empty")
+        if a < hi and b > lo:
+            raise ValueError(f"continuum window ({a}, {b}) overlaps the band {lo:.2f}-{hi:.2f} nm")
+        cont |= (wl >= a) & (wl <= b)
+
+    bad = mask | ~np.isfinite(flux) | ~np.isfinite(variance)
+    f = np.where(bad, 0.0, flux)
+    v = np.where(bad, 0.0, variance)
+    band_ok = ~np.any(bad[:, band], axis=1)
+    raw = (f[:, band] * width[band]).sum(axis=1)
+    raw_var = (v[:, band] * width[band] ** 2).sum(axis=1)
+
+    # Continuum c(x) = a + b x with x = wl - center; integral over the band bins is
+    # A a + B b with A = sum(width), B = sum(width * x). Least squares on the valid window bins.
+    x = wl - center_nm
+    use = cont[None, :] & ~bad
+    n = use.sum(axis=1).astype(float)
+    sx = (use * x).sum(axis=1)
+    sxx = (use * x * x).sum(axis=1)
+    det = n * sxx - sx * sx
+    slope_ok = det > 1e-12 * np.maximum(n * sxx, 1e-300)
+    a_band = width[band].sum()
+    b_band = (width[band] * x[band]).sum()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        # weight of each window bin in (A a + B b): linear coefficients of the LSQ solution
+        coef_lin = ((sxx[:, None] - sx[:, None] * x) * a_band
+                    + (n[:, None] * x - sx[:, None]) * b_band) / det[:, None]
+        coef_flat = np.broadcast_to(a_band / n[:, None], coef_lin.shape)
+    coef = np.where(slope_ok[:, None], coef_lin, coef_flat) * use
+    continuum = (coef * f).sum(axis=1)
+    continuum_var = (coef**2 * v).sum(axis=1)
+    ok = band_ok & (n > 0)
+    out = np.where(ok, raw - continuum, np.nan)
+    out_err = np.where(ok, np.sqrt(raw_var + continuum_var), np.nan)
+    return out, out_err
+
+
+# --------------------------------------------------------------------------------------------
+# Figure
+# --------------------------------------------------------------------------------------------
+
+def _ternary_xy(points: NDArray) -> tuple[NDArray, NDArray]:
+    """Cartesian position: Mg corner (0, 0), Fe corner (1, 0), Na corner at the top."""
+    na, fe = points[..., 0], points[..., 2]
+    return fe + 0.5 * na, na * math.sqrt(3.0) / 2.0
+
+
+def ternary_figure(points: ArrayLike | list[Composition], *, errors: ArrayLike | None = None,
+                   class_names: list[str] | None = None,
+                   speed_band_km_s: tuple[float, float] | None = None,
+                   boundary_speed_km_s: float | None = None, labels: list[str] | None = None,
+                   table: ClassTable | None = None, model: NormalModel | None = None,
+                   title: str | None = None, ax: Any = None) -> Any:
+    """Na-Mg-Fe ternary diagram with the expected normal curve and the class boundaries.
+
+    Parameters
+    ----------
+    points : array_like of shape (n, 3) or list of Composition
+        ``(na, mg, fe)`` of each meteor. For Composition objects the class and errors are
+        taken from them unless given.
+    errors : array_like of shape (n, 3), optional
+        1-sigma errors, drawn as bars along the Na and Fe axes.
+    class_names : list of str, optional
+        Class per point (colours and legend).
+    speed_band_km_s : (lo, hi), optional
+        Highlight this stretch of the expected curve (e.g. the speed with its error).
+    boundary_speed_km_s : float, optional
+        Draw the class boundaries of ``calibration/classes.csv`` for this speed.
+    labels : list of str, optional
+        Text beside each point.
+    table, model : optional
+    title : str, optional
+    ax : matplotlib Axes, optional
+        Draw into it; default a new figure.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    import matplotlib.pyplot as plt
+
+    table = _default_table() if table is None else table
+    model = _default_model() if model is None else model
+    if isinstance(points, (list, tuple)) and points and isinstance(points[0], Composition):
+        comps = list(points)
+        pts = np.array([c.values for c in comps])
+        errors = np.array([c.errors for c in comps]) if errors is None else errors
+        class_names = [c.class_name for c in comps] if class_names is None else class_names
+    else:
+        pts = np.asarray(points, dtype=float).reshape(-1, 3)
+    if class_names is not None and len(class_names) != len(pts):
+        raise ValueError(f"{len(class_names)} class names for {len(pts)} points")
+
+    if ax is None:
+        fig, ax = plt.subplots(figsize=(6.4, 5.8))
+    else:
+        fig = ax.figure
+    h = math.sqrt(3.0) / 2.0
+    ax.plot([0, 1, 0.5, 0], [0, 0, h, 0], color="0.2", lw=1.0)
+    for frac in (0.2, 0.4, 0.6, 0.8):  # light grid of constant na and constant fe
+        ax.plot([frac * 0.5, 1 - frac * 0.5], [frac * h, frac * h], color="0.88", lw=0.6, zorder=0)
+        ax.plot([frac, frac + (1 - frac) * 0.5], [0, (1 - frac) * h], color="0.88", lw=0.6,
+                zorder=0)
+    ax.text(0.5, h + 0.03, "Na", ha="center", va="bottom", fontsize=11)
+    ax.text(-0.03, -0.03, "Mg", ha="right", va="top", fontsize=11)
+    ax.text(1.03, -0.03, "Fe", ha="left", va="top", fontsize=11)
+
+    v = np.linspace(model.speed_min_km_s, model.speed_max_km_s, 300)
+    cx, cy = _ternary_xy(expected_normal(v, model=model))
+    ax.plot(cx, cy, color="k", lw=1.2, label="expected normal")
+    last_xy = (math.inf, math.inf)
+    for mark in range(10, int(model.speed_max_km_s) + 1, 5):
+        if mark < model.speed_min_km_s:
+            continue
+        mx, my = (float(c) for c in _ternary_xy(expected_normal(float(mark), model=model)))
+        if math.hypot(mx - last_xy[0], my - last_xy[1]) < 0.03:  # on the plateau: one label
+            continue
+        last_xy = (mx, my)
+        ax.plot(mx, my, "k|", ms=6)
+        ax.annotate(f"{mark} km/s" if mark == 10 else f"{mark}", (mx, my), xytext=(5, 2),
+                    textcoords="offset points", fontsize=7)
+    px_, py_ = (float(c) for c in _ternary_xy(expected_normal(model.speed_max_km_s, model=model)))
+    ax.annotate(f"{model.speed_flat_km_s:.0f}-{model.speed_max_km_s:.0f}", (px_, py_),
+                xytext=(-8, -4), textcoords="offset points", fontsize=7, ha="right", va="top")
+    if speed_band_km_s is not None:
+        lo, hi = sorted(speed_band_km_s)
+        vb = np.linspace(lo, hi, 50)
+        bx, by = _ternary_xy(expected_normal(vb, model=model))
+        # a line for the stretch and a marker, so a band on the plateau is still visible
+        ax.plot(bx, by, color="tab:orange", lw=5, alpha=0.5, solid_capstyle="round", zorder=2)
+        ax.plot(bx[25], by[25], "o", ms=11, mfc="none", mec="tab:orange", mew=2, zorder=2,
+                label=f"normal at {lo:.0f}-{hi:.0f} km/s")
+
+    if boundary_speed_km_s is not None:
+        n0 = expected_normal(float(boundary_speed_km_s), model=model)
+        na_mg0, fe_mg0 = n0[0] / n0[1], n0[2] / n0[1]
+        for rule in table.rules:
+            if rule.quantity == "na_mg_rel":  # ray from the Fe corner
+                r = rule.value * na_mg0
+                seg = np.array([[0, 0, 1.0], [r / (1 + r), 1 / (1 + r), 0]])
+            elif rule.quantity == "fe_mg_rel":  # ray from the Na corner
+                r = rule.value * fe_mg0
+                seg = np.array([[1.0, 0, 0], [0, 1 / (1 + r), r / (1 + r)]])
+            elif rule.quantity in ("na_fraction", "mg_fraction", "fe_fraction"):
+                i = ("na_fraction", "mg_fraction", "fe_fraction").index(rule.quantity)
+                a, b = np.zeros(3), np.zeros(3)
+                a[i] = b[i] = rule.value
+                j, k = [m for m in range(3) if m != i]
+                a[j] = b[k] = 1 - rule.value
+                seg = np.array([a, b])
+            else:
+                continue
+            sx, sy = _ternary_xy(seg)
+            ax.plot(sx, sy, ls="--", lw=0.7, color="0.5", zorder=1)
+        ax.text(0.0, h, f"boundaries at {boundary_speed_km_s:.0f} km/s", fontsize=7, va="top")
+
+    colours = {"normal": "tab:green", "Na-poor": "tab:orange", "Na-enhanced": "tab:purple",
+               "Na-free": "tab:red", "Fe-poor": "tab:cyan", "iron": "tab:brown",
+               "unclassified": "0.6"}
+    px, py = _ternary_xy(pts)
+    if errors is not None:
+        err = np.asarray(errors, dtype=float).reshape(-1, 3)
+        ax.errorbar(px, py, xerr=err[:, 2], yerr=err[:, 0] * h, fmt="none", ecolor="0.6", lw=0.7,
+                    zorder=2)
+    if class_names is None:
+        ax.scatter(px, py, s=22, color="tab:blue", zorder=3, label="meteors")
+    else:
+        cls = np.asarray(class_names, dtype=object)
+        for name in dict.fromkeys(class_names):
+            m = cls == name
+            ax.scatter(px[m], py[m], s=24, color=colours.get(name, "k"), edgecolor="k", lw=0.3,
+                       zorder=3, label=name)
+    if labels is not None:
+        for x, y, text in zip(px, py, labels):
+            ax.annotate(str(text), (x, y), xytext=(3, -8), textcoords="offset points", fontsize=6)
+    ax.set_xlim(-0.08, 1.08)
+    ax.set_ylim(-0.08, h + 0.1)
+    ax.set_aspect("equal")
+    ax.axis("off")
+    ax.legend(loc="upper right", fontsize=7, frameon=False)
+    if title is not None:
+        ax.set_title(title)
+    return fig

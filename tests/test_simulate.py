@@ -1,0 +1,262 @@
+"""The forward simulator: contract-conform output, exact truth, physics of the spectrum.
+
+Events here are tiny (a few frames of a few hundred pixels) so the file runs in seconds.
+"""
+
+import dataclasses
+import json
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.special import erf
+from numpy.testing import assert_allclose
+
+from meteorspec.config import find_station_file, load_event, load_station
+from meteorspec.optics import PROJECTIONS, SpectralGeometry
+from meteorspec.simulate import (
+    FIRST_ORDER_SHARE,
+    SAMPLE_SPECS,
+    EventSpec,
+    NuisanceStrengths,
+    random_specs,
+    render_event,
+    simulate_event,
+)
+from meteorspec.simulate.emission import build_emission
+from meteorspec.video import iter_frames
+
+SMALL_QM01 = {"camera.width": 240, "camera.height": 160, "lens.focal_px": 300.0,
+              "lens.cx": 119.5, "lens.cy": 79.5}
+SMALL_QM03 = {"camera.width": 200, "camera.height": 120, "lens.focal_px": 260.0,
+              "lens.cx": 99.5, "lens.cy": 59.5}
+# Everything but the three composition groups switched off (plus each group species' own
+# weaker lines, which stay: they belong to the same LTE species).
+ONLY_GROUPS = NuisanceStrengths(**{f.name: 0.0 for f in dataclasses.fields(NuisanceStrengths)})
+
+
+def tiny(**kw) -> EventSpec:
+    base = dict(station="QM01", station_id="QM01-T", overrides=SMALL_QM01, video_form="png", n_frames=6,
+                meteor_start_s=0.02, meteor_duration_s=0.2, start_px=(15.0, 60.0), direction_deg=10.0,
+                speed_deg_s=4.0, peak_energy_adu_s=2.0e6, n_stars=5, seed=7)
+    base.update(kw)
+    return EventSpec(**base)
+
+
+def _files(root: Path) -> dict[str, bytes]:
+    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+def test_same_spec_gives_identical_bytes(tmp_path):
+    spec = tiny(delta_grooves_frac=0.004, delta_dispersion_deg=0.3, delta_tilt_deg=0.5)
+    for name in ("a", "b"):
+        simulate_event(spec, tmp_path / name, truth_dir=tmp_path / name / "truth")
+    a, b = _files(tmp_path / "a"), _files(tmp_path / "b")
+    assert sorted(a) == sorted(b) and len(a) == 6 + 4  # frames, event.toml, station, response, truth
+    assert all(a[k] == b[k] for k in a)
+    # and a different seed changes the pixels
+    simulate_event(dataclasses.replace(spec, seed=8), tmp_path / "c", truth_dir=tmp_path / "c" / "truth")
+    video = [k for k in a if k.endswith("frame_00003.png")][0]
+    assert a[video] != _files(tmp_path / "c")[video]
+
+
+@pytest.mark.parametrize("form", ["avi", "fits", "tiff", "fits-frames"])
+def test_written_event_loads_through_the_readers(tmp_path, form):
+    spec = tiny(video_form=form, delta_grooves_frac=-0.005, delta_dispersion_deg=0.5, delta_tilt_deg=-3.0)
+    sim = simulate_event(spec, tmp_path / "out", truth_dir=tmp_path / "truth")
+    assert not (sim.event_dir / "truth").exists() and sim.truth_json.parent == tmp_path / "truth"
+    event = load_event(sim.event_dir)
+    station = load_station(find_station_file(event))
+    assert station.path == sim.station_toml
+    assert event.id == "20261114T031522Z_QM01-T" and event.speed_km_s == spec.speed_km_s
+    frames = list(iter_frames(event, station))
+    assert len(frames) == spec.n_frames and frames[0].signal.shape == (160, 240)
+    truth = json.loads(sim.truth_json.read_text())
+    true_g, wrote = truth["geometry_true"]["grating"], truth["geometry_written"]["grating"]
+    assert_allclose(station.grating.grooves_per_mm, true_g["grooves_per_mm"] * (1 - 0.005), rtol=1e-12)
+    assert_allclose(station.grating.dispersion_angle_deg, true_g["dispersion_angle_deg"] + 0.5)
+    # tilt 1.5 - 3.0 < 0 is written as +1.5 deg with the azimuth turned by 180 deg: the same normal
+    assert_allclose([station.grating.tilt_deg, station.grating.tilt_azimuth_deg], [1.5, 210.0])
+    assert wrote["grooves_per_mm"] == station.grating.grooves_per_mm
+    assert station.response is not None and station.response.response.max() == 1.0
+
+
+def test_composition_in_truth_is_the_spec_and_groups_follow_the_contract(tmp_path):
+    spec = tiny(na=0.137, mg=0.291, fe=0.572, n_frames=4)
+    sim = simulate_event(spec, tmp_path, truth_dir=tmp_path / "truth")
+    assert sim.truth["composition"] == {"na": 0.137, "mg": 0.291, "fe": 0.572}
+    model = build_emission(spec)
+    totals = np.array([model.group_share(g) for g in ("na", "mg", "fe")])
+    assert_allclose(totals / totals.sum(), [0.137, 0.291, 0.572], rtol=1e-12)  # exact up to round-off
+    # membership per contract section 6
+    na = model.wavelength_nm[model.group == "na"]
+    mg = model.wavelength_nm[model.group == "mg"]
+    fe = model.wavelength_nm[model.group == "fe"]
+    assert_allclose(na, [588.995, 589.592], atol=1e-3)
+    assert_allclose(mg, [516.732, 517.268, 518.360], atol=1e-3)
+    assert fe.size == 9 and fe.min() > 526 and fe.max() < 546
+    assert set(model.species[model.group == "fe"]) == {"Fe I"}
+    assert set(model.multiplet[model.group == "fe"]) == {"a 5F - z 5D*"}  # multiplet 15 terms
+    groups = sim.truth["groups"]
+    g = np.array([groups[k]["energy"] for k in ("na", "mg", "fe")])
+    assert_allclose(g / g.sum(), [0.137, 0.291, 0.572], rtol=1e-5)  # JSON keeps 6 digits
+
+
+def test_na_free_meteor_has_no_sodium():
+    model = build_emission(tiny(na=0.0, mg=0.4, fe=0.6))
+    assert model.share[model.species == "Na I"].sum() == 0.0
+    with pytest.raises(ValueError, match="sum to 1"):
+        tiny(na=0.5, mg=0.5, fe=0.5)
+
+
+def test_lte_line_ratio_inside_one_species_follows_boltzmann():
+    # External check: NIST ASD (Kramida et al., doi:10.18434/T4W30F) values entered by hand:
+    # Fe I 371.9935 nm: A = 1.62e7 s^-1, g_u = 11, E_u = 3.3320 eV (26874.55 cm^-1);
+    # Fe I 404.5813 nm: A = 8.62e7 s^-1, g_u = 9,  E_u = 4.5485 eV (36686.18 cm^-1).
+    # LTE, optically thin: I ~ (hc/lambda) A g_u exp(-E_u/kT); k = 8.617333e-5 eV/K (CODATA 2018).
+    t_k = 4500.0
+    k_ev = 8.617333262e-5
+    expected = (1.62e7 * 11 / 371.9935) / (8.62e7 * 9 / 404.5813) * math.exp(-(3.3320 - 4.5485) / (k_ev * t_k))
+    model = build_emission(tiny(temperature_k=t_k))
+
+    def share(wl):
+        i = np.flatnonzero((model.species == "Fe I") & (np.abs(model.wavelength_nm - wl) < 0.005))
+        assert i.size == 1
+        return model.share[i[0]]
+
+    # 1e-3: the hand values carry 3-4 significant digits and E_u is rounded to 1e-4 eV
+    assert_allclose(share(371.9935) / share(404.5813), expected, rtol=1e-3)
+
+
+@pytest.mark.parametrize("group", ["na", "mg"])
+def test_line_energy_is_conserved_on_the_sensor(tmp_path, group):
+    # Noise-free, response 1, a 16-bit linear camera so quantisation is negligible, and only
+    # one group species (composition 1 for it, every nuisance strength 0). Bilinear splatting
+    # and a normalised Gaussian PSF conserve flux, so the box sum equals the truth energy of
+    # the lines in it. Weak neighbours near the box edge count with the share of their
+    # (Gaussian, 1.2 px) PSF inside the box; 1 % covers that approximation and the wings.
+    over = dict(SMALL_QM01, **{"camera.bit_depth": 16, "camera.saturation_adu": 65535.0,
+                                "camera.black_level_adu": 0.0})
+    comp = {"na": 0.0, "mg": 0.0, "fe": 0.0, group: 1.0}
+    spec = tiny(overrides=over, video_form="fits", noise=False, flat_response=True, n_stars=0,
+                nuisance=ONLY_GROUPS, speed_deg_s=0.0, direction_deg=0.0, n_frames=4,
+                meteor_duration_s=0.3, peak_energy_adu_s=5.0e6, **comp)
+    sim = simulate_event(spec, tmp_path, truth_dir=tmp_path / "truth")
+    event = load_event(sim.event_dir)
+    frames = list(iter_frames(event, load_station(sim.station_toml)))
+    truth = sim.truth
+    geo = SpectralGeometry.from_station(spec.true_station())
+    lines = truth["lines"]
+    energy = np.array(lines["energy"])
+    xs, ys = geo.spectrum_pixel(*spec.start_px, np.array(lines["lab_nm"]))
+    members = np.array([g == group for g in lines["group"]])
+    ix, iy = int(round(xs[members].mean())), int(round(ys[members].mean()))
+    sigma = math.hypot(spec.psf_sigma_px, math.sqrt(1 / 6))  # PSF and mean bilinear spread
+
+    def inside(c, lo):
+        return 0.5 * (erf((lo + 13.0 - c) / (math.sqrt(2) * sigma)) - erf((lo - c) / (math.sqrt(2) * sigma)))
+
+    share_in_box = np.nan_to_num(inside(xs, ix - 6.5) * inside(ys, iy - 6.5))
+    assert np.all(share_in_box[members] > 0.999)  # the group itself sits well inside
+    for k in (1, 2):
+        want = (energy * share_in_box).sum() * truth["frames"]["energy_fraction"][k]
+        got = frames[k].signal[iy - 6:iy + 7, ix - 6:ix + 7].sum(dtype=np.float64)
+        assert want > 2000.0
+        assert_allclose(got, want, rtol=0.01)
+    total = truth["energy_total"]
+    assert_allclose(energy.sum() + total["continuum"] + total["bands"], total["all"], rtol=1e-3)
+    assert truth["first_order_share"] == FIRST_ORDER_SHARE
+
+
+def test_zeroth_order_centroid_matches_truth():
+    # Noise-free render of a moving meteor: bilinear splat + Gaussian PSF keep the centroid,
+    # so the rendered centroid equals the exposure-averaged truth (0.05 px: the brief's bar).
+    spec = tiny(noise=False, n_stars=0, speed_deg_s=20.0, direction_deg=30.0, n_frames=6)
+    r = render_event(spec)
+    for t in r.truths[1:5]:
+        img = r.linear_clean[t.index]
+        ix, iy = int(round(t.x_centroid_px)), int(round(t.y_centroid_px))
+        h = 12
+        cut = img[iy - h:iy + h + 1, ix - h:ix + h + 1].astype(np.float64)
+        yy, xx = np.mgrid[iy - h:iy + h + 1, ix - h:ix + h + 1]
+        assert abs((cut * xx).sum() / cut.sum() - t.x_centroid_px) < 0.05
+        assert abs((cut * yy).sum() / cut.sum() - t.y_centroid_px) < 0.05
+        assert_allclose(cut.sum(), t.zeroth_flux_adu, rtol=0.01)
+        assert t.n_substeps >= 2  # ~6 px of motion per frame needs substeps below 0.5 px
+
+
+@pytest.mark.parametrize("field_order", ["top", "bottom"])
+def test_interlaced_fields_in_time_order_with_their_rows(tmp_path, field_order):
+    over = dict(SMALL_QM03, **{"camera.field_order": field_order})
+    spec = EventSpec("QM03", station_id=f"QM03-{field_order}", overrides=over, video_form="avi", n_frames=4,
+                     meteor_start_s=0.0, meteor_duration_s=0.16, start_px=(20.0, 40.0), direction_deg=0.0,
+                     speed_deg_s=30.0, peak_energy_adu_s=3.0e5, noise=False, n_stars=0, seed=3)
+    sim = simulate_event(spec, tmp_path, truth_dir=tmp_path / "truth")
+    event = load_event(sim.event_dir)
+    fields = list(iter_frames(event, load_station(sim.station_toml)))
+    truth = sim.truth["frames"]
+    assert truth["kind"] == "field" and len(fields) == 8 == len(truth["index"])
+    first = 0 if field_order == "top" else 1
+    xs = []
+    for j, f in enumerate(fields):
+        assert f.y_start_px == (first if j % 2 == 0 else 1 - first)
+        assert_allclose(f.time_s, truth["time_s"][j], atol=1e-9)
+        if truth["zeroth_flux_adu"][j] < 50:
+            continue
+        cut = f.signal[:, :60].astype(np.float64)  # the zeroth order (first order lies further right)
+        x = (cut * np.arange(60)).sum() / cut.sum()
+        # 0.15 px: gamma 0.45 and 8-bit rounding of a noise-free image, quantisation only
+        assert abs(x - truth["x_centroid_px"][j]) < 0.15
+        xs.append(x)
+    assert len(xs) >= 5 and np.all(np.diff(xs) > 1.0)  # moving right, field after field
+
+
+def test_random_specs_are_seeded_and_varied():
+    a = random_specs(10, seed=5)
+    assert a == random_specs(10, seed=5)
+    assert a != random_specs(10, seed=6)
+    assert {dict(s.overrides)["lens.projection"] for s in a} == set(PROJECTIONS)
+    for s in a:
+        assert abs(s.na + s.mg + s.fe - 1.0) < 1e-9 and 11 <= s.speed_km_s <= 72
+        assert s.delta_grooves_frac == 0.0
+    assert any(s.delta_grooves_frac != 0 for s in random_specs(4, seed=5, perturb=True))
+    assert len({s.station_id for s in a}) == 10
+
+
+def test_a_random_event_renders_and_validates(tmp_path):
+    spec = random_specs(3, seed=1)[2]
+    spec = dataclasses.replace(spec, n_frames=5)
+    sim = simulate_event(spec, tmp_path, truth_dir=tmp_path / "truth")
+    event = load_event(sim.event_dir)
+    assert len(list(iter_frames(event, load_station(sim.station_toml)))) >= 5
+
+
+def test_sample_specs_cover_the_demo_cases():
+    forms = {s.video_form for s in SAMPLE_SPECS.values()}
+    assert len(forms) >= 2
+    stations = {s.true_station().camera.interlaced for s in SAMPLE_SPECS.values()}
+    assert stations == {True, False}
+    assert any(s.na == 0 for s in SAMPLE_SPECS.values())
+
+
+def test_bad_specs_fail_clearly(tmp_path):
+    with pytest.raises(ValueError, match="video_form"):
+        tiny(video_form="mp4")
+    with pytest.raises(ValueError, match="unknown override"):
+        tiny(overrides={"camera.colour": 3})
+    spec = EventSpec("QM04", video_form="avi", n_frames=2)
+    with pytest.raises(ValueError, match="8-bit"):
+        simulate_event(spec, tmp_path, truth_dir=tmp_path / "truth")
+    assert not any(tmp_path.iterdir())
+
+
+def test_saturation_and_off_frame_flags():
+    bright = render_event(tiny(peak_energy_adu_s=1e9, n_frames=4, n_stars=0))
+    faint = render_event(tiny(peak_energy_adu_s=1e4, n_frames=4, n_stars=0))
+    assert any(t.saturated for t in bright.truths) and not any(t.saturated for t in faint.truths)
+    # a meteor that leaves the sensor through the left edge
+    gone = render_event(tiny(start_px=(3.0, 60.0), direction_deg=180.0, speed_deg_s=40.0, n_frames=6,
+                             n_stars=0, meteor_duration_s=0.2))
+    lit = [t for t in gone.truths if t.emitted_energy_adu > 0]
+    assert not lit[0].off_frame and lit[-1].off_frame

@@ -65,13 +65,13 @@ SAMPLE_SPECS: dict[str, EventSpec] = {
         speed_km_s=24.0, n_stars=40, sky_adu=5.0, seed=22),
     # interlaced PAL-like 8-bit camera with gamma 0.45 (720 x 576, 25 frames/s), AVI
     "interlaced_pal": _sample(
-        "QM03", start_utc="2026-12-13T23:02:51.640Z", video_form="avi", fps=25.0, n_frames=16,
+        "QM03", start_utc="2026-11-13T23:02:51.640Z", video_form="avi", fps=25.0, n_frames=16,
         meteor_start_s=0.08, meteor_duration_s=0.5, start_px=(60.0, 90.0), direction_deg=28.0,
         speed_deg_s=22.0, peak_energy_adu_s=2.5e7, peak_time_frac=0.6, na=0.28, mg=0.27, fe=0.45,
         speed_km_s=58.0, n_stars=25, sky_adu=3.0, seed=33),
     # a saturated fireball with a terminal flare on the 12-bit camera (binned 512 x 384), PNG
     "saturated_fireball": _sample(
-        "QM04", start_utc="2027-01-03T04:27:13.000Z", video_form="png", fps=25.0, n_frames=30,
+        "QM04", start_utc="2026-10-03T04:27:13.000Z", video_form="png", fps=25.0, n_frames=30,
         meteor_start_s=0.1, meteor_duration_s=1.0, start_px=(40.0, 80.0), end_px=(200.0, 150.0),
         peak_energy_adu_s=4.0e9, light_curve="flare", flare_amplitude=1.5, peak_time_frac=0.5,
         na=0.15, mg=0.35, fe=0.50, speed_km_s=19.0, n_stars=30, sky_adu=30.0, seed=44),

@@ -14,9 +14,13 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__
-from .config import Event, Station, find_station_file, load_event, load_station
+from .background import estimate_background
+from .config import Station, find_station_file, load_event, load_station
 from .errors import InputError
+from .extract import FrameSpectra, extract_spectra
+from .optics import SpectralGeometry
 from .result import STAGES, EventResult, FrameTimes, InputRecord
+from .track import Track, find_track
 from .video import FrameStack, read_stack
 
 
@@ -59,6 +63,54 @@ def frame_times(stack: FrameStack) -> FrameTimes:
     n_sat = np.array([int(np.count_nonzero(frame.saturated)) for frame in stack])
     return FrameTimes(time_s=stack.time_s, exposure_s=stack.exposure_s, n_saturated_px=n_sat,
                       interlaced=stack.camera.interlaced)
+
+
+def _strings(values: np.ndarray) -> np.ndarray:
+    return np.array([str(v).encode() for v in values], dtype=object)
+
+
+def track_part(track: Track) -> dict[str, object]:
+    """``/track`` of contract section 5 plus the measurements behind the fit."""
+    datasets = {
+        "time_s": (track.time_s, "s"),
+        "x": (track.x_px, "px"),
+        "y": (track.y_px, "px"),
+        "flux": (track.flux_adu, "adu"),
+        "flux_err": (track.flux_err_adu, "adu"),
+        "x_measured": (track.x_meas_px, "px"),
+        "y_measured": (track.y_meas_px, "px"),
+        "snr": (track.snr, "1"),
+        "frame_index": (track.frame_index, "1"),
+        "status": (_strings(track.status), "1"),
+    }
+    attrs = {"found": bool(track), "reason": track.reason, "flags": list(track.flags),
+             "exposure_s": track.exposure_s, "psf_sigma_px": track.psf_sigma_px,
+             "position_convention": "fitted zeroth-order centroid at mid-exposure"}
+    if track.trajectory is not None:
+        attrs["trajectory_pole"] = np.asarray(track.trajectory.pole, float)
+    return {"attrs": attrs, "datasets": datasets}
+
+
+def spectrum_part(spectra: FrameSpectra, *, flux_unit: str) -> dict[str, object]:
+    """``/spectrum``: whole-flight spectrum and the per-frame spectra on the same grid."""
+    whole = spectra.whole_flight()
+    density = f"{flux_unit}/nm"
+    per_frame_err = np.sqrt(np.where(np.isfinite(spectra.variance), spectra.variance, np.nan))
+    return {
+        "attrs": {"flags": list(spectra.flags), "optimal_extraction": bool(spectra.optimal),
+                  "flux_kind": "spectral density; sum(flux * bin_width_nm) over a line is its energy"},
+        "datasets": {
+            "wavelength_nm": (whole.wavelength_nm, "nm"),
+            "bin_width_nm": (whole.bin_width_nm, "nm"),
+            "flux": (whole.flux, density),
+            "flux_err": (whole.flux_err, density),
+            "mask": (whole.mask, "1"),
+            "per_frame": (spectra.flux, density),
+            "per_frame_err": (per_frame_err, density),
+            "per_frame_mask": (spectra.mask, "1"),
+            "time_s": (spectra.time_s, "s"),
+        },
+    }
 
 
 def _calibration_from_station(station: Station) -> dict[str, object]:
@@ -129,6 +181,21 @@ def process_event(event_path: str | Path, *, stations_dir: str | Path | None = N
 
     if result.frames.n_saturated_px.any():
         result.add_flag("saturated")
+    camera = station.camera
+    geometry = SpectralGeometry.from_station(station)
+    orders = [o for o in station.grating.orders if o != 0]
+    background = estimate_background(stack, camera=camera, seed=0)
+    track = find_track(stack, background, geometry, camera=camera, orders=orders, seed=0)
+    result.parts["track"] = track_part(track)
+    for flag in track.flags:
+        result.add_flag(flag)
+    if track:
+        spectra = extract_spectra(stack, background, track, geometry, camera=camera, order=orders[0])
+        for flag in spectra.flags:
+            result.add_flag(flag)
+        result.parts["spectrum"] = spectrum_part(spectra, flux_unit="adu")
+    else:
+        result.add_flag("no_meteor")
     result.parts["calibration"] = _calibration_from_station(station)
     result.add_flag("calibration_from_station")
     for stage in STAGES:

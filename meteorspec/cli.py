@@ -2,9 +2,14 @@
 
 Commands
 --------
-``meteorspec process EVENT... --out DIR [--stations DIR]``
+``meteorspec process EVENT... --out DIR [--stations DIR] [--workers N | --scheduler ADDRESS] [--force]``
     Reduce events (event folders, ``event.toml`` files, or folders holding
-    events at any depth) into ``DIR/<event id>.h5``.
+    events at any depth) into ``DIR/<event id>.h5`` and the night table
+    ``DIR/night.csv``; events already up to date are skipped.
+``meteorspec report OUT_DIR [--html DIR]``
+    Static HTML night report (default ``OUT_DIR/report/index.html``).
+``meteorspec show EVENT.h5``
+    Text summary of one event file.
 ``meteorspec simulate --out DIR [--preset NAME ...] [--random N --seed S]``
     Write synthetic events (the bundled sample set by default).
 """
@@ -20,47 +25,74 @@ from . import __version__
 
 
 def find_events(paths: Sequence[str | Path]) -> list[tuple[Path, Path]]:
-    """Expand command-line paths into ``(event.toml, run root)`` pairs, sorted, no repeats.
+    """Expand command-line paths into ``(event.toml, run root)`` pairs (see :func:`meteorspec.batch.find_events`)."""
+    from .batch import find_events as _find
 
-    A folder without ``event.toml`` is searched at any depth; it is then the run
-    root where the search for station files stops.
-    """
-    found: dict[Path, Path] = {}
-    for raw in paths:
-        path = Path(raw)
-        if path.is_file():
-            found.setdefault(path.resolve(), path.resolve().parent)
-        elif (path / "event.toml").is_file():
-            found.setdefault((path / "event.toml").resolve(), path.resolve())
-        elif path.is_dir():
-            for toml in sorted(path.rglob("event.toml")):
-                found.setdefault(toml.resolve(), path.resolve())
-        else:
-            found.setdefault(path.resolve(), path.resolve().parent)  # reported as failed later
-    return sorted(found.items())
+    return _find(paths)
 
 
 def _cmd_process(args: argparse.Namespace) -> int:
-    from .pipeline import process_event
-    from .store import output_path, write_event
+    from .batch import Progress, run_night
 
     events = find_events(args.events)
     if not events:
         print(f"meteorspec: no event.toml found under {' '.join(args.events)}", file=sys.stderr)
         return 2
-    n_failed = 0
-    for toml, root in events:
-        result = process_event(toml, stations_dir=args.stations, run_root=root)
-        out = write_event(output_path(args.out, result.event_id), result)
-        line = f"{result.event_id}: {result.status}"
-        if result.status == "failed":
-            n_failed += 1
-            line += f": {result.error}"
-        elif result.flags:
-            line += f" [{', '.join(result.flags)}]"
-        print(f"{line} -> {out}")
-    print(f"{len(events) - n_failed}/{len(events)} events processed without failure")
-    return 1 if n_failed else 0
+    if args.workers < 1:
+        print(f"meteorspec: --workers must be at least 1, got {args.workers}", file=sys.stderr)
+        return 2
+    progress = Progress(len(events), stream=sys.stderr) if not args.quiet else None
+    if progress is not None:
+        progress.draw()  # on a terminal: the bar from the start (no-op in a log)
+    out_dir = Path(args.out)
+
+    def on_row(row) -> None:
+        line = f"{row.event_id}: {row.status}"
+        if row.status == "failed":
+            line += f": {row.error}"
+        elif row.flags:
+            line += f" [{', '.join(row.flags)}]"
+        if row.action == "skipped":
+            line += " (up to date, skipped)"
+        if row.output:
+            line += f" -> {out_dir / row.output}"
+        if progress is not None:
+            progress.clear()
+        print(line, flush=True)
+        if progress is not None:
+            progress.step()
+
+    night = run_night(events, out_dir=out_dir, stations_dir=args.stations, workers=args.workers,
+                      scheduler=args.scheduler, force=args.force, on_row=on_row)
+    if progress is not None:
+        progress.close()
+    n = len(night.rows)
+    print(f"{n - night.n_failed}/{n} events processed without failure; table: {night.table}")
+    return 1 if night.n_failed else 0
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from .report import write_report
+
+    try:
+        index = write_report(args.out_dir, report_dir=args.html)
+    except (FileNotFoundError, NotADirectoryError) as exc:
+        print(f"meteorspec: {exc}", file=sys.stderr)
+        return 2
+    print(f"report: {index}")
+    return 0
+
+
+def _cmd_show(args: argparse.Namespace) -> int:
+    from .errors import InputError
+    from .show import summarise
+
+    try:
+        print(summarise(args.event_file))
+    except InputError as exc:
+        print(f"meteorspec: {exc}", file=sys.stderr)
+        return 2
+    return 0
 
 
 def _cmd_simulate(args: argparse.Namespace) -> int:
@@ -93,7 +125,22 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("events", nargs="+", help="event folders, event.toml files, or folders of events")
     p.add_argument("--out", required=True, help="output folder for <event id>.h5")
     p.add_argument("--stations", help="folder of <station>.toml files (default: search beside the events)")
+    p.add_argument("--workers", type=int, default=1, metavar="N",
+                   help="worker processes on this machine (default 1: serial, no Dask)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run on an existing Dask cluster, e.g. tcp://10.0.0.5:8786 (overrides --workers)")
+    p.add_argument("--force", action="store_true", help="redo events whose output is up to date")
+    p.add_argument("--quiet", action="store_true", help="no progress bar (result lines only)")
     p.set_defaults(func=_cmd_process)
+
+    r = sub.add_parser("report", help="write a static HTML night report from a folder of event files")
+    r.add_argument("out_dir", help="folder holding <event id>.h5 (and night.csv) from 'process'")
+    r.add_argument("--html", help="folder for the report (default: OUT_DIR/report)")
+    r.set_defaults(func=_cmd_report)
+
+    w = sub.add_parser("show", help="print a text summary of one event file")
+    w.add_argument("event_file", help="an <event id>.h5 file")
+    w.set_defaults(func=_cmd_show)
 
     s = sub.add_parser("simulate", help="write synthetic events from the forward model")
     s.add_argument("--out", required=True, help="folder for the event folders and stations/")

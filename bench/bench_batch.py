@@ -1,0 +1,104 @@
+"""Batch throughput: events per minute with 1 and 2 workers (target: 2 workers >= 1.8x one).
+
+Usage (from the top of the repository)::
+
+    python bench/bench_batch.py [--night sample_events] [--copies 4] [--repeat 3]
+
+The night (default: the bundled sample events) is copied ``--copies`` times into
+a temporary folder, each copy with its own event ids, so that both workers have
+enough events to share. Three runs, each into a fresh output folder:
+
+1. ``serial``: ``workers=1`` (in this process, no Dask);
+2. ``2 workers``: ``workers=2``, a LocalCluster started and stopped by the run
+   (what ``meteorspec process --workers 2`` does, start-up included);
+3. ``2 workers, warm``: the same on a LocalCluster started beforehand
+   (``--scheduler``), i.e. the steady-state rate of a long night.
+
+Reports events/min for each and the ratios to serial. Timings only, no
+assertions: the ratio is a target for the machine, not a test.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import os
+import re
+import shutil
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+REPO = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(REPO))
+
+from meteorspec.batch import find_events, run_night  # noqa: E402
+
+
+def replicate_night(night: Path, dest: Path, copies: int) -> Path:
+    """Copy every event folder of ``night`` ``copies`` times under ``dest``, ids suffixed ``_c<k>``."""
+    dest.mkdir(parents=True, exist_ok=True)
+    for stations in night.rglob("stations"):
+        if stations.is_dir():
+            shutil.copytree(stations, dest / stations.relative_to(night), dirs_exist_ok=True)
+    for toml in sorted(night.rglob("event.toml")):
+        folder = toml.parent
+        for k in range(copies):
+            target = dest / folder.relative_to(night).parent / f"{folder.name}_c{k}"
+            shutil.copytree(folder, target)
+            text = (target / "event.toml").read_text()
+            text = re.sub(r'(?m)^(id\s*=\s*")([^"]+)(")', rf"\g<1>\g<2>_c{k}\g<3>", text, count=1)
+            (target / "event.toml").write_text(text)
+    return dest
+
+
+def timed(events, out: Path, *, repeat: int, **kw) -> tuple[float, int]:
+    """Best wall time of ``repeat`` runs, each into a fresh folder (the minimum is the least disturbed
+    by other load on the machine, as in :mod:`timeit`)."""
+    best, n_ok = float("inf"), 0
+    for k in range(repeat):
+        t0 = time.perf_counter()
+        night = run_night(events, out_dir=out / f"run{k}", **kw)
+        best = min(best, time.perf_counter() - t0)
+        n_ok = len(night.rows) - night.n_failed
+    return best, n_ok
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--night", default=str(REPO / "sample_events"), help="folder of events")
+    parser.add_argument("--copies", type=int, default=4, help="copies of the night to process")
+    parser.add_argument("--repeat", type=int, default=3, help="runs per configuration; the best is reported")
+    args = parser.parse_args(argv)
+
+    night = Path(args.night)
+    if not list(night.rglob("event.toml")):
+        print(f"no events under {night}; run 'meteorspec simulate --out sample_events' first", file=sys.stderr)
+        return 2
+    logging.getLogger("distributed").setLevel(logging.ERROR)
+    with tempfile.TemporaryDirectory(prefix="meteorspec-bench-") as tmp:
+        root = replicate_night(night, Path(tmp) / "night", args.copies)
+        events = find_events([root])
+        n = len(events)
+        print(f"{n} events ({args.copies} copies of {night}), {os.cpu_count()} CPUs, "
+              f"load average {os.getloadavg()[0]:.1f}, best of {args.repeat}")
+        results = {}
+        results["serial"] = timed(events, Path(tmp) / "serial", repeat=args.repeat)
+        results["2 workers"] = timed(events, Path(tmp) / "two", repeat=args.repeat, workers=2)
+        from distributed import LocalCluster
+
+        with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                          dashboard_address="127.0.0.1:0", silence_logs=logging.ERROR) as cluster:
+            timed(events[:2], Path(tmp) / "warmup", repeat=1, scheduler=cluster.scheduler_address)  # imports
+            results["2 workers, warm"] = timed(events, Path(tmp) / "warm", repeat=args.repeat,
+                                               scheduler=cluster.scheduler_address)
+    base = n / results["serial"][0] * 60
+    for name, (seconds, n_ok) in results.items():
+        rate = n / seconds * 60
+        print(f"{name:<16} {seconds:7.1f} s  {rate:7.1f} events/min  x{rate / base:4.2f}  ({n_ok}/{n} not failed)")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,377 @@
+"""Batch runner: a failing event never stops the night, resumable, parallel equals serial."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+STATION_TOML = """\
+# Invented test camera (not part of the demo network): small frames keep the tests fast.
+[station]
+id = "{sid}"
+
+[camera]
+width = 64
+height = 48
+bit_depth = 8
+gamma = 1.0
+saturation_adu = 255
+interlaced = false
+
+[lens]
+projection = "equidistant"
+focal_px = 60.0
+cx = 31.5
+cy = 23.5
+
+[grating]
+grooves_per_mm = 300.0
+dispersion_angle_deg = 0.0
+"""
+
+EVENT_TOML = """\
+[event]
+id = "{eid}"
+station = "{sid}"
+start_utc = "2026-11-14T03:{minute:02d}:00.000Z"
+fps = 25.0
+video = "video.fits"
+"""
+
+
+def make_night(root: Path, n_events: int, *, corrupt: int = 0, seed: int = 0, n_frames: int = 12) -> list[Path]:
+    """A small invented night: ``n_events`` event folders two levels deep, one shared station file.
+
+    Each video is seeded noise with a moving blob (a stand-in meteor); the last
+    ``corrupt`` events get a video file that is not a FITS file at all.
+    """
+    from meteorspec.config import load_station
+    from meteorspec.video import write_video
+
+    rng = np.random.default_rng(seed)
+    root.mkdir(parents=True, exist_ok=True)
+    (root / "stations").mkdir(exist_ok=True)
+    sid = "TB01"
+    (root / "stations" / f"{sid}.toml").write_text(STATION_TOML.format(sid=sid))
+    camera = load_station(root / "stations" / f"{sid}.toml").camera
+    folders = []
+    yy, xx = np.mgrid[0:camera.height, 0:camera.width]
+    for i in range(n_events):
+        eid = f"20261114T03{i:02d}00Z_{sid}"
+        folder = root / "cam" / f"ev{i:03d}"
+        folder.mkdir(parents=True)
+        (folder / "event.toml").write_text(EVENT_TOML.format(eid=eid, sid=sid, minute=i))
+        if i >= n_events - corrupt:
+            (folder / "video.fits").write_bytes(b"this is not a FITS cube\n" * 10)
+        else:
+            frames = rng.normal(20.0, 2.0, size=(n_frames, camera.height, camera.width))
+            for k in range(n_frames):
+                x0, y0 = 10 + 3 * k, 12 + k
+                frames[k] += 150 * np.exp(-((xx - x0) ** 2 + (yy - y0) ** 2) / 4.0)
+            write_video(folder / "video.fits", np.clip(np.rint(frames), 0, 255).astype(np.uint8),
+                        camera=camera, fps=25.0)
+        folders.append(folder)
+    return folders
+
+
+# --------------------------------------------------------------------------- helpers
+
+import math
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import h5py
+import pytest
+
+from meteorspec import batch
+from meteorspec.batch import EventRow, Progress, find_events, read_table, run_night
+from meteorspec.cli import main
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+def hdf5_differences(a: Path, b: Path) -> list[str]:
+    """Every difference between two HDF5 files in structure, datasets and attributes.
+
+    Bytes are not compared: HDF5 files hold object addresses and free-space
+    layout that legitimately differ between equal contents.
+    """
+    diffs: list[str] = []
+
+    def same(x, y) -> bool:
+        x, y = np.asarray(x), np.asarray(y)
+        if x.shape != y.shape or x.dtype.kind != y.dtype.kind:
+            return False
+        if x.dtype.names:
+            return all(same(x[n], y[n]) for n in x.dtype.names)
+        if x.dtype.kind in "fc":
+            return bool(np.array_equal(x, y, equal_nan=True))
+        return bool(np.array_equal(x, y))
+
+    def walk(ga: h5py.Group, gb: h5py.Group) -> None:
+        for key in sorted(set(ga.attrs) | set(gb.attrs)):
+            if key not in ga.attrs or key not in gb.attrs or not same(ga.attrs[key], gb.attrs[key]):
+                diffs.append(f"{ga.name} attribute {key}")
+        for name in sorted(set(ga) | set(gb)):
+            if name not in ga or name not in gb:
+                diffs.append(f"{ga.name}/{name} present in one file only")
+                continue
+            oa, ob = ga[name], gb[name]
+            if isinstance(oa, h5py.Group) and isinstance(ob, h5py.Group):
+                walk(oa, ob)
+            elif isinstance(oa, h5py.Dataset) and isinstance(ob, h5py.Dataset):
+                if not same(oa[()], ob[()]):
+                    diffs.append(f"{oa.name} data")
+                walk_attrs = [k for k in sorted(set(oa.attrs) | set(ob.attrs))
+                              if k not in oa.attrs or k not in ob.attrs or not same(oa.attrs[k], ob.attrs[k])]
+                diffs.extend(f"{oa.name} attribute {k}" for k in walk_attrs)
+            else:
+                diffs.append(f"{oa.name} kind differs")
+
+    with h5py.File(a, "r") as fa, h5py.File(b, "r") as fb:
+        walk(fa, fb)
+    return diffs
+
+
+def assert_same_outputs(dir_a: Path, dir_b: Path) -> None:
+    names_a = sorted(p.name for p in dir_a.glob("*.h5"))
+    assert names_a == sorted(p.name for p in dir_b.glob("*.h5"))
+    assert names_a
+    for name in names_a:
+        assert hdf5_differences(dir_a / name, dir_b / name) == [], name
+    assert (dir_a / "night.csv").read_text() == (dir_b / "night.csv").read_text()
+
+
+def _no_temporaries(out: Path) -> None:
+    assert [p.name for p in out.iterdir() if p.name.endswith(".tmp")] == []
+
+
+# --------------------------------------------------------------------------- tests
+
+
+def test_hdf5_comparison_sees_a_changed_value(tmp_path):
+    # the comparison helper must not pass everything: a one-ulp change is seen
+    for name, value in (("a.h5", 1.0), ("b.h5", np.nextafter(1.0, 2.0))):
+        with h5py.File(tmp_path / name, "w") as f:
+            f.create_dataset("g/x", data=[0.0, value])
+            f["g"].attrs["n"] = 1
+    assert hdf5_differences(tmp_path / "a.h5", tmp_path / "b.h5") == ["/g/x data"]
+    assert hdf5_differences(tmp_path / "a.h5", tmp_path / "a.h5") == []
+
+
+def test_a_corrupt_event_fails_with_one_line_and_the_night_goes_on(tmp_path):
+    make_night(tmp_path / "night", 4, corrupt=1)
+    night = run_night(find_events([tmp_path / "night"]), out_dir=tmp_path / "out")
+    statuses = [r.status for r in night.rows]
+    assert "failed" not in statuses[:3]
+    bad = night.rows[3]
+    assert bad.status == "failed"
+    assert "ev003" in bad.error and "video.fits" in bad.error and "\n" not in bad.error
+    table = read_table(tmp_path / "out" / "night.csv")
+    assert [r["status"] for r in table] == statuses
+    assert table[3]["error"] == bad.error
+    assert list(table[0]) == list(batch.TABLE_COLUMNS)
+    # the failed event also has its file, saying why
+    from meteorspec.store import read_root
+    root = read_root(tmp_path / "out" / bad.output)
+    assert root["status"] == "failed" and root["error"] == bad.error
+
+
+def test_exit_code_and_lines_of_the_command(tmp_path, capsys):
+    make_night(tmp_path / "night", 2, corrupt=1)
+    assert main(["process", str(tmp_path / "night"), "--out", str(tmp_path / "out")]) == 1
+    out = capsys.readouterr()
+    lines = out.out.strip().splitlines()
+    assert len(lines) == 3 and "failed: " in lines[1] and lines[2].startswith("1/2 events")
+    # stderr is not a terminal under pytest: one progress line per event, with an ETA
+    progress = [ln for ln in out.err.splitlines() if ln.startswith("[")]
+    assert len(progress) == 2 and all("eta" in ln for ln in progress)
+
+
+def test_an_exception_inside_a_stage_is_recorded_not_raised(tmp_path, monkeypatch):
+    import meteorspec.pipeline as pipeline
+
+    make_night(tmp_path / "night", 2)
+    real = pipeline.process_event
+
+    def flaky(event_path, **kw):
+        if "ev000" in str(event_path):
+            raise ZeroDivisionError("simulated bug")
+        return real(event_path, **kw)
+
+    monkeypatch.setattr(pipeline, "process_event", flaky)
+    night = run_night(find_events([tmp_path / "night"]), out_dir=tmp_path / "out")
+    assert night.rows[0].status == "failed"
+    assert "internal error: ZeroDivisionError: simulated bug" in night.rows[0].error
+    assert night.rows[1].status != "failed"
+
+
+def test_resume_skips_up_to_date_events_and_force_redoes_them(tmp_path, monkeypatch):
+    folders = make_night(tmp_path / "night", 3)
+    events = find_events([tmp_path / "night"])
+    first = run_night(events, out_dir=tmp_path / "out")
+    assert {r.action for r in first.rows} == {"processed"}
+    again = run_night(events, out_dir=tmp_path / "out")
+    assert {r.action for r in again.rows} == {"skipped"}
+    assert [r.table_row() for r in again.rows] == [r.table_row() for r in first.rows]
+
+    # a changed input (new video bytes) makes only that event out of date
+    make_night(tmp_path / "other", 3, seed=7)
+    (folders[1] / "video.fits").write_bytes((tmp_path / "other/cam/ev001/video.fits").read_bytes())
+    third = run_night(events, out_dir=tmp_path / "out")
+    assert [r.action for r in third.rows] == ["skipped", "processed", "skipped"]
+
+    assert {r.action for r in run_night(events, out_dir=tmp_path / "out", force=True).rows} == {"processed"}
+    # a new software version makes every output out of date
+    monkeypatch.setattr(batch, "__version__", "999.0")
+    assert {r.action for r in run_night(events, out_dir=tmp_path / "out").rows} == {"processed"}
+
+
+def test_an_unreadable_output_is_redone_only_if_it_can_be_replaced_safely(tmp_path):
+    make_night(tmp_path / "night", 2)
+    events = find_events([tmp_path / "night"])
+    night = run_night(events, out_dir=tmp_path / "out")
+    broken = tmp_path / "out" / night.rows[0].output
+    broken.write_bytes(b"garbage")
+    rows = run_night(events, out_dir=tmp_path / "out").rows
+    # the store refuses to overwrite a file it cannot read (it may hold a review log)
+    assert rows[0].status == "failed" and "existing output cannot be read" in rows[0].error
+    assert broken.read_bytes() == b"garbage"
+    assert rows[1].action == "skipped"
+
+
+def test_duplicate_event_ids_are_not_run(tmp_path):
+    folders = make_night(tmp_path / "night", 2)
+    text = (folders[0] / "event.toml").read_text()
+    (folders[1] / "event.toml").write_text(text)
+    night = run_night(find_events([tmp_path / "night"]), out_dir=tmp_path / "out")
+    assert night.rows[0].status != "failed"
+    assert night.rows[1].status == "failed" and "also used by" in night.rows[1].error
+
+
+def test_stale_temporaries_are_removed_at_start(tmp_path):
+    make_night(tmp_path / "night", 1)
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / ".20261114T030000Z_TB01.h5.abc123.tmp").write_bytes(b"half")
+    (out / ".night.csv.xyz.tmp").write_bytes(b"half")
+    run_night(find_events([tmp_path / "night"]), out_dir=out)
+    _no_temporaries(out)
+
+
+class _FakeTerminal:
+    def __init__(self, tty: bool):
+        self.text, self.tty = "", tty
+
+    def write(self, s: str) -> None:
+        self.text += s
+
+    def flush(self) -> None:
+        pass
+
+    def isatty(self) -> bool:
+        return self.tty
+
+
+def test_progress_shows_an_eta_and_redraws_only_on_a_terminal():
+    clock = iter([100.0, 110.0, 200.0, 210.0])
+    term = _FakeTerminal(tty=True)
+    p = Progress(4, stream=term, clock=lambda: next(clock))
+    p.step()  # 1 of 4 after 10 s: 30 s left
+    assert "1/4" in term.text and "eta 00:30" in term.text and "\n" not in term.text
+    log = _FakeTerminal(tty=False)
+    q = Progress(2, stream=log, clock=lambda: next(clock))
+    q.step()
+    assert log.text.count("\n") == 1 and "eta 00:10" in log.text
+    assert Progress._clock(math.nan) == "--:--" and Progress._clock(3725) == "1:02:05"
+
+
+def test_table_row_formats_numbers_and_flags():
+    row = EventRow(event_id="e", status="ok", event="/x/event.toml", flags=("a", "b"), na=0.25, klass="normal")
+    t = row.table_row()
+    assert t["flags"] == "a;b" and t["na"] == "0.25" and t["mg"] == "" and t["class"] == "normal"
+
+
+@pytest.fixture(scope="module")
+def local_cluster():
+    """A two-process Dask cluster on the loopback interface only (HTTP server included), quiet logs.
+
+    Stands in for an existing cluster reached with ``--scheduler``.
+    """
+    import logging
+
+    from distributed import LocalCluster
+
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address="127.0.0.1:0", silence_logs=logging.ERROR) as cluster:
+        yield cluster
+
+
+def _three_ways(args: list[str], tmp_path: Path, cluster) -> None:
+    """Serial, ``--workers 2`` and ``--scheduler`` runs of the same events give the same content."""
+    codes = [main(["process", *args, "--out", str(tmp_path / "serial"), "--quiet"]),
+             main(["process", *args, "--out", str(tmp_path / "two"), "--workers", "2", "--quiet"]),
+             main(["process", *args, "--out", str(tmp_path / "cluster"), "--quiet",
+                   "--scheduler", cluster.scheduler_address])]
+    assert len(set(codes)) == 1
+    assert_same_outputs(tmp_path / "serial", tmp_path / "two")
+    assert_same_outputs(tmp_path / "serial", tmp_path / "cluster")
+
+
+def test_parallel_equals_serial(tmp_path, local_cluster):
+    make_night(tmp_path / "night", 5, corrupt=1)
+    _three_ways([str(tmp_path / "night")], tmp_path, local_cluster)
+
+
+def _sample_events(n: int) -> list[Path]:
+    """The ``n`` smallest sample events (by bytes on disk), to keep the test affordable."""
+    def size(folder: Path) -> int:
+        return sum(f.stat().st_size for f in folder.rglob("*") if f.is_file())
+
+    folders = sorted((t.parent for t in (REPO / "sample_events").rglob("event.toml")), key=lambda f: (size(f), f))
+    return folders[:n]
+
+
+@pytest.mark.slow
+def test_sample_night_parallel_equals_serial(tmp_path, local_cluster):
+    # the two smallest sample events keep this affordable once every stage runs
+    events = _sample_events(2)
+    if not events:
+        pytest.skip("sample_events/ holds no events yet (written by 'meteorspec simulate --out sample_events')")
+    _three_ways([str(e / "event.toml") for e in events], tmp_path, local_cluster)
+
+
+def test_sigkill_mid_run_then_resume_completes_with_whole_files(tmp_path):
+    # events large enough (~0.1 s each) that the kill lands mid-night
+    make_night(tmp_path / "night", 8, n_frames=150)
+    out = tmp_path / "out"
+    cmd = [sys.executable, "-m", "meteorspec.cli", "process", str(tmp_path / "night"), "--out", str(out), "--quiet"]
+    env = {**os.environ, "PYTHONPATH": str(REPO) + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    proc = subprocess.Popen(cmd, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                            stdin=subprocess.DEVNULL)
+    try:
+        deadline = time.monotonic() + 60
+        while not list(out.glob("*.h5")) and time.monotonic() < deadline and proc.poll() is None:
+            time.sleep(0.005)
+        os.kill(proc.pid, signal.SIGKILL)
+    finally:
+        proc.wait(timeout=30)
+    n_done = len(list(out.glob("*.h5")))
+    assert proc.returncode == -signal.SIGKILL
+    assert 1 <= n_done < 8, "the kill should land mid-night"
+    for h5 in out.glob("*.h5"):  # whatever exists is whole
+        with h5py.File(h5, "r") as f:
+            assert f.attrs["status"] in ("ok", "partial")
+    rows = read_table(out / "night.csv")  # the interim table is a valid CSV
+    assert len(rows) == 8 and {r["status"] for r in rows} <= {"ok", "partial", "pending"}
+
+    rerun = subprocess.run(cmd, env=env, capture_output=True, text=True, stdin=subprocess.DEVNULL, timeout=120)
+    assert rerun.returncode == 0, rerun.stderr
+    assert rerun.stdout.count("(up to date, skipped)") >= n_done - 1  # the last one may have been mid-write
+    assert len(list(out.glob("*.h5"))) == 8
+    _no_temporaries(out)
+    assert {r["status"] for r in read_table(out / "night.csv")} <= {"ok", "partial"}

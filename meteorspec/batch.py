@@ -47,7 +47,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import TextIO
 
-from . import __version__
+from .version import software_version
 
 NIGHT_TABLE = "night.csv"
 
@@ -168,7 +168,7 @@ def current_input_hashes(job: EventJob) -> dict[str, str] | None:
 
 def is_up_to_date(output: Path, job: EventJob) -> bool:
     """True if ``output`` was made by this software version from the inputs now on disk."""
-    from .report._data import read_inputs
+    from .store import read_inputs
 
     if not output.is_file():
         return False
@@ -176,14 +176,14 @@ def is_up_to_date(output: Path, job: EventJob) -> bool:
         version, recorded = read_inputs(output)
     except Exception:  # noqa: BLE001 - any unreadable file means "redo it"
         return False
-    if version != __version__ or not recorded:
+    if version != software_version() or not recorded:
         return False
     return recorded == current_input_hashes(job)
 
 
 def row_from_file(output: Path, *, event_path: str, action: str) -> EventRow:
     """The night-table row of a written event file."""
-    from .report._data import read_summary
+    from .store import read_summary
 
     s = read_summary(output)
     comp = s.get("composition", {})
@@ -228,7 +228,7 @@ def run_event(job: EventJob) -> EventRow:
             result = process_event(event_path, stations_dir=job.stations_dir, run_root=job.run_root)
         except Exception as exc:  # noqa: BLE001 - a bug in one stage must not stop the night
             logging.getLogger(__name__).debug("event %s raised\n%s", event_path, traceback.format_exc())
-            result = EventResult(event_id=event_id, station="", start_utc="", software_version=__version__,
+            result = EventResult(event_id=event_id, station="", start_utc="", software_version=software_version(),
                                  status="failed", error=f"{event_path}: internal error: {_one_line(exc)}")
         written = write_event(output_path(job.out_dir, result.event_id), result)
         return _timed(row_from_file(written, event_path=job.event_path, action="processed"), t0)

@@ -13,7 +13,6 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
 from .background import estimate_background
 from .config import Station, find_station_file, load_event, load_station
 from .errors import InputError
@@ -21,6 +20,7 @@ from .extract import FrameSpectra, extract_spectra
 from .optics import SpectralGeometry
 from .result import STAGES, EventResult, FrameTimes, InputRecord
 from .track import Track, find_track
+from .version import software_version
 from .video import FrameStack, read_stack
 
 
@@ -158,11 +158,11 @@ def process_event(event_path: str | Path, *, stations_dir: str | Path | None = N
         event = load_event(event_path)
     except InputError as exc:
         folder = event_path if event_path.is_dir() else event_path.parent
-        return EventResult(event_id=folder.name, station="", start_utc="", software_version=__version__,
+        return EventResult(event_id=folder.name, station="", start_utc="", software_version=software_version(),
                            status="failed", error=str(exc))
     result = EventResult(event_id=event.id, station=event.station,
                          start_utc=event.start_utc.strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z",
-                         software_version=__version__)
+                         software_version=software_version())
     try:
         station = load_station(find_station_file(event, stations_dir=stations_dir, run_root=run_root))
         result.station_values = station_values(station)

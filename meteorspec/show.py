@@ -9,7 +9,7 @@ from typing import Any
 
 import numpy as np
 
-from .report._data import read_event
+from .store import read_event
 from .report.html import STAGE_NAMES, _flag_text, lines_columns
 
 

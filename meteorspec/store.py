@@ -120,6 +120,7 @@ def write_event(path: str | Path, result: EventResult) -> Path:
                 f.create_group("review")
         with open(tmp, "rb+") as fh:  # data on disk before the rename makes it visible
             os.fsync(fh.fileno())
+        os.chmod(tmp, 0o644)  # mkstemp makes 0600; outputs are meant to be shared
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)
@@ -143,17 +144,86 @@ def _carry_review(old: Path, new: h5py.File) -> None:
         raise InputError(old, f"existing output cannot be read, not overwriting it ({exc})") from None
 
 
+# --------------------------------------------------------------------------- reading
+
+
+def _value(value: Any) -> Any:
+    if isinstance(value, bytes):
+        return value.decode("utf-8", "replace")
+    if isinstance(value, np.ndarray) and value.dtype.kind in "OS":
+        return [v.decode("utf-8", "replace") if isinstance(v, bytes) else str(v) for v in value.ravel()]
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
+
+
+def _dataset(ds: h5py.Dataset) -> Any:
+    data = ds[()]
+    if ds.dtype.names:  # compound table -> dict of columns
+        return {name: np.array([_value(v) for v in data[name]]) if data.dtype[name].kind in "OS"
+                else np.asarray(data[name]) for name in ds.dtype.names}
+    if ds.dtype.kind in "OS":
+        return _value(data if isinstance(data, np.ndarray) else np.array([data]))
+    return np.asarray(data)
+
+
+def _group(g: h5py.Group) -> dict[str, Any]:
+    out: dict[str, Any] = {"attrs": {k: _value(v) for k, v in g.attrs.items()}, "datasets": {}, "groups": {},
+                           "units": {}}
+    for name, obj in g.items():
+        if isinstance(obj, h5py.Group):
+            out["groups"][name] = _group(obj)
+        else:
+            out["datasets"][name] = _dataset(obj)
+            if "unit" in obj.attrs:
+                out["units"][name] = _value(obj.attrs["unit"])
+    return out
+
+
+def read_event(path: str | Path) -> dict[str, Any]:
+    """Everything in an event file as nested dicts.
+
+    Returns
+    -------
+    dict
+        ``{"attrs": {...}, "datasets": {name: ndarray or dict of columns}, "units": {name: str},
+        "groups": {name: <same shape>}}`` for the root and every group.
+
+    Raises
+    ------
+    InputError
+        If the file cannot be read as HDF5.
+    """
+    with _open(path) as f:
+        return _group(f)
+
+
+def read_inputs(path: str | Path) -> tuple[str, dict[str, str]]:
+    """``(software_version, {role: sha256})`` of an event file, reading nothing else."""
+    with _open(path) as f:
+        version = _value(f.attrs.get("software_version", ""))
+        inputs = {role: _value(g.attrs["sha256"]) for role, g in f["inputs"].items()
+                  if "sha256" in g.attrs} if "inputs" in f else {}
+    return str(version), inputs
+
+
+def read_summary(path: str | Path) -> dict[str, Any]:
+    """Root attributes plus ``composition`` (the ``/composition`` attributes, empty if absent)."""
+    with _open(path) as f:
+        out = {k: _value(v) for k, v in f.attrs.items()}
+        out["composition"] = ({k: _value(v) for k, v in f["composition"].attrs.items()}
+                              if "composition" in f else {})
+    return out
+
+
 def read_root(path: str | Path) -> dict[str, Any]:
     """Root attributes of an event file as plain Python values."""
+    with _open(path) as f:
+        return {k: _value(v) for k, v in f.attrs.items()}
+
+
+def _open(path: str | Path) -> h5py.File:
     try:
-        with h5py.File(path, "r") as f:
-            out: dict[str, Any] = {}
-            for key, value in f.attrs.items():
-                if isinstance(value, bytes):
-                    value = value.decode()
-                elif isinstance(value, np.ndarray) and value.dtype.kind in "OS":
-                    value = [v.decode() if isinstance(v, bytes) else str(v) for v in value]
-                out[key] = value
-            return out
+        return h5py.File(path, "r")
     except OSError as exc:
         raise InputError(path, f"not a readable HDF5 file ({exc})") from None

@@ -227,7 +227,7 @@ def test_resume_skips_up_to_date_events_and_force_redoes_them(tmp_path, monkeypa
 
     assert {r.action for r in run_night(events, out_dir=tmp_path / "out", force=True).rows} == {"processed"}
     # a new software version makes every output out of date
-    monkeypatch.setattr(batch, "__version__", "999.0")
+    monkeypatch.setattr(batch, "software_version", lambda: "999.0")
     assert {r.action for r in run_night(events, out_dir=tmp_path / "out").rows} == {"processed"}
 
 

@@ -80,7 +80,7 @@ def test_every_page_and_figure_is_written(night_report):
 
 
 def test_missing_parts_say_which_stage_has_not_run(night_report):
-    from meteorspec.report._data import read_event
+    from meteorspec.store import read_event
     from meteorspec.report.html import STAGE_NAMES
 
     out, index = night_report

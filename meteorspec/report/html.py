@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 
-from ._data import read_event
+from ..store import read_event
 
 STAGE_NAMES = {
     "track": "zeroth-order tracking (track stage)",

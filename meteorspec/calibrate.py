@@ -1,0 +1,1159 @@
+"""Wavelength and flux calibration of an event from its own spectrum (no lamp, no person).
+
+The process (this module) returns the small immutable
+:class:`~meteorspec.wavesol.WavelengthSolution` of :mod:`meteorspec.wavesol`.
+
+Steps of :func:`calibrate_event`
+--------------------------------
+1. **Band cut-outs.** For up to ``max_frames`` luminous frames, the background
+   residual is sampled in a band around the first-order curve that a trial
+   geometry predicts (:meth:`SpectralGeometry.spectrum_pixel` /
+   :meth:`~SpectralGeometry.direction`; no optics is derived here).
+2. **Where is the spectrum** (coarse search). The curve a spectrum follows does
+   not depend on the groove density (the tangential direction cosines of order
+   ``m`` move along ``q`` only, contract 2.2); the dispersion angle moves it
+   sideways. A grid over the angle (+-6 deg, steps that shift the far end of
+   the curve by < 1.5 px) keeps the one that gathers most light in a narrow
+   aperture, minus the light beside it.
+3. **How stretched is it** (coarse search). On a fixed curve, changing the
+   groove density scales every wavelength by the same factor (same reason), so
+   the groove density is a shift in log-wavelength: the stacked spectrum is
+   cross-correlated with a synthetic meteor template (LTE line emission of the
+   usual meteor species from the NIST line list, :mod:`meteorspec.atomic`)
+   over +-6 %.
+4. **Line positions.** In wavelength regions around the bright features
+   (Ca II H+K, Ca I 423 / Fe I 438-441, Mg I b + Fe I 527-545, Na I D,
+   N I 742-747, O I 777, O I 845), frames binned along the track are fitted
+   with per-species LTE templates (free non-negative amplitudes, common
+   wavelength shift and width, linear continuum): the shift, converted to a
+   pixel, is the measured position of the model-weighted centroid of the
+   region's lines; the cross-dispersion centroid of the band gives the
+   position across the spectrum.
+5. **Geometry fit.** Weighted, robust least squares of groove density,
+   dispersion angle, tilt and tilt azimuth (the tilt as its two components,
+   so that a zero tilt is not singular) and optionally focal length and k1,
+   to all positions of all frames, with the station values as a weak prior.
+   Outliers beyond 4 sigma are dropped and the fit repeated. Steps 4-5 run
+   twice, the second time sampling along the refined curve.
+
+Too few features (``min_lines``) or a poor fit -> the station geometry, flagged
+``calibration_from_station``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import math
+import os
+import re
+import tempfile
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy import ndimage, optimize
+
+from . import atomic
+from .config import Camera, ResponseCurve, Station
+from .errors import InputError
+from .optics import SpectralGeometry
+from .wavesol import (GRATING_PARAMETERS, LENS_PARAMETERS, LineMeasurements, ResidualTable,
+                      WavelengthSolution, geometry_values)
+
+__all__ = [
+    "CALIBRATION_FLAGS",
+    "DerivedResponse",
+    "GeometryFit",
+    "NightCalibration",
+    "REGIONS_NM",
+    "apply_response",
+    "calibrate_event",
+    "calibrate_night",
+    "derive_response",
+    "fit_geometry",
+    "measure_lines",
+    "station_solution",
+    "write_refined_station",
+]
+
+CALIBRATION_FLAGS = ("calibration_from_station", "calibration_few_lines", "calibration_fit_poor",
+                     "uncalibrated_flux", "response_corrected", "response_partial")
+
+#: Wavelength regions (air nm) in which features are measured, with the species fitted in each:
+#: the bright meteor features and their usual neighbours (common practice in meteor
+#: spectroscopy, e.g. Borovicka 1993, A&A 279, 627; Borovicka et al. 2005, Icarus 174, 15).
+REGIONS_NM: tuple[tuple[float, float, tuple[str, ...]], ...] = (
+    (378.0, 408.0, ("Ca II", "Fe I", "Mg I", "Mn I")),          # Ca II H+K, Fe I 382-386
+    (415.0, 448.0, ("Ca I", "Fe I", "Cr I", "Mn I", "Fe II")),   # Ca I 422.7, Fe I 438-441
+    (505.0, 550.0, ("Mg I", "Fe I", "Cr I", "Fe II")),           # Mg I b, Fe I mult. 15
+    (570.0, 606.0, ("Na I", "Fe I", "Si II")),                   # Na I D
+    (728.0, 760.0, ("N I", "O I")),                               # N I 742-747
+    (762.0, 792.0, ("O I", "K I", "N I")),                        # O I 777
+    (832.0, 856.0, ("O I", "Ca II", "N I")),                      # O I 844.6, Ca II 849.8/854.2
+)
+
+# Species of the templates and their LTE temperature: the main (~4500 K) and the hot
+# (~10 000 K) components of meteor spectra (Borovicka 1994, Planet. Space Sci. 42, 145).
+_MAIN_T_K, _HOT_T_K = 4500.0, 10000.0
+_TEMPLATE_SPECIES = {
+    "Na I": _MAIN_T_K, "Mg I": _MAIN_T_K, "Fe I": _MAIN_T_K, "Ca I": _MAIN_T_K, "Cr I": _MAIN_T_K,
+    "Mn I": _MAIN_T_K, "Ca II": _HOT_T_K, "Mg II": _HOT_T_K, "Si II": _HOT_T_K, "Fe II": _HOT_T_K,
+    "H I": _HOT_T_K, "O I": _HOT_T_K, "N I": _HOT_T_K, "K I": _MAIN_T_K,
+}
+# Typical share of each species in the light of a bright meteor, for the coarse template only
+# (from memory, rounded; the measurement step fits free amplitudes per species).
+_TEMPLATE_WEIGHT = {
+    "Fe I": 1.0, "Mg I": 0.5, "Na I": 0.4, "Ca II": 0.2, "O I": 0.2, "Ca I": 0.08, "Cr I": 0.04,
+    "Mn I": 0.04, "N I": 0.08, "H I": 0.03, "Si II": 0.03, "Mg II": 0.03, "Fe II": 0.03,
+}
+# Prior 1-sigma on the station values (weak: well outside the +-3 %, +-4 deg, +-2 deg of the
+# issue, so that the data decide; it only keeps poorly constrained terms finite).
+_PRIOR_SIGMA = {"grooves_frac": 0.06, "dispersion_angle_deg": 8.0, "tilt_deg": 3.0,
+                "focal_frac": 0.05, "k1": 0.1}
+
+
+# --------------------------------------------------------------------------- templates
+
+
+@functools.lru_cache(maxsize=1)
+def _line_list() -> atomic.LineList:
+    return atomic.load_line_list()
+
+
+@functools.lru_cache(maxsize=64)
+def _species_lines(species: str, lo_nm: float, hi_nm: float) -> tuple[NDArray, NDArray]:
+    """Air wavelengths and relative LTE energies (sum 1 over 350-900 nm) of one species."""
+    lines = _line_list().for_species(species).in_range(350.0, 900.0)
+    lines = lines.select(lines.transition_type == "E1")
+    if len(lines) == 0:
+        return np.zeros(0), np.zeros(0)
+    energy = atomic.line_energy_rate(lines, _TEMPLATE_SPECIES[species], 1.0)
+    energy = energy / energy.sum()
+    sel = (lines.wavelength_nm >= lo_nm) & (lines.wavelength_nm <= hi_nm) & (energy > 1e-4)
+    return np.asarray(lines.wavelength_nm[sel]), np.asarray(energy[sel])
+
+
+def _gauss_sum(wl: NDArray, centres: NDArray, weights: NDArray, sigma_nm: float) -> NDArray:
+    """Sum of unit-area Gaussians (weights x) at ``centres`` sampled at ``wl``."""
+    if centres.size == 0:
+        return np.zeros_like(wl)
+    z = (wl[:, None] - centres[None, :]) / sigma_nm
+    return (np.exp(-0.5 * z * z) * weights).sum(axis=1) / (sigma_nm * math.sqrt(2 * math.pi))
+
+
+def meteor_template(wavelength_nm: NDArray, sigma_nm: float | NDArray) -> NDArray:
+    """Synthetic meteor line spectrum (energy per nm, arbitrary scale) for the coarse search."""
+    wl = np.asarray(wavelength_nm, float)
+    sig = np.broadcast_to(np.asarray(sigma_nm, float), wl.shape)
+    out = np.zeros_like(wl)
+    for species, weight in _TEMPLATE_WEIGHT.items():
+        c, w = _species_lines(species, 350.0, 900.0)
+        if c.size == 0:
+            continue
+        z = (wl[:, None] - c[None, :]) / sig[:, None]
+        out += weight * (np.exp(-0.5 * z * z) * w).sum(axis=1) / (sig * math.sqrt(2 * math.pi))
+    return out
+
+
+# --------------------------------------------------------------------------- geometry fit
+
+
+@dataclass(frozen=True, eq=False)
+class GeometryFit:
+    """Result of :func:`fit_geometry`.
+
+    Attributes
+    ----------
+    geometry : SpectralGeometry
+    values, errors : dict
+        As in :class:`WavelengthSolution`.
+    along_nm, cross_px : ndarray
+        Residuals of every measurement (model minus measured), along the spectrum in nm and
+        across it in px.
+    used : ndarray of bool
+        Measurements kept (not rejected as outliers).
+    success : bool
+    message : str
+    """
+
+    geometry: SpectralGeometry
+    values: dict[str, float]
+    errors: dict[str, float]
+    along_nm: NDArray[np.float64]
+    cross_px: NDArray[np.float64]
+    used: NDArray[np.bool_]
+    success: bool
+    message: str = ""
+
+    def __bool__(self) -> bool:
+        return self.success
+
+    @property
+    def rms_nm(self) -> float:
+        r = self.along_nm[self.used]
+        return float(np.sqrt(np.mean(r**2))) if r.size else float("nan")
+
+
+def _pack(geometry: SpectralGeometry, fit_lens: bool) -> NDArray:
+    g, lens = geometry.grating, geometry.lens
+    t, a = math.radians(g.tilt_deg), math.radians(g.tilt_azimuth_deg)
+    p = [g.grooves_per_mm, g.dispersion_angle_deg, math.degrees(t) * math.cos(a), math.degrees(t) * math.sin(a)]
+    if fit_lens:
+        p += [lens.focal_px, lens.k1]
+    return np.array(p, float)
+
+
+def _unpack(p: NDArray, start: SpectralGeometry, fit_lens: bool) -> SpectralGeometry:
+    tilt = math.hypot(p[2], p[3])
+    az = math.degrees(math.atan2(p[3], p[2])) % 360.0 if tilt > 0 else start.grating.tilt_azimuth_deg
+    geo = start.with_grating(grooves_per_mm=float(p[0]), dispersion_angle_deg=float(p[1]),
+                             tilt_deg=float(tilt), tilt_azimuth_deg=float(az))
+    if fit_lens:
+        geo = geo.with_lens(focal_px=float(p[4]), k1=float(p[5]))
+    return geo
+
+
+def _model_residuals(geo: SpectralGeometry, m: LineMeasurements) -> tuple[NDArray, NDArray]:
+    """Model minus measured position, along and across the spectrum (px)."""
+    xs, ys = geo.spectrum_pixel(m.x0_px, m.y0_px, m.lab_nm)
+    dx, dy = xs - m.x_px, ys - m.y_px
+    along = dx * m.tangent_x + dy * m.tangent_y
+    cross = -dx * m.tangent_y + dy * m.tangent_x
+    return along, cross
+
+
+def fit_geometry(measurements: LineMeasurements, start: SpectralGeometry, *, fit_lens: bool = False,
+                 prior: SpectralGeometry | None = None, reject_sigma: float = 4.0,
+                 max_rounds: int = 4) -> GeometryFit:
+    """Least-squares grating (and lens) values from measured feature positions.
+
+    Parameters
+    ----------
+    measurements : LineMeasurements
+        Positions of features of known wavelength, at any zeroth-order positions.
+    start : SpectralGeometry
+        Starting geometry (lens values not fitted are kept from it).
+    fit_lens : bool
+        Also fit ``focal_px`` and ``k1``.
+    prior : SpectralGeometry, optional
+        Values the weak prior pulls towards (default ``start``).
+    reject_sigma : float
+        Measurements with a normalised residual beyond this are dropped (then refit).
+    max_rounds : int
+        Rounds of fit + rejection.
+
+    Returns
+    -------
+    GeometryFit
+        Falsy (``success=False``) when the fit does not converge or has nothing to fit.
+
+    Notes
+    -----
+    Residuals are model minus measured image position, projected on the spectrum tangent
+    and normal at the measurement, divided by their 1-sigma; the model position is
+    :meth:`SpectralGeometry.spectrum_pixel` at the lab wavelength. Tilt enters as the two
+    components ``(t cos a, t sin a)``. Errors are from the Gauss-Newton covariance scaled
+    by the reduced chi-square when that exceeds 1 (common practice).
+    """
+    prior = start if prior is None else prior
+    n = len(measurements)
+    empty = GeometryFit(start, geometry_values(start), {k: math.nan for k in geometry_values(start)},
+                        np.zeros(n), np.zeros(n), np.zeros(n, bool), False, "no measurements")
+    if n == 0:
+        return empty
+    p0 = _pack(start, fit_lens)
+    pp = _pack(prior, fit_lens)
+    ps = [pp[0] * _PRIOR_SIGMA["grooves_frac"], _PRIOR_SIGMA["dispersion_angle_deg"],
+          _PRIOR_SIGMA["tilt_deg"], _PRIOR_SIGMA["tilt_deg"]]
+    if fit_lens:
+        ps += [pp[4] * _PRIOR_SIGMA["focal_frac"], _PRIOR_SIGMA["k1"]]
+    ps = np.array(ps)
+    sa = np.asarray(measurements.sigma_along_px, float)
+    sc = np.asarray(measurements.sigma_cross_px, float)
+    use_cross = np.isfinite(sc)
+    keep = np.ones(n, bool)
+
+    def fun(p: NDArray, sel: NDArray) -> NDArray:
+        geo = _unpack(p, start, fit_lens)
+        along, cross = _model_residuals(geo, measurements)
+        ra = along[sel] / sa[sel]
+        rc = np.where(use_cross[sel], cross[sel] / np.where(use_cross[sel], sc[sel], 1.0), 0.0)
+        r = np.concatenate([ra, rc, (p - pp) / ps])
+        return np.where(np.isfinite(r), r, 1e3)  # light off the sensor: a large, finite penalty
+
+    p = p0
+    res = None
+    for _round in range(max_rounds):
+        sel = keep.copy()
+        if sel.sum() < 2:
+            return empty
+        res = optimize.least_squares(fun, p, args=(sel,), x_scale=ps, loss="soft_l1", f_scale=3.0,
+                                     diff_step=1e-6, max_nfev=200)
+        p = res.x
+        geo = _unpack(p, start, fit_lens)
+        along, cross = _model_residuals(geo, measurements)
+        norm = np.hypot(along / sa, np.where(use_cross, cross / np.where(use_cross, sc, 1.0), 0.0))
+        # robust scale of the normalised residuals: reject relative to what the data show
+        scale = max(1.0, 1.4826 * float(np.median(norm[keep]))) if keep.any() else 1.0
+        new_keep = np.isfinite(norm) & (norm <= reject_sigma * scale)
+        if np.array_equal(new_keep, keep):
+            break
+        keep = new_keep
+    # final plain least squares on the kept set, for the covariance
+    res = optimize.least_squares(fun, p, args=(keep,), x_scale=ps, diff_step=1e-6, max_nfev=200)
+    p = res.x
+    geo = _unpack(p, start, fit_lens)
+    along, cross = _model_residuals(geo, measurements)
+    n_data = int(keep.sum() + (use_cross & keep).sum())
+    dof = max(n_data - p.size, 1)
+    chi2 = float(np.sum(res.fun[: n_data] ** 2))
+    jac = res.jac
+    try:
+        cov = np.linalg.inv(jac.T @ jac) * max(1.0, chi2 / dof)
+    except np.linalg.LinAlgError:
+        cov = np.full((p.size, p.size), np.nan)
+    err = np.sqrt(np.clip(np.diag(cov), 0, None))
+    values = geometry_values(geo)
+    errors = {k: math.nan for k in values}
+    errors["grooves_per_mm"] = float(err[0])
+    errors["dispersion_angle_deg"] = float(err[1])
+    # tilt and azimuth from the components, first-order propagation
+    tx, ty = p[2], p[3]
+    t = math.hypot(tx, ty)
+    jt = np.array([tx / t, ty / t]) if t > 0 else np.array([1.0, 0.0])
+    errors["tilt_deg"] = float(np.sqrt(jt @ cov[2:4, 2:4] @ jt))
+    if t > 0:
+        ja = np.degrees(np.array([-ty, tx]) / t**2)  # d(azimuth)/d(components), deg per deg
+        errors["tilt_azimuth_deg"] = float(np.sqrt(ja @ cov[2:4, 2:4] @ ja))
+    if fit_lens:
+        errors["focal_px"] = float(err[4])
+        errors["k1"] = float(err[5])
+    disp = geo.dispersion_nm_per_px(measurements.x0_px, measurements.y0_px, measurements.lab_nm)
+    along_nm = -along * disp  # measured minus lab, in nm
+    ok = bool(res.success) and bool(np.all(np.isfinite(p)))
+    return GeometryFit(geo, values, errors, along_nm, cross, keep, ok, str(res.message))
+
+
+# --------------------------------------------------------------------------- band sampling
+
+
+@dataclass(frozen=True, eq=False)
+class _FrameCut:
+    """A luminous frame's background residual and its zeroth-order position."""
+
+    position: int           # index into the frame sequence
+    x0_px: float
+    y0_px: float
+    streak_dx_px: float     # zeroth-order motion during the exposure (smears lines along it)
+    streak_dy_px: float
+    residual: NDArray       # (n_rows, width) float32, NaN where saturated
+    sigma: NDArray          # (n_rows, width) float32 noise
+    y_start_px: int
+    y_step_px: int
+    noise_adu: float = 1.0  # typical per-pixel noise of the frame
+
+
+def _sample(cut: _FrameCut, x: NDArray, y: NDArray, img: NDArray | None = None) -> NDArray:
+    """Bilinear sample of the residual (or ``img``) at image coordinates; NaN outside."""
+    img = cut.residual if img is None else img
+    rows = (y - cut.y_start_px) / cut.y_step_px
+    h, w = img.shape
+    inside = (rows >= 0) & (rows <= h - 1) & (x >= 0) & (x <= w - 1) & np.isfinite(x) & np.isfinite(rows)
+    coords = np.stack([np.where(inside, rows, 0.0), np.where(inside, x, 0.0)])
+    val = ndimage.map_coordinates(img, coords.reshape(2, -1), order=1, mode="nearest").reshape(x.shape)
+    return np.where(inside, val, np.nan)
+
+
+def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int) -> list[_FrameCut]:
+    """Residual images of the luminous frames with a fitted zeroth-order position."""
+    x = np.asarray(track.x_px, float)
+    y = np.asarray(track.y_px, float)
+    ok = np.isfinite(x) & np.isfinite(y)
+    if hasattr(track, "luminous"):
+        ok &= np.asarray(track.luminous, bool)
+    idx = np.flatnonzero(ok)
+    if idx.size > max_frames:
+        flux = np.asarray(getattr(track, "flux_adu", np.full(x.shape, np.nan)), float)[idx]
+        if np.isfinite(flux).sum() >= max_frames:
+            idx = np.sort(idx[np.argsort(np.where(np.isfinite(flux), -flux, np.inf))[:max_frames]])
+        else:
+            idx = idx[np.linspace(0, idx.size - 1, max_frames).round().astype(int)]
+    # motion during one exposure: the step between consecutive frames (fields), which is the
+    # exposure for a camera without dead time
+    pos = np.arange(x.size)
+    fin = np.isfinite(x) & np.isfinite(y)
+    if fin.sum() >= 2:
+        vx = np.gradient(np.interp(pos, pos[fin], x[fin]))
+        vy = np.gradient(np.interp(pos, pos[fin], y[fin]))
+    else:
+        vx = vy = np.zeros(x.size)
+    out = []
+    for i in idx:
+        frame = frames[int(i)]
+        res = background.residual(frame).astype(np.float32, copy=True)
+        var = background.variance(frame, res)
+        res[np.asarray(frame.saturated, bool)] = np.nan
+        out.append(_FrameCut(int(i), float(x[i]), float(y[i]), float(vx[i]), float(vy[i]), res, np.sqrt(var).astype(np.float32),
+                             int(frame.y_start_px), int(frame.y_step_px),
+                             float(np.median(np.sqrt(var[::4, ::4])))))
+    return out
+
+
+# --------------------------------------------------------------------------- coarse search
+
+
+def _curves(geo: SpectralGeometry, cuts: list[_FrameCut], wl: NDArray, order: int) -> tuple[NDArray, ...]:
+    """Curve pixels and unit tangents of all frames at once, each of shape (n_cuts, n_wl)."""
+    x0 = np.array([c.x0_px for c in cuts])[:, None]
+    y0 = np.array([c.y0_px for c in cuts])[:, None]
+    xs, ys = geo.spectrum_pixel(x0, y0, wl[None, :], order)
+    tx, ty = geo.direction(x0, y0, wl[None, :], order)
+    return xs, ys, tx, ty
+
+
+def _sample_curves(cuts: list[_FrameCut], curves: tuple[NDArray, ...], offsets: NDArray,
+                   sigma: bool = False) -> list[NDArray]:
+    """Residual (or noise) of every frame on its (offset, wavelength) grid."""
+    xs, ys, tx, ty = curves
+    out = []
+    for k, cut in enumerate(cuts):
+        x = xs[k][None, :] - offsets[:, None] * ty[k][None, :]
+        y = ys[k][None, :] + offsets[:, None] * tx[k][None, :]
+        out.append(_sample(cut, x, y, cut.sigma if sigma else None))
+    return out
+
+
+def _curve_score(geo: SpectralGeometry, cuts: list[_FrameCut], wl: NDArray, aperture_px: float,
+                 order: int) -> float:
+    """Light in a narrow aperture on the curve minus the light beside it, summed over frames."""
+    inner = np.arange(-aperture_px, aperture_px + 0.01, 1.0)
+    outer = np.concatenate([inner - 3 * aperture_px - 2, inner + 3 * aperture_px + 2])
+    offs = np.concatenate([inner, outer])
+    total = 0.0
+    for cut, band in zip(cuts, _sample_curves(cuts, _curves(geo, cuts, wl, order), offs)):
+        b_in = band[: inner.size]
+        b_out = band[inner.size:]
+        good = np.all(np.isfinite(band), axis=0)
+        if not good.any():
+            continue
+        s = np.sum(b_in[:, good]) - np.sum(b_out[:, good]) * inner.size / outer.size
+        noise = cut.noise_adu * math.sqrt(inner.size * good.sum()) + 1e-9
+        total += s / noise
+    return float(total)
+
+
+def _best_on_grid(values: NDArray, scores: NDArray) -> float:
+    k = int(np.nanargmax(scores))
+    if 0 < k < values.size - 1:
+        s0, s1, s2 = scores[k - 1], scores[k], scores[k + 1]
+        den = s0 - 2 * s1 + s2
+        if den < 0:
+            return float(values[k] + 0.5 * (s0 - s2) / den * (values[1] - values[0]))
+    return float(values[k])
+
+
+def _search_curve(station: SpectralGeometry, cuts: list[_FrameCut], *, angle_range_deg: float,
+                  tilt_range_deg: float, psf_px: float, order: int) -> SpectralGeometry:
+    """Dispersion angle (then tilt) whose curve gathers the most light."""
+    g0 = station.grating
+    wl = np.linspace(360.0, 920.0, 80)
+    # farthest extent of the curve from its zeroth order, to choose the angular step
+    reach = 0.0
+    for cut in cuts[:: max(1, len(cuts) // 5)]:
+        xs, ys = station.spectrum_pixel(cut.x0_px, cut.y0_px, wl[[0, -1]], order)
+        d = np.hypot(xs - cut.x0_px, ys - cut.y0_px)
+        if np.isfinite(d).any():
+            reach = max(reach, float(np.nanmax(d)))
+    reach = max(reach, 50.0)
+    aperture = max(1.5, 1.5 * psf_px)
+    step = min(1.0, math.degrees(aperture / reach))
+    angles = g0.dispersion_angle_deg + np.arange(-angle_range_deg, angle_range_deg + 1e-9, step)
+    scores = np.array([_curve_score(station.with_grating(dispersion_angle_deg=a), cuts, wl, aperture, order)
+                       for a in angles])
+    best = station.with_grating(dispersion_angle_deg=_best_on_grid(angles, scores))
+    if tilt_range_deg > 0:
+        # tilt moves the curve little (second order in the diffraction angle): a small grid of
+        # tilt vectors around the station's, keeping the best
+        g = best.grating
+        t, a = math.radians(g.tilt_deg), math.radians(g.tilt_azimuth_deg)
+        tx, ty = math.degrees(t) * math.cos(a), math.degrees(t) * math.sin(a)
+        cands = [(tx, ty)]
+        for dx in (-tilt_range_deg, 0.0, tilt_range_deg):
+            for dy in (-tilt_range_deg, 0.0, tilt_range_deg):
+                if dx or dy:
+                    cands.append((tx + dx, ty + dy))
+        best_s = -np.inf
+        best_geo = best
+        for cx, cy in cands:
+            geo = best.with_grating(tilt_deg=math.hypot(cx, cy),
+                                    tilt_azimuth_deg=math.degrees(math.atan2(cy, cx)) % 360.0)
+            s = _curve_score(geo, cuts, wl, aperture, order)
+            if s > best_s:
+                best_s, best_geo = s, geo
+        # angle again, finely, with the chosen tilt
+        fine = best_geo.grating.dispersion_angle_deg + np.arange(-2 * step, 2 * step + 1e-9, step / 2)
+        sc = np.array([_curve_score(best_geo.with_grating(dispersion_angle_deg=a), cuts, wl, aperture, order)
+                       for a in fine])
+        best = best_geo.with_grating(dispersion_angle_deg=_best_on_grid(fine, sc))
+    return best
+
+
+def _stack_spectrum(geo: SpectralGeometry, cuts: list[_FrameCut], wl: NDArray, half_px: float,
+                    order: int) -> NDArray:
+    """Sum over frames of the aperture sum along the curve (per sample; not per nm)."""
+    offs = np.arange(-half_px, half_px + 0.01, 1.0)
+    total = np.zeros(wl.size)
+    for band in _sample_curves(cuts, _curves(geo, cuts, wl, order), offs):
+        total += np.nan_to_num(np.sum(band, axis=0))
+    return total
+
+
+def _search_grooves(geo: SpectralGeometry, cuts: list[_FrameCut], *, range_frac: float, psf_px: float,
+                    order: int) -> SpectralGeometry:
+    """Groove density by cross-correlating the stacked spectrum with the meteor template.
+
+    On a fixed curve the wavelength of every pixel scales as 1 / grooves, so the search is a
+    shift in log-wavelength: one correlation over a log grid covers the whole range.
+    """
+    n0 = geo.grating.grooves_per_mm
+    dlog = 2.5e-4
+    logw = np.arange(np.log(330.0), np.log(980.0), dlog)
+    wl = np.exp(logw)
+    spec = _stack_spectrum(geo, cuts, wl, max(2.0, 2.0 * psf_px), order)
+    mid = cuts[len(cuts) // 2]
+    disp = geo.dispersion_nm_per_px(mid.x0_px, mid.y0_px, wl, order)
+    # samples are per log-step; per nm density: divide by the step in nm
+    spec = spec / wl
+    sigma_nm = np.where(np.isfinite(disp), disp * max(psf_px, 1.0) * 1.2, 3.0)
+    width = int(round(0.06 / dlog)) | 1
+    hp = spec - ndimage.median_filter(spec, size=width, mode="nearest")
+    hp = np.where(np.isfinite(hp), hp, 0.0)
+    tpl = meteor_template(wl, sigma_nm)
+    tpl = tpl - ndimage.median_filter(tpl, size=width, mode="nearest")
+    k_max = int(math.ceil(range_frac / dlog))
+    lags = np.arange(-k_max, k_max + 1)
+    # with grooves n0 / s the true wavelength of the sample at wl is wl * s: tpl shifted by log s
+    scores = np.array([np.dot(hp[max(0, -k): hp.size - max(0, k)], tpl[max(0, k): tpl.size - max(0, -k)])
+                       for k in lags])
+    k_best = _best_on_grid(lags.astype(float), scores)
+    return geo.with_grating(grooves_per_mm=float(n0 / math.exp(k_best * dlog)))
+
+
+# --------------------------------------------------------------------------- measurement
+
+
+@functools.lru_cache(maxsize=32)
+def _region_components(lo: float, hi: float, species: tuple[str, ...]) -> tuple[tuple[str, NDArray, NDArray], ...]:
+    """Species templates of a region (lab wavelengths and LTE weights, each summing to 1)."""
+    comps = []
+    for name in species:
+        c, w = _species_lines(name, lo, hi)
+        if c.size and w.sum() > 1e-3:
+            comps.append((name, c, w / w.sum()))
+    return tuple(comps)
+
+
+def _fit_region(wl: NDArray, flux: NDArray, err: NDArray, comps, sigma_nm: float,
+                max_shift_nm: float) -> tuple[float, float, float, str, float] | None:
+    """Common shift of the species templates in one region.
+
+    Returns ``(shift_nm, shift_err_nm, lab_centroid_nm, dominant_species, line_snr)`` or None.
+    """
+    good = np.isfinite(flux) & np.isfinite(err) & (err > 0)
+    if good.sum() < 8:
+        return None
+    wl, flux, err = wl[good], flux[good], err[good]
+    w = 1.0 / err
+    base = np.stack([np.ones_like(wl), (wl - wl.mean()) / (np.ptp(wl) + 1e-9)], axis=1)
+
+    def design(shift: float) -> NDArray:
+        cols = [_gauss_sum(wl, c + shift, ww, sigma_nm) for _, c, ww in comps]
+        return np.concatenate([np.stack(cols, axis=1), base], axis=1)
+
+    def solve(shift: float) -> tuple[float, NDArray]:
+        a = design(shift) * w[:, None]
+        b = flux * w
+        ncomp = len(comps)
+        # non-negative line amplitudes; the continuum terms are free (split into +/- parts)
+        a_full = np.concatenate([a, -a[:, ncomp:]], axis=1)
+        coef, rnorm = optimize.nnls(a_full, b, maxiter=50 * a_full.shape[1])
+        amp = coef[: a.shape[1]].copy()
+        amp[ncomp:] -= coef[a.shape[1]:]
+        return float(rnorm**2), amp
+
+    step = max(0.1, sigma_nm / 4)
+    shifts = np.arange(-max_shift_nm, max_shift_nm + 1e-9, step)
+    chi = np.array([solve(s)[0] for s in shifts])
+    k = int(np.argmin(chi))
+    if k == 0 or k == shifts.size - 1:
+        return None
+    # refine by a parabola on a finer local grid
+    fine = shifts[k] + np.linspace(-step, step, 9)
+    chf = np.array([solve(s)[0] for s in fine])
+    coef = np.polyfit(fine - shifts[k], chf, 2)
+    if coef[0] <= 0:
+        return None
+    shift = float(shifts[k] - coef[1] / (2 * coef[0]))
+    if abs(shift - shifts[k]) > step:
+        return None
+    chi_min, amp = solve(shift)
+    dof = max(wl.size - len(comps) - 2, 1)
+    red = max(1.0, chi_min / dof)
+    shift_err = float(math.sqrt(2.0 / (2 * coef[0]) * red)) if coef[0] > 0 else math.inf
+    ncomp = len(comps)
+    energy = np.array([amp[i] for i in range(ncomp)])
+    if energy.sum() <= 0:
+        return None
+    # the shift is common to the region: report it at the centroid of the brightest species
+    k_dom = int(np.argmax(energy))
+    dominant = comps[k_dom][0]
+    lab = float(np.sum(comps[k_dom][1] * comps[k_dom][2]))
+    # significance of the line model: drop in chi2 against continuum only
+    a0 = base * w[:, None]
+    cont, *_ = np.linalg.lstsq(a0, flux * w, rcond=None)
+    chi_cont = float(np.sum((flux * w - a0 @ cont) ** 2))
+    snr = math.sqrt(max(chi_cont - chi_min, 0.0) / red)
+    return shift, shift_err, lab, dominant, snr
+
+
+def _frame_bins(cuts: list[_FrameCut], n_bins: int) -> list[list[_FrameCut]]:
+    if len(cuts) <= n_bins:
+        return [[c] for c in cuts]
+    edges = np.linspace(0, len(cuts), n_bins + 1).round().astype(int)
+    return [cuts[a:b] for a, b in zip(edges[:-1], edges[1:]) if b > a]
+
+
+def measure_lines(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: float = 1.5,
+                  max_shift_nm: float | None = None, min_snr: float = 6.0, n_bins: int = 12,
+                  order: int = 1, event: str = "") -> LineMeasurements:
+    """Measure feature positions in every frame bin, sampling along ``geometry``'s curve.
+
+    Parameters
+    ----------
+    cuts : list of _FrameCut
+        From the band cut-outs of :func:`calibrate_event`.
+    geometry : SpectralGeometry
+        Current geometry (its curve is sampled; shifts are measured against its wavelengths).
+    psf_px : float
+        PSF sigma, sets the aperture.
+    max_shift_nm : float, optional
+        Largest shift searched; default 4 resolution elements.
+    min_snr : float
+        Features whose line model is less significant are dropped.
+    n_bins : int
+        Frames are grouped into this many bins along the track.
+
+    Returns
+    -------
+    LineMeasurements
+        Empty when nothing is found.
+    """
+    rows: list[dict[str, Any]] = []
+    half = max(2.0, 2.5 * psf_px)
+    cross_half = max(4.0, 4.0 * psf_px)
+    offs = np.arange(-half, half + 0.01, 1.0)
+    coffs = np.arange(-cross_half, cross_half + 0.01, 0.5)
+    for group in _frame_bins(cuts, n_bins):
+        x0 = float(np.mean([c.x0_px for c in group]))
+        y0 = float(np.mean([c.y0_px for c in group]))
+        for lo, hi, species_list in REGIONS_NM:
+            comps = _region_components(lo, hi, species_list)
+            if not comps:
+                continue
+            disp_mid = float(geometry.dispersion_nm_per_px(x0, y0, 0.5 * (lo + hi), order))
+            if not np.isfinite(disp_mid):
+                continue
+            step_nm = max(disp_mid / 2, 0.1)
+            pad = 6 * disp_mid * max(psf_px, 1.0)
+            wl = np.arange(lo - pad, hi + pad, step_nm)
+            curves = _curves(geometry, group, wl, order)
+            bands = _sample_curves(group, curves, offs)
+            noise = _sample_curves(group, curves, offs, sigma=True)
+            bad = np.zeros(wl.size, bool)
+            flux = np.zeros(wl.size)
+            var = np.zeros(wl.size)
+            for band, nb in zip(bands, noise):
+                bad |= ~np.all(np.isfinite(band), axis=0)
+                flux += np.nan_to_num(band.sum(axis=0))
+                var += np.nan_to_num((nb**2).sum(axis=0))
+            flux = np.where(bad, np.nan, flux)
+            sub = tuple(c[:, ::2] for c in curves)
+            prof = np.zeros(coffs.size)
+            prof_var = np.zeros(coffs.size)
+            for cb, cn in zip(_sample_curves(group, sub, coffs), _sample_curves(group, sub, coffs, sigma=True)):
+                prof += np.nansum(cb, axis=1)
+                prof_var += np.nansum(cn**2, axis=1)
+            # line width: PSF and the motion smear along the spectrum (a boxcar of length L has
+            # the variance L^2 / 12)
+            tx_m, ty_m = np.nanmean(curves[2], axis=1), np.nanmean(curves[3], axis=1)
+            smear = np.array([c.streak_dx_px for c in group]) * tx_m + np.array([c.streak_dy_px for c in group]) * ty_m
+            width_px = math.sqrt(max(psf_px, 0.8) ** 2 + float(np.nanmean(smear**2)) / 12.0)
+            sigma_nm = max(disp_mid * width_px, 0.3)
+            shift_max = 4 * sigma_nm if max_shift_nm is None else max(max_shift_nm, 0.75 * sigma_nm)
+            fit = _fit_region(wl, flux, np.sqrt(var) + 1e-6, comps, sigma_nm, shift_max)
+            if fit is None:
+                continue
+            shift, shift_err, lab, species, snr = fit
+            if snr < min_snr or not np.isfinite(shift_err) or not lo <= lab <= hi:
+                continue
+            # cross-dispersion centroid of the band over the region
+            c = prof - np.median(np.concatenate([prof[:3], prof[-3:]]))
+            k = int(np.argmax(c))
+            win = np.abs(coffs - coffs[k]) <= max(2.0, 2.0 * psf_px)
+            if not (0 < k < coffs.size - 1) or c[win].sum() <= 0:
+                cross, cross_err = 0.0, math.inf
+            else:
+                cw = np.clip(c[win], 0, None)
+                cross = float(np.sum(coffs[win] * cw) / cw.sum())
+                cross_err = float(math.sqrt(np.sum((coffs[win] - cross) ** 2 * prof_var[win])) / cw.sum())
+                cross_err = max(cross_err, 0.05)
+            lam_meas = lab + shift
+            xs, ys = geometry.spectrum_pixel(x0, y0, lam_meas, order)
+            tx, ty = geometry.direction(x0, y0, lam_meas, order)
+            disp = float(geometry.dispersion_nm_per_px(x0, y0, lam_meas, order))
+            if not np.all(np.isfinite([xs, ys, tx, ty, disp])):
+                continue
+            rows.append(dict(event=event, frame=group[0].position, x0_px=x0, y0_px=y0,
+                             x_px=float(xs - cross * ty), y_px=float(ys + cross * tx), lab_nm=lab,
+                             species=species, tangent_x=float(tx), tangent_y=float(ty),
+                             # floor: template mismatch (unmodelled blends, bands) of ~1/10 of
+                             # the line width, whatever the photon noise says
+                             sigma_along_px=math.hypot(shift_err / disp, 0.1 * width_px),
+                             sigma_cross_px=math.hypot(cross_err, 0.1 * max(psf_px, 0.8))))
+    if not rows:
+        return LineMeasurements.empty()
+    return LineMeasurements(**{k: np.array([r[k] for r in rows]) for k in rows[0]})
+
+
+# --------------------------------------------------------------------------- event calibration
+
+
+def station_solution(station_geometry: SpectralGeometry, *, flags: Sequence[str] = (),
+                     measurements: LineMeasurements | None = None) -> WavelengthSolution:
+    """The fallback solution: the station's own values, flagged ``calibration_from_station``."""
+    values = geometry_values(station_geometry)
+    return WavelengthSolution(
+        geometry=station_geometry, source="station", values=values,
+        errors={k: math.nan for k in values}, rms_nm=math.nan, n_lines=0, n_frames_used=0,
+        residuals=ResidualTable.empty(),
+        flags=tuple(dict.fromkeys(("calibration_from_station",) + tuple(flags))),
+        measurements=LineMeasurements.empty() if measurements is None else measurements)
+
+
+def _solution_from_fit(fit: GeometryFit, m: LineMeasurements, source: str,
+                       flags: Sequence[str] = ()) -> WavelengthSolution:
+    lab = m.lab_nm
+    measured = lab + fit.along_nm
+    res = ResidualTable(event=m.event, frame=m.frame, species=m.species, lab_nm=lab, measured_nm=measured,
+                        residual_nm=fit.along_nm, cross_px=-fit.cross_px, used=fit.used)
+    used = fit.used
+    n_lines = len(np.unique(np.round(lab[used], 0))) if used.any() else 0
+    return WavelengthSolution(
+        geometry=fit.geometry, source=source, values=fit.values, errors=fit.errors, rms_nm=fit.rms_nm,
+        n_lines=int(n_lines), n_frames_used=int(len(np.unique(m.frame[used]))), residuals=res,
+        flags=tuple(flags), measurements=m)
+
+
+def calibrate_event(frames: Sequence, background: Any, track: Any, station_geometry: SpectralGeometry, *,
+                    camera: Camera | None = None, fit_lens: bool = False, order: int = 1,
+                    min_lines: int = 3, max_frames: int = 40, n_bins: int = 12,
+                    angle_range_deg: float = 6.0, tilt_range_deg: float = 2.0,
+                    grooves_range_frac: float = 0.06, max_rms_nm: float = 3.0,
+                    psf_sigma_px: float | None = None, event: str = "") -> WavelengthSolution:
+    """Refine the spectral geometry of one event from its own lines.
+
+    Parameters
+    ----------
+    frames : sequence of Frame
+        The event's frames (a :class:`~meteorspec.video.FrameStack`); indexed by track position.
+    background : Background
+    track : Track
+        Fitted zeroth-order positions ``x_px``, ``y_px`` (aligned with ``frames``).
+    station_geometry : SpectralGeometry
+        The station file's values: the start and the fallback.
+    camera : Camera, optional
+        Unused beyond a size check (kept for symmetry with the other stages).
+    fit_lens : bool
+        Also fit ``focal_px`` and ``k1`` (only worth it with many features over a wide field).
+    order : int
+        Order whose lines are measured.
+    min_lines : int
+        Fewer distinct features -> station fallback.
+    max_frames, n_bins : int
+        Frames sampled (the brightest) and bins along the track they are grouped into.
+    angle_range_deg, tilt_range_deg, grooves_range_frac : float
+        Half-widths of the coarse search around the station values.
+    max_rms_nm : float
+        A fit with a larger residual RMS is not trusted (station fallback, flagged).
+    psf_sigma_px : float, optional
+        Default the track's estimate, else 1.5 px.
+    event : str
+        Event id stored with the measurements.
+
+    Returns
+    -------
+    WavelengthSolution
+        ``source="event"`` when refined; otherwise the station values with the flag
+        ``calibration_from_station`` (and ``calibration_few_lines`` or ``calibration_fit_poor``).
+    """
+    psf = psf_sigma_px
+    if psf is None:
+        psf = float(getattr(track, "psf_sigma_px", math.nan))
+        psf = psf if np.isfinite(psf) and psf > 0 else 1.5
+    cuts = _cuts(frames, background, track, max_frames=max_frames)
+    if camera is not None and cuts and cuts[0].residual.shape[1] != camera.width:
+        raise ValueError(f"frames are {cuts[0].residual.shape[1]} px wide, camera says {camera.width}")
+    if not cuts:
+        return station_solution(station_geometry, flags=("calibration_few_lines",))
+    geo = _search_curve(station_geometry, cuts, angle_range_deg=angle_range_deg, tilt_range_deg=tilt_range_deg,
+                        psf_px=psf, order=order)
+    geo = _search_grooves(geo, cuts, range_frac=grooves_range_frac, psf_px=psf, order=order)
+    fit: GeometryFit | None = None
+    m = LineMeasurements.empty()
+    for it in range(3):
+        # after the coarse search the curve is right to a few nm; later rounds need less room,
+        # and a narrow search keeps a region from matching one feature with another
+        m = measure_lines(cuts, geo, psf_px=psf, n_bins=n_bins, order=order, event=event,
+                          max_shift_nm=5.0 if it == 0 else 2.5)
+        if len(m) == 0 or len(np.unique(np.round(m.lab_nm))) < min_lines:
+            break
+        fit = fit_geometry(m, geo, fit_lens=fit_lens, prior=station_geometry)
+        if not fit:
+            break
+        geo = fit.geometry
+    if fit is None or not fit or len(m) == 0:
+        return station_solution(station_geometry, flags=("calibration_few_lines",), measurements=m)
+    sol = _solution_from_fit(fit, m, "event")
+    if sol.n_lines < min_lines:
+        return station_solution(station_geometry, flags=("calibration_few_lines",), measurements=m)
+    if not np.isfinite(sol.rms_nm) or sol.rms_nm > max_rms_nm:
+        return station_solution(station_geometry, flags=("calibration_fit_poor",), measurements=m)
+    return sol
+
+
+# --------------------------------------------------------------------------- flux calibration
+
+
+def apply_response(spectra: Any, response: ResponseCurve | None) -> tuple[Any, tuple[str, ...]]:
+    """Divide a spectrum (or per-frame spectra) by the station response curve (contract 3).
+
+    Parameters
+    ----------
+    spectra : Spectrum or FrameSpectra
+        From :mod:`meteorspec.extract`: ``wavelength_nm``, ``flux``, ``mask`` and
+        ``flux_err`` (Spectrum) or ``variance`` (FrameSpectra).
+    response : ResponseCurve or None
+        Relative sensitivity to energy flux. ``None``: nothing is divided and the result is
+        flagged ``uncalibrated_flux``.
+
+    Returns
+    -------
+    corrected : same type
+        Flux / R (errors / R, variance / R^2); bins where R is unknown (outside the curve's
+        range) are masked and set to NaN.
+    flags : tuple of str
+        ``("uncalibrated_flux",)``, or ``("response_corrected",)`` plus ``"response_partial"``
+        when some unmasked bins fell outside the curve.
+    """
+    if response is None:
+        flags = ("uncalibrated_flux",)
+    else:
+        flags = ("response_corrected",)
+    changes: dict[str, Any] = {}
+    if response is not None:
+        wl = np.asarray(spectra.wavelength_nm, float)
+        r = np.asarray(response(wl), float)
+        unknown = ~(np.isfinite(r) & (r > 0))
+        r_safe = np.where(unknown, 1.0, r)
+        old_mask = np.asarray(spectra.mask, bool)
+        mask = old_mask | unknown  # broadcasts over frames
+        if np.any(unknown & ~old_mask):
+            flags = flags + ("response_partial",)
+        changes["mask"] = mask
+        changes["flux"] = np.where(mask, np.nan, np.asarray(spectra.flux, float) / r_safe)
+        if hasattr(spectra, "variance"):
+            changes["variance"] = np.where(mask, np.nan, np.asarray(spectra.variance, float) / r_safe**2)
+        else:
+            changes["flux_err"] = np.where(mask, np.nan, np.asarray(spectra.flux_err, float) / r_safe)
+    if hasattr(spectra, "flags"):
+        changes["flags"] = tuple(dict.fromkeys(tuple(spectra.flags) + flags))
+    return (dataclasses.replace(spectra, **changes) if changes else spectra), flags
+
+
+@dataclass(frozen=True, eq=False)
+class DerivedResponse:
+    """A response curve derived from a star of known effective temperature.
+
+    Attributes
+    ----------
+    wavelength_nm, response, response_err : ndarray
+        Smoothed relative response (maximum 1) and its 1-sigma.
+    temperature_k : float
+        Black-body temperature assumed for the star.
+    """
+
+    wavelength_nm: NDArray[np.float64]
+    response: NDArray[np.float64]
+    response_err: NDArray[np.float64]
+    temperature_k: float
+
+    def to_curve(self, path: str | Path = "") -> ResponseCurve:
+        """As a :class:`~meteorspec.config.ResponseCurve` (what :func:`apply_response` takes)."""
+        return ResponseCurve(wavelength_nm=self.wavelength_nm.copy(), response=self.response.copy(),
+                             path=Path(path))
+
+    def write_csv(self, path: str | Path, *, overwrite: bool = False) -> Path:
+        """Write ``wavelength_nm,response`` (contract section 3) atomically.
+
+        Raises
+        ------
+        FileExistsError
+            If ``path`` exists and ``overwrite`` is False.
+        """
+        path = Path(path)
+        lines = [f"# derived by meteorspec from a {self.temperature_k:.0f} K black-body star",
+                 "wavelength_nm,response"]
+        lines += [f"{w:.3f},{r:.6g}" for w, r in zip(self.wavelength_nm, self.response)]
+        _write_new_file(path, "\n".join(lines) + "\n", overwrite=overwrite)
+        return path
+
+
+def derive_response(spectrum: Any, temperature_k: float, *, smooth_nm: float = 25.0,
+                    step_nm: float = 5.0, min_snr: float = 5.0,
+                    transmission: NDArray | None = None) -> DerivedResponse:
+    """Response curve from the first-order spectrum of a star of known temperature.
+
+    Parameters
+    ----------
+    spectrum : Spectrum
+        The star's extracted spectrum (linear ADU per nm; ``wavelength_nm``, ``flux``,
+        ``flux_err``, ``mask``).
+    temperature_k : float
+        Effective temperature; the star is taken as a Planck black body
+        (:func:`meteorspec.atomic.planck_radiance`).
+    smooth_nm : float
+        Gaussian sigma of the smoothing that removes stellar lines and noise.
+    step_nm : float
+        Spacing of the output table.
+    min_snr : float
+        Bins with a lower flux / error are ignored.
+    transmission : ndarray, optional
+        Atmospheric transmission at ``spectrum.wavelength_nm`` towards the star
+        (:func:`meteorspec.extinction.transmission`); divided out when given.
+
+    Returns
+    -------
+    DerivedResponse
+        Normalised to a maximum of 1; covers the range where the star was measured.
+
+    Raises
+    ------
+    ValueError
+        Fewer than 5 usable bins, or a non-positive temperature.
+
+    Notes
+    -----
+    ``R(lambda) = F_obs(lambda) / (B_lambda(T) * T_atm(lambda))``: the recorded ADU per nm
+    over the energy flux the star delivers, the definition of contract section 3 (response
+    to energy flux). Smoothing is a local quadratic regression with Gaussian weights
+    (a Savitzky-Golay-like smoother for unevenly weighted data; common practice).
+    """
+    if not (np.isfinite(temperature_k) and temperature_k > 0):
+        raise ValueError(f"temperature_k must be positive, got {temperature_k}")
+    wl = np.asarray(spectrum.wavelength_nm, float)
+    flux = np.asarray(spectrum.flux, float)
+    err = np.asarray(spectrum.flux_err, float)
+    ok = ~np.asarray(spectrum.mask, bool) & np.isfinite(flux) & np.isfinite(err) & (err > 0)
+    ok &= flux > min_snr * err
+    if transmission is not None:
+        trans = np.asarray(transmission, float)
+        ok &= np.isfinite(trans) & (trans > 0)
+    else:
+        trans = np.ones_like(wl)
+    if ok.sum() < 5:
+        raise ValueError(f"only {int(ok.sum())} usable bins in the star spectrum (need 5)")
+    bb = atomic.planck_radiance(wl[ok], temperature_k)
+    ratio = flux[ok] / (bb * trans[ok])
+    ratio_err = err[ok] / (bb * trans[ok])
+    w_in = 1.0 / ratio_err**2
+    grid = np.arange(math.ceil(wl[ok][0] / step_nm) * step_nm, wl[ok][-1] + 1e-9, step_nm)
+    # local quadratic regression (kernel-weighted): unlike a kernel mean it has no bias from
+    # the curvature of the response, and none from a one-sided kernel at the ends
+    d = (wl[ok][None, :] - grid[:, None]) / smooth_nm
+    k = np.exp(-0.5 * d**2) * w_in[None, :]
+    basis = np.stack([np.ones_like(d), d, d * d], axis=-1)          # (n_grid, n_data, 3)
+    ata = np.einsum("gn,gni,gnj->gij", k, basis, basis)
+    atb = np.einsum("gn,gni,n->gi", k, basis, ratio)
+    sol = np.linalg.solve(ata, atb[..., None])[..., 0]
+    resp = sol[:, 0]
+    # error of the intercept: first row of (A^T W A)^-1 A^T W applied to the data errors
+    hat = np.einsum("gij,gnj->gni", np.linalg.inv(ata), basis)[..., 0] * k  # (n_grid, n_data)
+    resp_err = np.sqrt((hat**2) @ ratio_err**2)
+    scale = float(np.nanmax(resp))
+    return DerivedResponse(grid, resp / scale, resp_err / scale, float(temperature_k))
+
+
+# --------------------------------------------------------------------------- night refinement
+
+
+@dataclass(frozen=True, eq=False)
+class NightCalibration:
+    """One station geometry fitted to many events of a night.
+
+    Attributes
+    ----------
+    solution : WavelengthSolution
+        ``source="night"``; residuals carry the event id of each measurement.
+    station_values : dict
+        The station file's values, for comparison.
+    per_event : dict of str to dict
+        Per event: ``n``, ``rms_nm``, ``median_nm`` of its residuals under the night geometry.
+    path : Path or None
+        The refined station file written (None if not written).
+    """
+
+    solution: WavelengthSolution
+    station_values: dict[str, float]
+    per_event: dict[str, dict[str, float]]
+    path: Path | None = None
+
+    def report(self) -> str:
+        """Plain-text residual report."""
+        s = self.solution
+        out = [f"night calibration: {len(self.per_event)} events, {len(s.residuals)} line positions, "
+               f"rms {s.rms_nm:.3f} nm, {s.n_lines} features"]
+        out.append(f"{'value':24s} {'station':>12s} {'night':>12s} {'1-sigma':>10s}")
+        for k, v in s.values.items():
+            out.append(f"{k:24s} {self.station_values[k]:12.5f} {v:12.5f} {s.errors.get(k, math.nan):10.5f}")
+        out.append(f"{'event':40s} {'n':>4s} {'rms_nm':>8s} {'median_nm':>10s}")
+        for ev, d in self.per_event.items():
+            out.append(f"{ev:40s} {int(d['n']):4d} {d['rms_nm']:8.3f} {d['median_nm']:10.3f}")
+        if self.path is not None:
+            out.append(f"written: {self.path}")
+        return "\n".join(out)
+
+
+def calibrate_night(solutions: Iterable[WavelengthSolution], station: Station, *, fit_lens: bool = True,
+                    write: bool = True, date: str | None = None, out_dir: str | Path | None = None) -> NightCalibration:
+    """Fit one station geometry to the line positions of many events and write it beside the old file.
+
+    Parameters
+    ----------
+    solutions : iterable of WavelengthSolution
+        Per-event results of :func:`calibrate_event` (their ``measurements`` are used; the
+        event id is the measurements' ``event`` column). Station fallbacks add nothing.
+    station : Station
+        The station file the events were processed with (start, prior and template).
+    fit_lens : bool
+        Also fit ``focal_px`` and ``k1``: many events over the field constrain them.
+    write : bool
+        Write ``<id>.refined-<date>.toml`` beside ``station.path`` (never overwrites: a
+        ``-2``, ``-3`` ... suffix is added if needed).
+    date : str, optional
+        ``YYYYMMDD`` for the file name; default today (UTC).
+    out_dir : path, optional
+        Folder for the new file; default the station file's folder.
+
+    Returns
+    -------
+    NightCalibration
+
+    Raises
+    ------
+    ValueError
+        No event carries line measurements.
+    """
+    sols = list(solutions)
+    meas = [s.measurements for s in sols if s.measurements is not None and len(s.measurements)
+            and s.source == "event"]
+    if not meas:
+        raise ValueError(f"{station.path}: no event with measured lines to refine the station from")
+    m = LineMeasurements.concat(meas)
+    start = SpectralGeometry.from_station(station)
+    fit = fit_geometry(m, start, fit_lens=fit_lens, prior=start)
+    if not fit:
+        raise ValueError(f"{station.path}: night geometry fit failed ({fit.message})")
+    sol = _solution_from_fit(fit, m, "night")
+    per_event = {}
+    for ev in dict.fromkeys(m.event.tolist()):
+        sel = (m.event == ev) & fit.used
+        r = fit.along_nm[sel]
+        per_event[ev or "(unnamed)"] = {"n": float(sel.sum()),
+                                        "rms_nm": float(np.sqrt(np.mean(r**2))) if r.size else math.nan,
+                                        "median_nm": float(np.median(r)) if r.size else math.nan}
+    path = None
+    if write:
+        path = write_refined_station(station, sol, date=date, out_dir=out_dir)
+    return NightCalibration(sol, geometry_values(start), per_event, path)
+
+
+def _write_new_file(path: Path, text: str, *, overwrite: bool = False) -> None:
+    """Write via a temporary file in the same folder; never leaves a half-written file."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        if overwrite:
+            os.replace(tmp, path)
+        else:
+            os.link(tmp, path)  # fails if path exists: no overwrite, even in a race
+            os.unlink(tmp)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def _set_toml_value(text: str, section: str, key: str, value: float) -> str:
+    """Replace (or add) ``key = value`` in ``[section]`` keeping comments and layout."""
+    sec = re.search(rf"(?m)^\[{re.escape(section)}\]\s*$", text)
+    if sec is None:
+        return text.rstrip("\n") + f"\n\n[{section}]\n{key} = {value!r}\n"
+    nxt = re.search(r"(?m)^\[", text[sec.end():])
+    end = sec.end() + (nxt.start() if nxt else len(text) - sec.end())
+    body = text[sec.end():end]
+    pat = re.compile(rf"(?m)^(\s*{re.escape(key)}\s*=\s*)([^#\n]*?)(\s*(#.*)?)$")
+    if pat.search(body):
+        body = pat.sub(lambda mm: f"{mm.group(1)}{value!r}{mm.group(3)}", body, count=1)
+    else:
+        body = f"\n{key} = {value!r}" + body
+    return text[:sec.end()] + body + text[end:]
+
+
+def write_refined_station(station: Station, solution: WavelengthSolution, *, date: str | None = None,
+                          out_dir: str | Path | None = None) -> Path:
+    """Write the station file with refined values as ``<id>.refined-<date>.toml``.
+
+    The original file's text is copied with the grating (and fitted lens) values replaced,
+    so comments and the other sections stay; a header comment says what was done. The
+    original is never touched and an existing refined file is never overwritten.
+    """
+    try:
+        text = Path(station.path).read_text(encoding="utf-8")
+    except OSError as exc:
+        raise InputError(station.path, f"cannot read station file ({exc.__class__.__name__})") from None
+    date = datetime.now(timezone.utc).strftime("%Y%m%d") if date is None else date
+    for name in GRATING_PARAMETERS:
+        text = _set_toml_value(text, "grating", name, round(float(solution.values[name]), 6))
+    for name in LENS_PARAMETERS:
+        if np.isfinite(solution.errors.get(name, math.nan)):
+            text = _set_toml_value(text, "lens", name, round(float(solution.values[name]), 6))
+    err = ", ".join(f"{k} +- {v:.3g}" for k, v in solution.errors.items() if np.isfinite(v))
+    header = (f"# Refined by meteorspec calibrate from {station.path.name} ({date}): "
+              f"{len(solution.residuals)} line positions, rms {solution.rms_nm:.3f} nm.\n# 1-sigma: {err}\n")
+    folder = Path(station.path).parent if out_dir is None else Path(out_dir)
+    base = f"{station.id}.refined-{date}"
+    for k in range(1, 1000):
+        path = folder / (f"{base}.toml" if k == 1 else f"{base}-{k}.toml")
+        try:
+            _write_new_file(path, header + text)
+            return path
+        except FileExistsError:
+            continue
+    raise InputError(folder, f"too many refined files named {base}*.toml")

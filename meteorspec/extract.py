@@ -133,8 +133,9 @@ class FrameSpectra:
     flags : tuple of str
     frame_weight : ndarray of shape (n_frames,)
         Relative brightness of each frame (the track's zeroth-order flux where
-        known, otherwise the frame's extracted total); used by
-        :meth:`whole_flight` to account for masked samples.
+        known, otherwise the frame's fit to the mean spectrum of the frames of
+        known weight over its unmasked bins); used by :meth:`whole_flight` to
+        account for masked samples.
     optimal : bool
         Whether profile-weighted (Horne 1986) extraction was used.
     profile_offset_px, profile : ndarray
@@ -157,14 +158,18 @@ class FrameSpectra:
     def n_frames(self) -> int:
         return int(self.flux.shape[0])
 
-    def whole_flight(self, *, min_coverage: float = 0.5) -> Spectrum:
+    def whole_flight(self, *, min_coverage: float = 0.1) -> Spectrum:
         """Sum over frames, with masked samples accounted for by the light curve.
 
         Parameters
         ----------
         min_coverage : float
             Smallest share of the light curve that the unmasked frames of a bin
-            must carry; bins with less are masked.
+            must carry; bins with less are masked. The scaled estimate stays
+            unbiased at any coverage (its error grows as ``1 / c`` and is
+            propagated); 0.1 keeps the strong lines of a fireball whose
+            brightest frames are saturated, without letting a sliver of the
+            flight stand for all of it.
 
         Notes
         -----
@@ -648,21 +653,43 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
 
 
 def _fill_weights(weight: np.ndarray, flux: np.ndarray, mask: np.ndarray, widths: np.ndarray) -> None:
-    """Replace unknown (NaN) frame weights by a scaled extracted total, in place."""
+    """Replace unknown (NaN) frame weights, in place, by a fit of the frame to the flight's mean spectrum.
+
+    The tracker gives no zeroth-order flux where that order is saturated or cut
+    by the sensor edge, which is where a fireball is brightest. The frame's own
+    extracted total is no substitute: its saturated (masked) bins are exactly
+    the strongest lines, so it would understate the frame and, through the
+    coverage of :meth:`FrameSpectra.whole_flight`, the whole flight. Instead
+    the mean spectrum per unit weight ``T`` is formed from the frames of known
+    weight, and an unknown frame's weight is ``sum(f) / sum(T)`` over the bins
+    unmasked in that frame (exact for a spectrum of constant shape, which the
+    coverage correction assumes anyway). Without any known weight the frames'
+    extracted totals over the bins unmasked in every luminous frame are used.
+    """
     unknown = ~np.isfinite(weight)
     if not unknown.any():
         return
     good = ~mask
-    # bins unmasked in every frame that has any: a total comparable between frames
-    common = good[~unknown].all(axis=0) if (~unknown).any() else np.zeros(mask.shape[1], bool)
-    tot = np.where(good, flux, 0.0) * widths
-    total = tot.sum(axis=1)
-    known = ~unknown & (weight > 0)
-    if known.any() and common.any():
-        ratio = np.nanmedian(weight[known] / np.clip(tot[known][:, common].sum(axis=1), 1e-30, None))
-    else:
-        ratio = 1.0
-    weight[unknown] = np.clip(total[unknown], 0.0, None) * (ratio if np.isfinite(ratio) else 1.0)
+    energy = np.where(good, flux, 0.0) * widths
+    known = ~unknown & (weight > 0) & good.any(axis=1)
+    template = None
+    if known.any():
+        wk = np.where(good[known], weight[known][:, None], 0.0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            template = np.where(wk.sum(axis=0) > 0, energy[known].sum(axis=0) / wk.sum(axis=0), np.nan)
+    for k in np.flatnonzero(unknown):
+        if not good[k].any():
+            weight[k] = 0.0
+            continue
+        if template is not None:
+            use = good[k] & np.isfinite(template)
+            den = float(np.sum(template[use]))
+            if den > 0:
+                weight[k] = max(float(np.sum(energy[k, use])) / den, 0.0)
+                continue
+        lum = good.any(axis=1)
+        common = good[lum].all(axis=0)
+        weight[k] = max(float(np.sum(energy[k, common] if common.any() else energy[k])), 0.0)
 
 
 def _total_snr(fs: FrameSpectra) -> float:

@@ -375,3 +375,39 @@ def test_default_grid_spans_sensor_at_half_the_finest_dispersion():
     assert_allclose(step, step[0], rtol=1e-9)
     d = FISHEYE.dispersion_nm_per_px(tr.x_px[:, None], tr.y_px[:, None], grid[None, :])
     assert step[0] <= 0.5 * np.nanmin(d) * 1.0001
+
+
+def test_saturated_brightest_frames_recovered_from_light_curve_without_zeroth_flux():
+    # A fireball: the Na line core saturates in the two brightest frames, where
+    # the tracker also has no zeroth-order flux (NaN: saturated zeroth order).
+    # The frames' weights must then come from their unsaturated bins against
+    # the mean spectrum of the other frames, and the whole-flight Na energy
+    # from the unsaturated frames scaled by their share of the light curve.
+    # Noise-free, constant spectral shape: exact up to the 1 % flux bar of
+    # test_flux_conserved_on_curved_off_axis_spectrum.
+    cam = camera()
+    geo = SpectralGeometry(LensModel("equidistant", 600.0, 319.5, 239.5), GratingModel(600.0, 0.0))
+    tr = LinearTrack(times(4), 300.0, 150.0, 0.0, 300.0)
+    lines = [(517.27, 4000.0), (589.0, 6000.0), (656.28, 3000.0)]
+    cont = (np.arange(480.0, 700.0, 0.2), np.full(1100, 2.0))
+    frames = render(geo, tr, cam, lines, n_frames=4, continuum=cont)
+    light = np.array([1.0, 3.0, 4.0, 2.0])
+    scaled = []
+    for k, f in enumerate(frames):
+        sat = np.zeros(f.signal.shape, bool)
+        if k in (1, 2):
+            x, y = geo.spectrum_pixel(*tr.position(f.time_s), 589.0)
+            iy, ix = int(round(float(y))), int(round(float(x)))
+            sat[iy - 4:iy + 5, ix - 2:ix + 3] = True
+        scaled.append(Frame(f.index, f.time_s, f.exposure_s, f.signal * light[k], sat))
+    tr.flux_adu = np.where([True, False, False, True], 50.0 * light, np.nan)
+    fs = extract_spectra(scaled, FlatBackground(cam.height, cam.width), tr, geo, camera=cam, optimal=False)
+    na = np.abs(fs.wavelength_nm - 589.0) < 0.3
+    assert fs.mask[1, na].all() and fs.mask[2, na].all() and not fs.mask[0, na].any()
+    # the filled weights follow the light curve
+    assert_allclose(fs.frame_weight / fs.frame_weight[0], light, rtol=0.01)
+    # window_energy spans the midpoints to the neighbouring lines; continuum components inside it
+    lo, hi = 0.5 * (517.27 + 589.0), 0.5 * (589.0 + 656.28)
+    cont_in = 2.0 * np.count_nonzero((cont[0] > lo) & (cont[0] < hi))
+    got = window_energy(fs, 589.0, lines)
+    assert_allclose(got, light.sum() * (6000.0 + cont_in), rtol=0.01)

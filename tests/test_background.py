@@ -1,0 +1,189 @@
+"""Tests of the background and noise model (meteorspec.background).
+
+Frames are built here: a sky with a gradient, stars with their first-order
+spectra (placed by :class:`SpectralGeometry`), a bright moving source in some
+frames, scintillation, Poisson photon noise for a known gain and Gaussian read
+noise (the standard CCD/CMOS noise model, e.g. Janesick 2007, *Photon
+Transfer*, SPIE PM170; "common practice").
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.ndimage import gaussian_filter
+
+from meteorspec.background import Background, estimate_background, select_quiet_frames
+from meteorspec.config import Camera
+from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
+from meteorspec.video import Frame
+
+W, H = 256, 192
+GAIN, READ = 2.0, 1.5          # e-/ADU, ADU
+STARS = [(60.5, 50.2, 30000.0), (150.3, 120.7, 1500.0), (200.1, 40.4, 800.0)]  # x, y, ADU per frame
+
+
+def _camera(*, gain=GAIN, read=READ, interlaced=False) -> Camera:
+    return Camera(width=W, height=H, bit_depth=16, gamma=1.0, saturation_adu=65535.0, interlaced=interlaced,
+                  read_noise_adu=read, gain_e_per_adu=gain)
+
+
+GEO = SpectralGeometry(LensModel("equidistant", 300.0, (W - 1) / 2, (H - 1) / 2), GratingModel(300.0, 0.0))
+
+
+def _static_scene(sky_lo=10.0, sky_hi=200.0):
+    """Noise-free static image: sky gradient along x, stars (PSF sigma 1.2 px) and their spectra."""
+    geo = GEO
+    sky = np.broadcast_to(np.linspace(sky_lo, sky_hi, W)[None, :], (H, W)).copy()
+    star_img = np.zeros((H, W))
+    wl = np.arange(400.0, 800.0, 2.0)
+    for x, y, f in STARS:
+        star_img[int(round(y)), int(round(x))] += 0.6 * f
+        sx, sy = geo.spectrum_pixel(x, y, wl)
+        xi, yi = np.rint(sx).astype(int), np.rint(sy).astype(int)
+        ok = (xi >= 0) & (xi < W) & (yi >= 0) & (yi < H)
+        np.add.at(star_img, (yi[ok], xi[ok]), 0.4 * f / wl.size)
+    return sky, gaussian_filter(star_img, 1.2, mode="constant")
+
+
+def make_frames(n=40, *, meteor_frames=range(12, 22), twinkle=0.1, seed=3, sky_lo=10.0, sky_hi=200.0,
+                interlaced=False):
+    rng = np.random.default_rng(seed)
+    sky, stars = _static_scene(sky_lo, sky_hi)
+    frames = []
+    for k in range(n):
+        img = sky + stars * max(1.0 + twinkle * rng.standard_normal(), 0.0)
+        if k in meteor_frames:
+            blob = np.zeros((H, W))
+            blob[100, 20 + 10 * (k - meteor_frames[0])] = 5.0e4
+            img = img + gaussian_filter(blob, 1.5, mode="constant")
+        lin = rng.poisson(img * GAIN) / GAIN + READ * rng.standard_normal(img.shape)
+        sig = lin.astype(np.float32)
+        sat = np.zeros(sig.shape, bool)
+        if interlaced:
+            for half in (0, 1):
+                j = 2 * k + half
+                frames.append(Frame(index=j, time_s=(j + 0.5) / 50, exposure_s=0.02,
+                                    signal=np.ascontiguousarray(sig[half::2]), saturated=sat[half::2].copy(),
+                                    y_start_px=half, y_step_px=2))
+        else:
+            frames.append(Frame(index=k, time_s=(k + 0.5) / 25, exposure_s=0.04, signal=sig, saturated=sat))
+    return frames, sky, stars
+
+
+def _model_sigma(level):
+    return np.sqrt(READ**2 + level / GAIN)
+
+
+def test_level_and_noise_recovered_with_moving_source_and_twinkling_stars():
+    frames, sky, stars = make_frames()
+    bg = estimate_background(frames, camera=_camera())
+    assert isinstance(bg, Background)
+    truth = sky + stars
+    # frames with the moving source are not used
+    assert not set(bg.frames_used.tolist()) & set(range(12, 22))
+    n_used = len(bg.frames_used)
+    assert n_used >= 10
+    # level: the clipped mean of n samples scatters by sigma / sqrt(n); 5 sigma on every sky pixel
+    sky_px = ~bg.star_mask
+    err = (bg.level_adu - truth)[sky_px] / (_model_sigma(truth[sky_px]) / np.sqrt(n_used))
+    assert np.max(np.abs(err)) < 5.5
+    assert abs(np.mean(err)) < 0.05  # unbiased
+    # noise: station gain and read noise -> the read + photon model exactly (to float32)
+    np.testing.assert_allclose(bg.noise_adu[sky_px], _model_sigma(bg.level_adu[sky_px]), rtol=1e-5)
+    # star pixels: stars and their first-order spectra are masked; twinkling adds scintillation noise
+    x, y, _ = STARS[0]
+    assert bg.star_mask[int(round(y)), int(round(x))]
+    sx, sy = GEO.spectrum_pixel(x, y, 600.0)  # on the star's first-order streak
+    assert bg.star_mask[int(round(float(sy))), int(round(float(sx)))]
+    assert bg.star_mask.mean() < 0.1
+    # scintillation of 10 % per frame: the measured fraction within 30 % (few star pixels, ~15 frames)
+    assert 0.07 < bg.scintillation < 0.13
+    assert bg.noise_adu[int(round(y)), int(round(x))] > 3 * _model_sigma(truth[int(round(y)), int(round(x))])
+
+
+def test_noise_model_estimates_gain_and_read_noise_from_poisson_statistics():
+    """Photon transfer: variance = read^2 + level / gain (Poisson statistics, common practice)."""
+    frames, sky, stars = make_frames(meteor_frames=range(0), twinkle=0.0, seed=5)
+    bg = estimate_background(frames, camera=_camera(gain=None, read=None))
+    assert bg.gain_estimated and bg.read_noise_estimated
+    # ~48 000 pixels x 16 frames: the fitted slope is good to ~1-2 %; allow 5 %
+    assert bg.gain_e_per_adu == pytest.approx(GAIN, rel=0.05)
+    # read noise from the intercept is the weaker term (1.5^2 vs up to 100 ADU^2 photon): 15 %
+    assert bg.read_noise_adu == pytest.approx(READ, rel=0.15)
+    sky_px = ~bg.star_mask
+    ratio = bg.noise_adu[sky_px] / _model_sigma(sky[sky_px])
+    assert np.median(ratio) == pytest.approx(1.0, abs=0.03)
+
+
+def test_read_noise_only_known():
+    frames, sky, stars = make_frames(meteor_frames=range(0), twinkle=0.0, seed=6)
+    bg = estimate_background(frames, camera=_camera(gain=None, read=READ))
+    assert not bg.read_noise_estimated and bg.read_noise_adu == READ
+    assert bg.gain_e_per_adu == pytest.approx(GAIN, rel=0.05)
+
+
+def test_variance_of_a_frame_is_read_plus_photon_noise_of_its_own_signal():
+    frames, sky, stars = make_frames()
+    bg = estimate_background(frames, camera=_camera())
+    f = frames[15]  # holds the moving source
+    res = bg.residual(f)
+    assert res.dtype == np.float32 and res.shape == f.signal.shape
+    var = bg.variance(f)
+    np.testing.assert_allclose(var, bg.variance(f, res))
+    sky_px = ~bg.star_mask
+    expected = READ**2 + np.maximum(f.signal, 0) / GAIN
+    np.testing.assert_allclose(var[sky_px], expected[sky_px], rtol=1e-5)
+    # the residual of a meteor-free frame, scaled by the noise model, is unit normal (sky pixels)
+    q = bg.residual(frames[3])[sky_px] / bg.noise_adu[sky_px]
+    assert np.std(q) == pytest.approx(1.0, abs=0.05)
+
+
+def test_interlaced_fields_build_a_full_frame_model():
+    frames, sky, stars = make_frames(n=20, meteor_frames=range(6, 10), interlaced=True)
+    bg = estimate_background(frames, camera=_camera(interlaced=True))
+    assert bg.level_adu.shape == (H, W)
+    truth = sky + stars
+    sky_px = ~bg.star_mask
+    err = (bg.level_adu - truth)[sky_px] / _model_sigma(truth[sky_px])
+    assert np.abs(err).max() < 2.5  # >= 8 fields per parity: sigma/sqrt(8) ~ 0.35 sigma, 7 sigma margin
+    # both parities used, none of the fields with the source (fields 12..19)
+    used = set(bg.frames_used.tolist())
+    assert any(j % 2 == 0 for j in used) and any(j % 2 == 1 for j in used)
+    assert not used & set(range(12, 20))
+    # residual of a field uses that field's rows
+    f = frames[3]
+    np.testing.assert_allclose(bg.residual(f), f.signal - bg.level_adu[1::2], rtol=0, atol=1e-4)
+
+
+def test_quiet_frames_chosen_when_the_source_is_in_most_frames():
+    frames, sky, stars = make_frames(n=24, meteor_frames=range(2, 22), twinkle=0.0)
+    bg = estimate_background(frames, camera=_camera())
+    truth = sky + stars
+    # the moving source is in 20 of 24 frames but at each pixel in one frame only:
+    # per-pixel clipping removes it from the level
+    assert np.abs(bg.level_adu[100, 20:220] - truth[100, 20:220]).max() < 6 * _model_sigma(200.0)
+
+
+def test_select_quiet_frames_prefers_frames_without_transients():
+    rng = np.random.default_rng(0)
+    stack = rng.normal(10, 1, (30, 20, 30)).astype(np.float32)
+    stack[10:15, 5:10, 5:20] += 50
+    chosen = select_quiet_frames(stack, max_frames=12)
+    assert len(chosen) == 12
+    assert not set(chosen.tolist()) & set(range(10, 15))
+
+
+def test_bad_input_is_a_clear_error():
+    frames, sky, stars = make_frames(n=6, meteor_frames=range(0))
+    with pytest.raises(ValueError, match="no frames"):
+        estimate_background([], camera=_camera())
+    bad = list(frames)
+    sig = bad[2].signal.copy()
+    sig[3, 4] = np.nan
+    bad[2] = Frame(index=2, time_s=0.1, exposure_s=0.04, signal=sig, saturated=bad[2].saturated)
+    with pytest.raises(ValueError, match="frame 2 holds NaN"):
+        estimate_background(bad, camera=_camera())
+    small = Camera(width=W - 2, height=H, bit_depth=16, gamma=1.0, saturation_adu=65535.0, interlaced=False)
+    with pytest.raises(ValueError, match="frame 0 is 256 px wide"):
+        estimate_background(frames, camera=small)

@@ -1,0 +1,339 @@
+"""Tests of the zeroth-order tracker (meteorspec.track).
+
+Synthetic events are built here with :class:`SpectralGeometry` only (a point
+source moving along a great circle, its first-order spectrum where the grating
+puts it, Gaussian PSF, Poisson photon noise and Gaussian read noise), so that
+each case (a bright line, a star, a gap, saturation, leaving the sensor, fields)
+can be switched on alone. The acceptance test at the end uses the project's
+simulator and its truth.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.ndimage import gaussian_filter
+
+from meteorspec.background import estimate_background
+from meteorspec.config import Camera
+from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
+from meteorspec.track import STATUSES, Track, find_track
+from meteorspec.video import Frame
+
+W, H = 320, 240
+FPS = 25.0
+
+
+def _camera(*, interlaced=False, gain=2.0, read=1.5, saturation=255.0) -> Camera:
+    return Camera(width=W, height=H, bit_depth=8, gamma=1.0, saturation_adu=saturation, interlaced=interlaced,
+                  read_noise_adu=read, gain_e_per_adu=gain)
+
+
+def _geometry(dispersion_deg=0.0) -> SpectralGeometry:
+    # 300 grooves/mm on a 400 px focal length: first order 400-800 nm spans ~50-100 px from the zeroth order
+    return SpectralGeometry(LensModel("equidistant", 400.0, (W - 1) / 2, (H - 1) / 2),
+                            GratingModel(300.0, dispersion_deg))
+
+
+def _splat(img, x, y, w):
+    """Bilinear deposit of weights ``w`` at (x, y): conserves flux and centroid."""
+    ok = np.isfinite(x) & np.isfinite(y)
+    x, y, w = x[ok], y[ok], w[ok]
+    x0, y0 = np.floor(x).astype(int), np.floor(y).astype(int)
+    fx, fy = x - x0, y - y0
+    h, wd = img.shape
+    for dx, dy, ww in ((0, 0, (1 - fx) * (1 - fy)), (1, 0, fx * (1 - fy)), (0, 1, (1 - fx) * fy), (1, 1, fx * fy)):
+        xi, yi = x0 + dx, y0 + dy
+        inside = (xi >= 0) & (xi < wd) & (yi >= 0) & (yi < h)
+        img += np.bincount(yi[inside] * wd + xi[inside], (w * ww)[inside], minlength=h * wd).reshape(h, wd)
+
+
+def make_event(*, start_px=(60.0, 80.0), end_px=(250.0, 150.0), n_frames=24, t_on=0.12, t_off=0.76,
+               zeroth_adu_s=2.0e5, spectrum_adu_s=2.0e5, line_nm=(589.0,), line_share=0.3,
+               gap_s=None, stars=(), twinkle=0.0, sky_adu=8.0, psf=1.2, interlaced=False,
+               saturation=255.0, dispersion_deg=0.0, seed=1, nan_frame=None, noise=True):
+    """Frames and truth of a synthetic event.
+
+    The meteor moves at constant angular speed along the great circle through the
+    directions of ``start_px`` (at ``t_on``) and ``end_px`` (at ``t_off``); its light is
+    constant while on (``*_adu_s`` per second, first order split between a flat continuum
+    400-800 nm and lines), zero in ``gap_s = (t0, t1)``. ``stars`` are (x, y, adu_s).
+    """
+    rng = np.random.default_rng(seed)
+    geo = _geometry(dispersion_deg)
+    lens = geo.lens
+    u0, u1 = lens.pixel_to_direction(*start_px), lens.pixel_to_direction(*end_px)
+    arc = np.arccos(np.clip(np.dot(u0, u1), -1, 1))
+    e = (u1 - np.dot(u0, u1) * u0) / np.linalg.norm(u1 - np.dot(u0, u1) * u0)
+    omega = arc / (t_off - t_on)
+
+    def pixel(t):
+        a = omega * (np.asarray(t, float) - t_on)
+        return lens.direction_to_pixel(np.cos(a)[..., None] * u0 + np.sin(a)[..., None] * e)
+
+    wl_cont = np.arange(400.0, 800.0, 1.0)
+    cont_w = np.full(wl_cont.size, (1 - line_share * len(line_nm)) / wl_cont.size)
+    wl = np.concatenate([wl_cont, np.array(line_nm, float)])
+    wsh = np.concatenate([cont_w, np.full(len(line_nm), line_share)])
+    n_exp = 2 * n_frames if interlaced else n_frames
+    expo = 1.0 / FPS / (2 if interlaced else 1)
+    frames, truth = [], {"time_s": [], "x_mid": [], "y_mid": [], "flux": [], "lit": []}
+    for j in range(n_exp):
+        t0, t1 = j * expo, (j + 1) * expo
+        img = np.zeros((H, W))
+        subs = 40
+        ts = t0 + (np.arange(subs) + 0.5) / subs * expo
+        on = (ts >= t_on) & (ts < t_off)
+        if gap_s is not None:
+            on &= ~((ts >= gap_s[0]) & (ts < gap_s[1]))
+        flux0 = zeroth_adu_s * expo * on.mean()
+        if on.any():
+            xs, ys = pixel(ts[on])
+            _splat(img, xs, ys, np.full(xs.size, zeroth_adu_s * expo / subs))
+            sx, sy = geo.spectrum_pixel(xs[:, None], ys[:, None], wl[None, :])
+            _splat(img, sx.ravel(), sy.ravel(), np.broadcast_to(spectrum_adu_s * expo / subs * wsh, sx.shape).ravel())
+        for (x_s, y_s, f_s) in stars:
+            f = f_s * expo * max(1.0 + twinkle * rng.standard_normal(), 0.0) if noise else f_s * expo
+            _splat(img, np.array([x_s]), np.array([y_s]), np.array([f * 0.6]))
+            sx, sy = geo.spectrum_pixel(x_s, y_s, wl_cont)
+            _splat(img, sx, sy, np.full(wl_cont.size, f * 0.4 / wl_cont.size))
+        img = gaussian_filter(img, psf, mode="constant") + sky_adu
+        if noise:
+            img = rng.poisson(img * 2.0) / 2.0 + 1.5 * rng.standard_normal(img.shape)  # gain 2 e/ADU, read 1.5 ADU
+        stored = np.clip(np.rint(img), 0, saturation)
+        sat = stored >= saturation
+        xm, ym = pixel((t0 + t1) / 2)
+        truth["time_s"].append((t0 + t1) / 2)
+        truth["x_mid"].append(float(xm))
+        truth["y_mid"].append(float(ym))
+        truth["flux"].append(flux0)
+        truth["lit"].append(flux0 > 0)
+        sig = stored.astype(np.float32)
+        if nan_frame is not None and j == nan_frame:
+            sig[10, 10] = np.nan
+        if interlaced:
+            # field j exposes rows (j % 2)::2 ("top" field first); the stored frame interleaves two fields
+            rows = slice(j % 2, None, 2)
+            frames.append(Frame(index=j, time_s=(t0 + t1) / 2, exposure_s=expo,
+                                signal=np.ascontiguousarray(sig[rows]), saturated=np.ascontiguousarray(sat[rows]),
+                                y_start_px=j % 2, y_step_px=2))
+        else:
+            frames.append(Frame(index=j, time_s=(t0 + t1) / 2, exposure_s=expo, signal=sig, saturated=sat))
+    truth = {k: np.array(v) for k, v in truth.items()}
+    return frames, truth, geo
+
+
+def run(frames, geo, *, interlaced=False, saturation=255.0):
+    cam = _camera(interlaced=interlaced, saturation=saturation)
+    bg = estimate_background(frames, camera=cam)
+    return find_track(frames, bg, geo, camera=cam)
+
+
+def _err(track, truth, mask=None):
+    d = np.hypot(track.x_px - truth["x_mid"], track.y_px - truth["y_mid"])
+    m = np.isfinite(d) if mask is None else (np.isfinite(d) & mask)
+    return d[m]
+
+
+# --------------------------------------------------------------------------- basic accuracy
+
+
+def test_track_recovers_great_circle_motion():
+    frames, truth, geo = make_event()
+    track = run(frames, geo)
+    assert track, track.reason
+    assert track.reason == ""
+    d = _err(track, truth)
+    # acceptance of the issue: <= 0.3 px RMS against truth for an unsaturated zeroth order
+    assert np.sqrt(np.mean(d**2)) <= 0.3
+    # every fully lit frame is covered and measured
+    full = truth["flux"] >= truth["flux"].max() * 0.999
+    assert np.all(np.isin(track.status[full], ("measured",)))
+    assert set(np.unique(track.status)) <= set(STATUSES)
+    assert track.first_frame >= 0 and track.last_frame > track.first_frame
+    # the light curve: aperture sum of a 3.5-sigma-PSF aperture holds > 97 % of a Gaussian's light
+    # (1 - exp(-3.6^2/2) = 0.998 for the 3.6 px radius used); allow photon noise (5 sigma)
+    m = full & np.isfinite(track.flux_adu)
+    assert np.all(np.abs(track.flux_adu[m] - truth["flux"][m]) <= 0.03 * truth["flux"][m] + 5 * track.flux_err_adu[m])
+
+
+def test_position_and_velocity_between_frames():
+    frames, truth, geo = make_event()
+    track = run(frames, geo)
+    # inside an exposure the fitted trajectory is the motion streak: halfway between two mid-exposure points
+    t = 0.5 * (truth["time_s"][8] + truth["time_s"][9])
+    x, y = track.position(t)
+    assert abs(x - 0.5 * (truth["x_mid"][8] + truth["x_mid"][9])) < 0.3
+    vx, vy = track.velocity_px_s(truth["time_s"][10])
+    step = np.hypot(truth["x_mid"][11] - truth["x_mid"][9], truth["y_mid"][11] - truth["y_mid"][9]) / (2 / FPS)
+    assert abs(np.hypot(vx, vy) - step) / step < 0.02
+    # far outside the luminous span the trajectory is not extrapolated
+    assert np.all(np.isnan(track.position(10.0)))
+
+
+# --------------------------------------------------------------------------- telling things apart
+
+
+def test_zeroth_order_told_from_bright_line_of_its_own_spectrum():
+    # a single line holding 60 % of the first order is ~1.8x brighter than the zeroth order:
+    # the line's own "spectrum" would lie beyond 1000 nm (no light), the zeroth order's is lit
+    frames, truth, geo = make_event(zeroth_adu_s=1.0e5, spectrum_adu_s=3.0e5, line_nm=(589.0,), line_share=0.6)
+    track = run(frames, geo)
+    assert track, track.reason
+    assert np.sqrt(np.mean(_err(track, truth) ** 2)) <= 0.3
+
+
+def test_bright_twinkling_star_and_its_spectrum_are_not_tracked():
+    star = (160.0, 40.0, 1.5e5)
+    frames, truth, geo = make_event(stars=[star, (90.0, 200.0, 4.0e4)], twinkle=0.15)
+    track = run(frames, geo)
+    assert track, track.reason
+    assert np.sqrt(np.mean(_err(track, truth) ** 2)) <= 0.3
+    assert np.all(np.hypot(track.x_meas_px - star[0], track.y_meas_px - star[1])[np.isfinite(track.x_meas_px)] > 20)
+
+
+def test_no_meteor_gives_empty_track_with_reason():
+    frames, truth, geo = make_event(zeroth_adu_s=0.0, spectrum_adu_s=0.0, stars=[(100.0, 100.0, 1e5)], twinkle=0.1)
+    track = run(frames, geo)
+    assert not track
+    assert track.reason
+    assert track.x_px.shape == (len(frames),) and np.all(np.isnan(track.x_px))
+    assert np.all(track.status == "absent")
+    assert track.first_frame == -1
+    assert np.all(np.isnan(track.position(0.3)))
+
+
+def test_nan_frame_is_a_clear_error():
+    frames, truth, geo = make_event(nan_frame=5)
+    cam = _camera()
+    with pytest.raises(ValueError, match="frame 5 holds NaN"):
+        estimate_background(frames, camera=cam)
+    good = [f for f in frames if f.index != 5]
+    bg = estimate_background(good, camera=cam)
+    with pytest.raises(ValueError, match="frame 5 holds NaN"):
+        find_track(frames, bg, geo, camera=cam)
+
+
+# --------------------------------------------------------------------------- gaps, saturation, edges
+
+
+def test_gap_is_bridged():
+    frames, truth, geo = make_event(gap_s=(0.36, 0.48))
+    track = run(frames, geo)
+    assert track, track.reason
+    dark = ~truth["lit"] & (truth["time_s"] > 0.36) & (truth["time_s"] < 0.48)
+    assert dark.sum() >= 2
+    assert np.all(track.status[dark] == "interpolated")
+    # bridged positions within the unsaturated acceptance
+    assert np.all(_err(track, truth, dark) <= 0.3)
+
+
+def test_saturated_zeroth_order():
+    frames, truth, geo = make_event(zeroth_adu_s=2.5e6, spectrum_adu_s=1.0e6)
+    track = run(frames, geo)
+    assert track, track.reason
+    sat = track.status == "saturated"
+    assert sat.sum() >= 10
+    assert "saturated" in track.flags
+    # acceptance for a saturated zeroth order: <= 1.0 px RMS
+    assert np.sqrt(np.mean(_err(track, truth, sat) ** 2)) <= 1.0
+    assert np.all(np.isnan(track.flux_adu[sat]))
+
+
+def test_zeroth_order_off_sensor_located_from_spectrum():
+    # the meteor enters from beyond the left edge; the spectrum (dispersed towards +x, 50-100 px
+    # away) is on the sensor before the zeroth order is
+    frames, truth, geo = make_event(start_px=(-70.0, 100.0), end_px=(200.0, 160.0), spectrum_adu_s=4.0e5)
+    track = run(frames, geo)
+    assert track, track.reason
+    off = truth["lit"] & (np.array(truth["x_mid"]) < -6)
+    assert off.sum() >= 2
+    located = off & (track.status == "from_spectrum")
+    assert located.sum() >= 1
+    assert "zeroth_order_off_frame" in track.flags
+    # located from a streaked spectrum: the along-track position within 1 px (same tolerance as saturated)
+    assert np.all(_err(track, truth, located) <= 1.0)
+    on = truth["lit"] & (track.status == "measured")
+    assert np.sqrt(np.mean(_err(track, truth, on) ** 2)) <= 0.3
+
+
+def test_interlaced_fields_measured_in_full_frame_y():
+    frames, truth, geo = make_event(interlaced=True, n_frames=14, zeroth_adu_s=3.0e5)
+    assert frames[1].y_step_px == 2 and frames[1].y_start_px == 1
+    track = run(frames, geo, interlaced=True)
+    assert track, track.reason
+    assert len(track.time_s) == len(frames)
+    np.testing.assert_allclose(track.time_s, truth["time_s"])
+    assert np.sqrt(np.mean(_err(track, truth) ** 2)) <= 0.3
+
+
+def test_motion_parallel_to_dispersion_is_flagged():
+    frames, truth, geo = make_event(start_px=(40.0, 90.0), end_px=(200.0, 100.0), dispersion_deg=0.0)
+    track = run(frames, geo)
+    assert "motion_parallel_to_dispersion" in track.flags
+    frames, truth, geo = make_event(start_px=(60.0, 30.0), end_px=(80.0, 200.0), dispersion_deg=0.0)
+    track = run(frames, geo)
+    assert track, track.reason
+    assert "motion_parallel_to_dispersion" not in track.flags
+
+
+# --------------------------------------------------------------------------- simulator acceptance
+
+
+def _rendered_frames(rendered):
+    from meteorspec.video import linearize
+    cam = rendered.station.camera
+    out = []
+    for ex in rendered.exposures:
+        sig, sat = linearize(rendered.stored[ex.frame], cam)
+        rows = slice(ex.row_start, None, ex.row_step)
+        out.append(Frame(index=ex.index, time_s=ex.time_s, exposure_s=ex.t_end_s - ex.t_start_s,
+                         signal=np.ascontiguousarray(sig[rows]), saturated=np.ascontiguousarray(sat[rows]),
+                         y_start_px=ex.row_start, y_step_px=ex.row_step))
+    return out
+
+
+def _acceptance_cases():
+    sim = pytest.importorskip("meteorspec.simulate")
+    cases = [(name, spec) for name, spec in sim.SAMPLE_SPECS.items()]
+    cases += [(f"random{k}", s) for k, s in enumerate(sim.random_specs(6, seed=7))]
+    return cases
+
+
+@pytest.mark.slow
+def test_acceptance_against_simulator_truth():
+    """Issue 3 acceptance on the sample presets and 6 seeded random events (the full
+    >= 30-event run is ``python bench/track_accuracy.py``)."""
+    sim = pytest.importorskip("meteorspec.simulate")
+    failures = []
+    for name, spec in _acceptance_cases():
+        rendered = sim.render_event(spec)
+        frames = _rendered_frames(rendered)
+        cam = rendered.station.camera
+        geo = SpectralGeometry.from_station(rendered.station)
+        track = find_track(frames, estimate_background(frames, camera=cam), geo, camera=cam,
+                           orders=rendered.station.grating.orders)
+        if not track:
+            failures.append(f"{name}: not found ({track.reason})")
+            continue
+        tx = np.array([t.x_mid_px for t in rendered.truths])
+        ty = np.array([t.y_mid_px for t in rendered.truths])
+        d = np.hypot(track.x_px - tx, track.y_px - ty)
+        sat = track.status == "saturated"
+        # the issue sets no limit for a zeroth order located from its spectrum (off the sensor).
+        # Known limitation: a saturated spectrum streaking along its own dispersion (random2) is
+        # located to ~3 px only; 4 px guards against losing the spectrum altogether
+        spec = track.status == "from_spectrum"
+        for mask, limit, what in ((~sat & ~spec, 0.3, "unsaturated"), (sat, 1.0, "saturated"),
+                                  (spec, 4.0, "from the spectrum")):
+            m = mask & np.isfinite(d)
+            if m.any() and np.sqrt(np.mean(d[m] ** 2)) > limit:
+                failures.append(f"{name}: {what} RMS {np.sqrt(np.mean(d[m] ** 2)):.3f} px > {limit}")
+    assert not failures, "; ".join(failures)
+
+
+def test_track_is_falsy_dataclass_when_empty():
+    t = Track(time_s=np.zeros(0), x_px=np.zeros(0), y_px=np.zeros(0), x_meas_px=np.zeros(0),
+              y_meas_px=np.zeros(0), flux_adu=np.zeros(0), status=np.zeros(0, "<U13"), reason="nothing")
+    assert not t
+    assert t.first_frame == -1

@@ -16,6 +16,13 @@ Commands
 
 from __future__ import annotations
 
+import os
+
+# Small matrix steps dominate the fits; multithreaded BLAS only adds contention
+# on the cores that worker processes already use. Set before numpy loads.
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
 import argparse
 import sys
 from collections.abc import Sequence

@@ -1,0 +1,1322 @@
+"""Plasma model of a meteor spectrum: a two-temperature LTE synthetic spectrum and its fit.
+
+The method is the thermal-equilibrium fit of Borovicka (1993, A&A 279, 627; 1994, Planet.
+Space Sci. 42, 145): the radiating meteor vapour is a *main component* (T ~ 4000-5000 K;
+Na I, Mg I, Fe I, Ca I, Cr I, Mn I, ...) plus a *hot component* (T ~ 10 000 K; Ca II, Mg II,
+Si II, Fe II, H I). Within a component the level populations follow Boltzmann with NIST
+partition functions (:mod:`meteorspec.atomic`). Light from the atmosphere (O I, N I lines,
+N2 first-positive bands) and a smooth continuum are fitted as nuisance terms.
+
+Model (what :func:`synthetic_spectrum` computes)
+-----------------------------------------------
+For every metal line ``i`` of species ``s`` in component ``c`` (temperature ``T_c``, column
+density ``N_s`` in m^-2), the emergent line integral of a homogeneous slab is
+
+    W_i = int B_lambda(T_c) (1 - exp(-tau_i(lambda))) d lambda
+        = B_lambda(T_c) * dl_D * F(tau_0,i),   F(tau) = int (1 - exp(-tau e^{-x^2})) dx,
+
+with ``tau_0`` from :func:`meteorspec.atomic.line_optical_depth` for ``N_s`` and an
+intrinsic Gaussian (thermal Doppler) profile of 1/e half-width ``dl_D``. For tau -> 0 this is
+Kirchhoff's law and equals :func:`meteorspec.atomic.line_energy_rate` (optically thin LTE);
+for tau >> 1 the line saturates (curve of growth). In code ``W = W_thin * R(tau_0)`` with
+``R = F(tau) / (sqrt(pi) tau)``, tabulated once (exact identity, see :func:`growth_ratio`).
+
+The observed flux density (data units per nm) in bin ``k`` is
+
+    f_k = A * sum_i W_i P_ik + sum_j a_j * sum_(i in j) s_ij P_ik + N2 bands + continuum_k
+
+* ``A`` (``area_scale``): the emitting area times the solid angle and the detector's
+  calibration (data units per W m^-2 sr^-1 of radiance integrated over the line); one for
+  the main and one for the hot component (``hot_area_scale``), which fills another volume
+  (Borovicka 1994 fits each component's own area). Optically thin lines only fix
+  ``A * N``; ``A`` and ``N`` separate only when some lines saturate. With ``self_absorption=False`` ``A`` is fixed and the
+  column densities are reported as NaN.
+* ``P_ik``: the Gaussian instrument profile of FWHM ``fwhm_nm(lambda_i) * width_scale``
+  centred at ``lambda_i + shift_nm + stretch * (lambda_i - lambda_mid)`` (a residual
+  wavelength-calibration error, offset and scale), integrated over bin ``k`` and divided
+  by its width.
+* Atmospheric lines (O I, N I) are not in LTE with the meteor; each of their strongest
+  multiplets gets its own amplitude ``a_j`` (energy, data units x nm), the rest of a species
+  one common amplitude; shares ``s_ij`` within an amplitude are optically thin LTE at 10 000 K.
+* N2 first-positive bands: see :data:`N2_BAND_HEADS_NM`; two non-negative amplitudes per
+  Delta-v sequence (its blue and red end, linear in between).
+* Continuum: Legendre polynomial in wavelength over the fitted range.
+
+Saha ionisation is not needed for the intensities (ions and neutrals have their own
+columns); :func:`element_column_density` applies it when totals per element are wanted.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+from scipy import sparse
+from scipy.interpolate import CubicSpline
+from scipy.optimize import least_squares, lsq_linear
+from scipy.special import ndtr
+
+from . import atomic
+from .atomic import COMPOSITION_GROUPS, LineList
+
+__all__ = [
+    "AIR_SPECIES",
+    "GROUPS",
+    "HOT_SPECIES",
+    "MAIN_SPECIES",
+    "N2_BAND_HEADS_NM",
+    "PlasmaFit",
+    "doppler_fwhm_nm",
+    "element_column_density",
+    "emergent_line_radiance",
+    "fit_plasma",
+    "fit_plasma_per_frame",
+    "growth_ratio",
+    "select_model_lines",
+    "synthetic_spectrum",
+]
+
+MAIN_SPECIES: tuple[str, ...] = ("Na I", "Mg I", "Fe I", "Ca I", "Cr I", "Mn I")
+"""Species of the main (~4500 K) component fitted by default."""
+HOT_SPECIES: tuple[str, ...] = ("Ca II", "Mg II", "Si II", "Fe II", "H I")
+"""Species of the hot (~10 000 K) component (Borovicka 1994)."""
+AIR_SPECIES: tuple[str, ...] = ("O I", "N I")
+"""Atmospheric species, fitted as free multiplet amplitudes (not LTE with the meteor)."""
+GROUPS: tuple[str, ...] = tuple(COMPOSITION_GROUPS)  # ("na", "mg", "fe")
+
+# N2 first-positive system (B3Pi_g - A3Sigma_u+) band heads in air, nm, by Delta-v sequence.
+# From memory (the band-head tables of Pearse and Gaydon, *The Identification of Molecular
+# Spectra*), approximate to about +-1 nm, which is below the instrument widths we fit
+# (1-5 nm). The bands are degraded to the violet (from memory).
+N2_BAND_HEADS_NM: dict[int, tuple[float, ...]] = {
+    1: (842.9, 857.5, 872.4, 888.3),
+    2: (727.3, 738.7, 750.4, 762.6, 775.3),
+    3: (625.3, 632.3, 639.5, 646.9, 654.5, 662.4, 670.5, 678.9, 687.5),
+    4: (585.4, 590.6, 595.9, 601.4, 606.9, 612.7),
+}
+# Low-resolution band shape: emission falling off exponentially to the violet of the head.
+# The e-folding length and extent are rough (from memory of low-dispersion spectra);
+# at 1-5 nm FWHM only the centroid and width of the band matter.
+_N2_TAIL_NM = 2.5
+_N2_EXTENT_NM = 10.0
+_N2_STEP_NM = 0.5
+
+# Standard atomic weights (IUPAC, from memory), for the thermal Doppler width only: a 1 %
+# error in the mass changes the width by 0.5 %.
+_ATOMIC_MASS_U = {"H": 1.008, "Li": 6.94, "N": 14.007, "O": 15.999, "Na": 22.990,
+                  "Mg": 24.305, "Al": 26.982, "Si": 28.085, "K": 39.098, "Ca": 40.078,
+                  "Ti": 47.867, "Cr": 51.996, "Mn": 54.938, "Fe": 55.845, "Ni": 58.693}
+_U_KG = 1.66053906660e-27  # atomic mass constant, CODATA 2018
+_K_J_K = 1.380649e-23  # exact (2019 SI)
+_C_M_S = 299792458.0  # exact
+_H_J_S = 6.62607015e-34  # exact (2019 SI)
+_K_EV_K = _K_J_K / 1.602176634e-19  # eV/K, exact
+
+_LN10 = math.log(10.0)
+_SIGMA_PER_FWHM = 1.0 / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+_MAIN_T_BOUNDS_K = (3000.0, 8000.0)
+_HOT_T_BOUNDS_K = (8000.0, 15000.0)
+_AIR_MULTIPLETS = 4  # strongest multiplets of each air species with their own amplitude
+_HOT_REFERENCE_K = 10000.0
+_LOG_N_SPAN = 12.0  # bounds of log10 N around the starting value (dex)
+_TAU_MAX = 1e12
+
+
+# --------------------------------------------------------------------------------------------
+# Curve of growth of a Gaussian line
+# --------------------------------------------------------------------------------------------
+
+@functools.lru_cache(maxsize=1)
+def _growth_table() -> tuple[NDArray, NDArray, NDArray]:
+    """log10 tau grid, log R(tau) and log G'(tau), with G = tau R = F / sqrt(pi)."""
+    log_tau = np.linspace(-6.0, 12.0, 1441)
+    x = np.linspace(0.0, 10.0, 8001)
+    dx = x[1] - x[0]
+    e = np.exp(-x * x)
+    tau = 10.0 ** log_tau[:, None]
+    w = np.full(x.size, dx)
+    w[0] = w[-1] = dx / 2  # trapezoid; integrand even and decaying -> spectrally accurate
+    g = 2.0 / math.sqrt(math.pi) * (-np.expm1(-tau * e)) @ w
+    dg = 2.0 / math.sqrt(math.pi) * (e * np.exp(-tau * e)) @ w
+    return (log_tau[0], log_tau[-1], CubicSpline(log_tau, np.log(g / tau[:, 0])),
+            CubicSpline(log_tau, np.log(dg)))
+
+
+def growth_ratio(tau0: ArrayLike, *, derivative: bool = False) -> NDArray[np.float64]:
+    """Saturation factor of a line with a Gaussian absorption profile.
+
+    Parameters
+    ----------
+    tau0 : array_like
+        Optical depth at line centre, >= 0.
+    derivative : bool
+        Return ``dG/dtau`` instead, with ``G = tau R``.
+
+    Returns
+    -------
+    ndarray
+        ``R(tau0) = F(tau0) / (sqrt(pi) tau0)`` with
+        ``F(tau) = int_-inf^inf (1 - exp(-tau exp(-x^2))) dx``: the emergent line integral in
+        units of its optically thin value. ``R -> 1`` for ``tau -> 0``, ``R ~ 2 sqrt(ln tau) /
+        (sqrt(pi) tau)`` for ``tau >> 1`` (the flat part of the curve of growth).
+
+    Notes
+    -----
+    Tabulated on 0.0125 dex in tau (1e-6 .. 1e12) by trapezoid quadrature, cubic-spline
+    interpolated in log-log; below 1e-6 the series ``1 - tau / (2 sqrt 2)`` is used.
+    Interpolation error < 1e-6 relative.
+    """
+    tau = np.asarray(tau0, dtype=float)
+    lo, hi, log_r, log_dg = _growth_table()
+    lt = np.clip(np.log10(np.clip(tau, 1e-300, None)), lo, hi)
+    small = tau < 1e-6
+    if derivative:
+        out = np.exp(log_dg(lt))
+        return np.where(small, 1.0 - tau / math.sqrt(2.0), out)
+    out = np.exp(log_r(lt))
+    return np.where(small, 1.0 - tau / (2.0 * math.sqrt(2.0)), out)
+
+
+def doppler_fwhm_nm(lines: LineList, temperature_k: ArrayLike) -> NDArray[np.float64]:
+    """Thermal Doppler FWHM of each line, nm (vacuum wavelength scale).
+
+    ``FWHM = lambda sqrt(8 ln 2 k T / (m c^2))`` (e.g. Rybicki and Lightman, sec. 10.6), with
+    ``m`` the standard atomic weight of the element. This is the intrinsic profile used for
+    self-absorption; the instrument profile is far wider and added later.
+    """
+    t = np.asarray(temperature_k, dtype=float)[..., None]
+    try:
+        mass = np.array([_ATOMIC_MASS_U[e] for e in lines.element]) * _U_KG
+    except KeyError as exc:
+        raise ValueError(f"no atomic mass for element {exc.args[0]!r}") from None
+    return lines.wavelength_vac_nm * np.sqrt(8.0 * math.log(2.0) * _K_J_K * t / (mass * _C_M_S**2))
+
+
+def emergent_line_radiance(lines: LineList, temperature_k: float,
+                           column_density_m2: dict[str, float] | float, *,
+                           self_absorption: bool = True) -> NDArray[np.float64]:
+    """Line integral of the radiance leaving a homogeneous LTE slab, W m^-2 sr^-1 per line.
+
+    Parameters
+    ----------
+    lines : LineList
+    temperature_k : float
+    column_density_m2 : dict or float
+        Per species (as :func:`meteorspec.atomic.line_energy_rate`).
+    self_absorption : bool
+        False: the optically thin value (:func:`meteorspec.atomic.line_energy_rate`).
+
+    Returns
+    -------
+    ndarray of shape (len(lines),)
+
+    Notes
+    -----
+    Formal solution of radiative transfer for a slab with source function B(T) (Kirchhoff;
+    e.g. Rybicki and Lightman, sec. 1.4): ``I(lambda) = B (1 - exp(-tau(lambda)))``, with a
+    Gaussian (Doppler) profile ``tau(lambda) = tau_0 exp(-(dl / dl_D)^2)``, so that
+    ``int I dl = B dl_D F(tau_0)`` (:func:`growth_ratio`). Evaluated here literally (Planck
+    times width times F) so that tests can compare it with the optically thin result.
+    """
+    if not self_absorption:
+        return atomic.line_energy_rate(lines, temperature_k, column_density_m2)
+    fwhm = doppler_fwhm_nm(lines, temperature_k)
+    tau0 = atomic.line_optical_depth(lines, temperature_k, column_density_m2, fwhm_nm=fwhm)
+    b = atomic.planck_radiance(lines.wavelength_vac_nm, temperature_k)  # per nm
+    width_nm = fwhm / (2.0 * math.sqrt(math.log(2.0)))  # 1/e half-width
+    return b * width_nm * math.sqrt(math.pi) * tau0 * growth_ratio(tau0)
+
+
+def element_column_density(column_density_m2: dict[str, float], temperature_k: float,
+                           electron_density_m3: float) -> dict[str, float]:
+    """Total column of each element, neutral + singly ionised, from one stage by Saha.
+
+    Parameters
+    ----------
+    column_density_m2 : dict
+        Columns of neutral species (``"Fe I"``: N); others are ignored.
+    temperature_k, electron_density_m3 : float
+        Ionisation temperature and electron density (a few 1e19-1e21 m^-3 in meteor
+        plasmas; Borovicka 1993 estimated ~1e20, from memory).
+
+    Returns
+    -------
+    dict
+        Element symbol -> ``N(I) (1 + N(II)/N(I))`` with the ratio from
+        :func:`meteorspec.atomic.saha_ratio`.
+    """
+    out = {}
+    for species, n in column_density_m2.items():
+        element, ion = atomic.parse_species(species)
+        if ion != 1 or not np.isfinite(n):
+            continue
+        ratio = float(atomic.saha_ratio(element, 1, temperature_k, electron_density_m3))
+        out[element] = float(n) * (1.0 + ratio)
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# Line selection
+# --------------------------------------------------------------------------------------------
+
+@functools.lru_cache(maxsize=1)
+def _default_lines() -> LineList:
+    return atomic.load_line_list()
+
+
+def select_model_lines(line_list: LineList, lo_nm: float, hi_nm: float, *,
+                       main_species: Sequence[str] = MAIN_SPECIES,
+                       hot_species: Sequence[str] = HOT_SPECIES,
+                       air_species: Sequence[str] = AIR_SPECIES,
+                       temperature_k: float = 4500.0,
+                       hot_temperature_k: float = _HOT_REFERENCE_K,
+                       min_relative: float = 1e-3) -> tuple[NDArray[np.int64], NDArray[np.str_]]:
+    """The lines worth modelling between ``lo_nm`` and ``hi_nm``.
+
+    A line is kept if it is allowed (E1) and its optically thin LTE intensity, at
+    ``temperature_k`` for main species and ``hot_temperature_k`` for hot and air species, is
+    at least ``min_relative`` of the strongest line of the same species in the range.
+    Composition-group lines are always kept.
+
+    Returns
+    -------
+    index : ndarray of int
+        Indices into ``line_list``, in increasing wavelength.
+    component : ndarray of str
+        ``"main"``, ``"hot"`` or ``"air"`` per kept line.
+    """
+    in_range = ((line_list.wavelength_nm >= lo_nm) & (line_list.wavelength_nm <= hi_nm)
+                & (line_list.transition_type == "E1"))
+    keep_idx, keep_comp = [], []
+    for comp, species_list, t in (("main", main_species, temperature_k),
+                                  ("hot", hot_species, hot_temperature_k),
+                                  ("air", air_species, hot_temperature_k)):
+        for species in species_list:
+            idx = np.flatnonzero(in_range & (line_list.species == species))
+            if idx.size == 0:
+                continue
+            energy = atomic.line_energy_rate(line_list.select(idx), t, 1.0)
+            ok = (energy >= min_relative * energy.max()) | (line_list.group[idx] != "")
+            keep_idx.append(idx[ok])
+            keep_comp += [comp] * int(ok.sum())
+    if not keep_idx:
+        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=str)
+    index = np.concatenate(keep_idx)
+    component = np.array(keep_comp, dtype=str)
+    order = np.argsort(line_list.wavelength_nm[index], kind="stable")
+    return index[order].astype(np.int64), component[order]
+
+
+# --------------------------------------------------------------------------------------------
+# Input handling
+# --------------------------------------------------------------------------------------------
+
+def _fwhm_function(fwhm_nm: float | ArrayLike | Callable, grid_nm: NDArray) -> Callable:
+    """Instrument FWHM as a function of wavelength from a scalar, a per-bin array or a callable."""
+    if callable(fwhm_nm):
+        fn = fwhm_nm
+    else:
+        arr = np.asarray(fwhm_nm, dtype=float)
+        if arr.ndim == 0:
+            value = float(arr)
+            fn = lambda lam: np.full(np.shape(lam), value)  # noqa: E731
+        elif arr.shape == grid_nm.shape:
+            fn = lambda lam: np.interp(lam, grid_nm, arr)  # noqa: E731
+        else:
+            raise ValueError(f"fwhm_nm has shape {arr.shape}; expected a scalar, the shape of "
+                             f"the wavelength grid {grid_nm.shape}, or a callable")
+        if not np.all(np.isfinite(arr) & (arr > 0)):
+            raise ValueError("fwhm_nm must be finite and > 0")
+    return fn
+
+
+def _spectrum_arrays(spectrum) -> tuple[NDArray, NDArray, NDArray, NDArray, NDArray]:
+    """wavelength, bin width, flux, flux_err and the good-bin mask of a Spectrum-like object."""
+    try:
+        wl = np.asarray(spectrum.wavelength_nm, dtype=float)
+        flux = np.asarray(spectrum.flux, dtype=float)
+        err = np.asarray(spectrum.flux_err, dtype=float)
+        bw = np.broadcast_to(np.asarray(spectrum.bin_width_nm, dtype=float), wl.shape).copy()
+        mask = getattr(spectrum, "mask", None)
+        mask = np.zeros(wl.shape, bool) if mask is None else np.asarray(mask, dtype=bool)
+    except AttributeError as exc:
+        raise ValueError(f"spectrum lacks {exc.name!r}: expected wavelength_nm, bin_width_nm, "
+                         "flux, flux_err, mask") from None
+    except ValueError as exc:
+        raise ValueError(f"spectrum arrays do not match: {exc}") from None
+    if wl.ndim != 1 or flux.shape != wl.shape or err.shape != wl.shape or mask.shape != wl.shape:
+        raise ValueError(f"spectrum arrays must be 1-D of one length; got wavelength {wl.shape}, "
+                         f"flux {flux.shape}, flux_err {err.shape}, mask {mask.shape}")
+    if wl.size > 1 and not np.all(np.diff(wl) > 0):
+        raise ValueError("spectrum wavelength_nm must be strictly increasing")
+    if not np.all(np.isfinite(wl)) or not np.all(np.isfinite(bw) & (bw > 0)):
+        raise ValueError("spectrum wavelength_nm and bin_width_nm must be finite (widths > 0)")
+    good = ~mask & np.isfinite(flux) & np.isfinite(err) & (err > 0)
+    return wl, bw, flux, err, good
+
+
+# --------------------------------------------------------------------------------------------
+# Model
+# --------------------------------------------------------------------------------------------
+
+def _profile_matrix(centre_nm: NDArray, fwhm_nm: NDArray, lo_nm: NDArray,
+                    hi_nm: NDArray) -> sparse.csr_matrix:
+    """(n_bins, n_lines) Gaussians of unit area integrated over each bin, per nm of bin."""
+    n_bins, n = lo_nm.size, centre_nm.size
+    if n == 0 or n_bins == 0:
+        return sparse.csr_matrix((n_bins, n))
+    sigma = fwhm_nm * _SIGMA_PER_FWHM
+    first = np.searchsorted(hi_nm, centre_nm - 7.0 * sigma)
+    last = np.searchsorted(lo_nm, centre_nm + 7.0 * sigma, side="right")
+    span = int(np.max(last - first)) if n else 0
+    span = max(span, 1)
+    k = first[:, None] + np.arange(span)[None, :]
+    valid = k < np.minimum(last, n_bins)[:, None]
+    kc = np.clip(k, 0, n_bins - 1)
+    z_hi = (hi_nm[kc] - centre_nm[:, None]) / sigma[:, None]
+    z_lo = (lo_nm[kc] - centre_nm[:, None]) / sigma[:, None]
+    # ndtr differences lose digits in the far tail; beyond 7 sigma nothing is kept anyway
+    val = (ndtr(z_hi) - ndtr(z_lo)) / (hi_nm[kc] - lo_nm[kc])
+    rows = kc[valid]
+    cols = np.broadcast_to(np.arange(n)[:, None], k.shape)[valid]
+    return sparse.csr_matrix((val[valid], (rows, cols)), shape=(n_bins, n))
+
+
+def _n2_samples() -> tuple[NDArray, NDArray, list[str]]:
+    """Sample wavelengths and (n_samples, n_params) weights of the N2 band model."""
+    offsets = np.arange(0.0, _N2_EXTENT_NM, _N2_STEP_NM)
+    shape = np.exp(-offsets / _N2_TAIL_NM)
+    shape /= shape.sum()
+    wl, cols, names = [], [], []
+    n_params = 2 * len(N2_BAND_HEADS_NM)
+    for j, (dv, heads) in enumerate(N2_BAND_HEADS_NM.items()):
+        names += [f"n2_dv{dv}_blue", f"n2_dv{dv}_red"]
+        frac = np.linspace(0.0, 1.0, len(heads)) if len(heads) > 1 else np.zeros(1)
+        for head, f in zip(heads, frac):
+            w = np.zeros((offsets.size, n_params))
+            w[:, 2 * j] = (1.0 - f) * shape
+            w[:, 2 * j + 1] = f * shape
+            wl.append(head - offsets)
+            cols.append(w)
+    return np.concatenate(wl), np.concatenate(cols), names
+
+
+@dataclass
+class _Param:
+    name: str
+    value: float
+    lo: float
+    hi: float
+    free: bool = True
+
+
+@functools.lru_cache(maxsize=64)
+def _partition_table(species: str) -> tuple[NDArray, NDArray]:
+    """log10 T grid (1500-30 000 K, 0.0005 dex) and ln U of one species (interpolation
+    error < 1e-7 relative: U is smooth on that scale)."""
+    element, ion = atomic.parse_species(species)
+    log_t = np.arange(math.log10(1500.0), math.log10(30000.0) + 1e-9, 0.0005)
+    return log_t, np.log(atomic.partition_function(element, ion, 10.0 ** log_t))
+
+
+def _partition_value(species: str, temperature_k: float) -> float:
+    log_t, log_u = _partition_table(species)
+    lt = math.log10(temperature_k)
+    if not log_t[0] <= lt <= log_t[-1]:
+        element, ion = atomic.parse_species(species)
+        return float(atomic.partition_function(element, ion, temperature_k))
+    return float(np.exp(np.interp(lt, log_t, log_u)))
+
+
+def _partition(lines: LineList, hot: NDArray, t_main: float, t_hot: float) -> NDArray:
+    out = np.empty(len(lines))
+    for species in dict.fromkeys(lines.species.tolist()):
+        m = lines.species == species
+        for flag, t in ((False, t_main), (True, t_hot)):
+            mm = m & (hot == flag)
+            if np.any(mm):
+                out[mm] = _partition_value(species, t)
+    return out
+
+
+def _reference_lines(lines: LineList, hot: NDArray) -> dict[str, NDArray]:
+    """Unit-column thin intensity and depth from :mod:`meteorspec.atomic` at reference T."""
+    t_ref = np.where(hot, _HOT_REFERENCE_K, 4500.0)
+    thin = np.empty(len(lines))
+    tau = np.empty(len(lines))
+    for flag, t in ((False, 4500.0), (True, _HOT_REFERENCE_K)):
+        m = hot == flag
+        if np.any(m):
+            sel = lines.select(m)
+            thin[m] = atomic.line_energy_rate(sel, t, 1.0)
+            tau[m] = atomic.line_optical_depth(sel, t, 1.0, fwhm_nm=doppler_fwhm_nm(sel, t))
+    return {"t": t_ref, "thin": thin, "tau": tau,
+            "u": _partition(lines, hot, 4500.0, _HOT_REFERENCE_K),
+            "hc_over_lambda_k": _H_J_S * _C_M_S / (lines.wavelength_vac_nm * 1e-9 * _K_J_K)}
+
+
+class _Model:
+    """Precomputed pieces of the synthetic spectrum on one wavelength grid (internal).
+
+    Parameters are kept by name; ``vector``/``set_vector`` move the free ones in and out of
+    the optimiser.
+    """
+
+    def __init__(self, wl: NDArray, bw: NDArray, fwhm_fn: Callable, lines: LineList,
+                 component: NDArray, *, self_absorption: bool, continuum_degree: int,
+                 air_multiplets: int = _AIR_MULTIPLETS, group_freedom_dex: float | None = None):
+        self.wl, self.bw = wl, bw
+        self.lo, self.hi = wl - bw / 2, wl + bw / 2
+        self.fwhm_fn = fwhm_fn
+        self.self_absorption = bool(self_absorption)
+        metal = component != "air"
+        self.metal = lines.select(metal)
+        self.metal_hot = component[metal] == "hot"
+        self.air = lines.select(~metal)
+        self.species = list(dict.fromkeys(self.metal.species.tolist()))
+        self.species_of_line = np.array([self.species.index(s) for s in self.metal.species],
+                                        dtype=np.int64)
+        # air amplitudes: strongest multiplets of each species alone, the rest pooled
+        air_thin = atomic.line_energy_rate(self.air, _HOT_REFERENCE_K, 1.0) if len(self.air) \
+            else np.zeros(0)
+        keys = []
+        for species in dict.fromkeys(self.air.species.tolist()):
+            m = self.air.species == species
+            labels = self.air.multiplet[m]
+            totals = {lab: air_thin[m][labels == lab].sum()
+                      for lab in dict.fromkeys(labels.tolist())}
+            strongest = sorted(totals, key=lambda lab: -totals[lab])[:air_multiplets]
+            keys += [f"{species}: {lab}" if lab in strongest else f"{species}: other"
+                     for lab in labels]
+        # keys follow the order of self.air lines; regroup per species
+        air_keys = np.array(keys, dtype=str) if keys else np.zeros(0, dtype=str)
+        self.air_names = list(dict.fromkeys(air_keys.tolist()))
+        self.air_share = np.zeros((len(self.air), len(self.air_names)))
+        for j, name in enumerate(self.air_names):
+            m = air_keys == name
+            self.air_share[m, j] = air_thin[m] / air_thin[m].sum()
+        self.n2_wl, self.n2_weight, self.n2_names = _n2_samples()
+        keep = (self.n2_wl > self.lo[0] - 20) & (self.n2_wl < self.hi[-1] + 20)
+        self.n2_wl, self.n2_weight = self.n2_wl[keep], self.n2_weight[keep]
+        used = self.n2_weight.sum(axis=0) > 0.05
+        self.n2_weight = self.n2_weight[:, used]
+        self.n2_names = [n for n, u in zip(self.n2_names, used) if u]
+        x = 2.0 * (wl - wl[0]) / max(wl[-1] - wl[0], 1e-9) - 1.0
+        self.continuum_basis = np.polynomial.legendre.legvander(x, continuum_degree)
+        self.cont_names = [f"continuum_{k}" for k in range(continuum_degree + 1)]
+        # parameters
+        p: dict[str, _Param] = {}
+        p["log_t"] = _Param("log_t", math.log10(4500.0), *np.log10(_MAIN_T_BOUNDS_K))
+        p["log_t_hot"] = _Param("log_t_hot", math.log10(_HOT_REFERENCE_K),
+                                *np.log10(_HOT_T_BOUNDS_K))
+        p["log_scale"] = _Param("log_scale", 0.0, -np.inf, np.inf, free=self.self_absorption)
+        p["log_scale_hot"] = _Param("log_scale_hot", 0.0, -np.inf, np.inf,
+                                    free=self.self_absorption)
+        p["shift_nm"] = _Param("shift_nm", 0.0, -1.5, 1.5)
+        p["stretch"] = _Param("stretch", 0.0, -0.01, 0.01)
+        self.mid_nm = 0.5 * (wl[0] + wl[-1])
+        p["width_scale"] = _Param("width_scale", 1.0, 0.6, 1.6)
+        for s in self.species:
+            p[f"log_n {s}"] = _Param(f"log_n {s}", 18.0, 18.0 - _LOG_N_SPAN, 18.0 + _LOG_N_SPAN)
+        for name in self.air_names + self.n2_names:
+            p[name] = _Param(name, 0.0, 0.0, np.inf)
+        for k, name in enumerate(self.cont_names):
+            p[name] = _Param(name, 0.0, 0.0 if k == 0 else -np.inf, np.inf)
+        # each composition group may depart from its species' LTE level by 10^dex (prior)
+        self.group_of_line = np.where(self.metal_hot, "", self.metal.group)
+        self.group_prior: dict[str, tuple[float, float]] = {}
+        for g in GROUPS:
+            if np.any(self.group_of_line == g):
+                name = f"group_dex {g}"
+                p[name] = _Param(name, 0.0, -3.0, 3.0, free=group_freedom_dex is not None)
+                if group_freedom_dex is not None:
+                    self.group_prior[name] = (0.0, float(group_freedom_dex))
+        self.params = p
+        self.has_hot = bool(np.any(self.metal_hot))
+        if not self.has_hot:
+            p["log_t_hot"].free = False
+            p["log_scale_hot"].free = False
+        self._line_cache: dict = {}
+        self._reference: dict | None = None
+        self._profile_cache: dict = {}
+
+    # -- parameter vector ---------------------------------------------------------------
+    @property
+    def free_names(self) -> list[str]:
+        return [n for n, q in self.params.items() if q.free]
+
+    def vector(self) -> NDArray:
+        return np.array([self.params[n].value for n in self.free_names])
+
+    def bounds(self) -> tuple[NDArray, NDArray]:
+        names = self.free_names
+        return (np.array([self.params[n].lo for n in names]),
+                np.array([self.params[n].hi for n in names]))
+
+    def set_vector(self, x: NDArray) -> None:
+        for n, v in zip(self.free_names, x):
+            self.params[n].value = float(v)
+
+    def value(self, name: str) -> float:
+        return self.params[name].value
+
+    # -- pieces -------------------------------------------------------------------------
+    def _unit_lines(self, t_main: float, t_hot: float) -> tuple[NDArray, NDArray]:
+        """Optically thin intensity and centre optical depth of each metal line at N = 1 m^-2.
+
+        Evaluated with :mod:`meteorspec.atomic` once at a reference temperature per component,
+        then moved to ``T`` with the exact temperature factors of the same formulas
+        (Boltzmann factor, partition function, stimulated emission, Doppler width), so that
+        the optimiser's many temperature steps cost no level sums.
+        """
+        key = (t_main, t_hot)
+        hit = self._line_cache.get(key)
+        if hit is not None:
+            return hit
+        if self._reference is None:
+            self._reference = _reference_lines(self.metal, self.metal_hot)
+        ref = self._reference
+        t = np.where(self.metal_hot, t_hot, t_main)
+        inv = 1.0 / (_K_EV_K * t) - 1.0 / (_K_EV_K * ref["t"])
+        u_ratio = ref["u"] / _partition(self.metal, self.metal_hot, t_main, t_hot)
+        thin = ref["thin"] * np.exp(-self.metal.e_upper_ev * inv) * u_ratio
+        tau = np.zeros(len(self.metal))
+        if self.self_absorption:
+            x = ref["hc_over_lambda_k"]
+            tau = (ref["tau"] * np.exp(-self.metal.e_lower_ev * inv) * u_ratio
+                   * (-np.expm1(-x / t)) / (-np.expm1(-x / ref["t"])) * np.sqrt(ref["t"] / t))
+        if len(self._line_cache) > 64:
+            self._line_cache.clear()
+        self._line_cache[key] = (thin, tau)
+        return thin, tau
+
+    def line_state(self) -> tuple[NDArray, NDArray, NDArray]:
+        """(emergent energy in data units x nm, d energy / d ln N, tau0) of each metal line."""
+        thin1, tau1 = self._unit_lines(10.0 ** self.value("log_t"), 10.0 ** self.value("log_t_hot"))
+        log_n = np.array([self.value(f"log_n {s}") for s in self.species])
+        n_line = 10.0 ** log_n[self.species_of_line] if len(self.metal) else np.zeros(0)
+        for g in GROUPS:
+            name = f"group_dex {g}"
+            if name in self.params and self.params[name].value != 0.0:
+                n_line = np.where(self.group_of_line == g, n_line * 10.0 ** self.value(name),
+                                  n_line)
+        scale = np.where(self.metal_hot, 10.0 ** self.value("log_scale_hot"),
+                         10.0 ** self.value("log_scale"))
+        thin = scale * thin1 * n_line
+        tau = tau1 * n_line
+        if self.self_absorption:
+            energy = thin * growth_ratio(tau)
+            d_ln_n = thin * growth_ratio(tau, derivative=True)
+        else:
+            energy, d_ln_n = thin, thin
+        return energy, d_ln_n, tau
+
+    def air_energy(self) -> NDArray:
+        amp = np.array([self.value(n) for n in self.air_names])
+        return self.air_share @ amp if len(self.air_names) else np.zeros(len(self.air))
+
+    def profiles(self) -> tuple:
+        shift, width = self.value("shift_nm"), self.value("width_scale")
+        stretch = self.value("stretch")
+        key = (shift, width, stretch)
+        hit = self._profile_cache.get(key)
+        if hit is not None:
+            return hit
+
+        def matrix(centre):
+            moved = centre + shift + stretch * (centre - self.mid_nm)
+            return _profile_matrix(moved, self.fwhm_fn(centre) * width, self.lo, self.hi)
+
+        p_metal = matrix(self.metal.wavelength_nm)
+        p_air = matrix(self.air.wavelength_nm)
+        n2_cols = matrix(self.n2_wl) @ self.n2_weight if self.n2_wl.size else \
+            np.zeros((self.wl.size, 0))
+        air_cols = np.asarray(p_air @ self.air_share) if len(self.air_names) else \
+            np.zeros((self.wl.size, 0))
+        basis = np.hstack([air_cols, np.asarray(n2_cols), self.continuum_basis])
+        out = (p_metal, p_air, basis)
+        if len(self._profile_cache) >= 4:  # current point and its finite-difference steps
+            self._profile_cache.pop(next(iter(self._profile_cache)))
+        self._profile_cache[key] = out
+        return out
+
+    def linear_basis(self) -> tuple[list[str], NDArray]:
+        """Columns of the linear nuisance parameters (air amplitudes, N2, continuum)."""
+        return self.air_names + self.n2_names + self.cont_names, self.profiles()[2]
+
+    def flux(self) -> NDArray:
+        p_metal, _, _ = self.profiles()
+        energy, _, _ = self.line_state()
+        names, basis = self.linear_basis()
+        coef = np.array([self.value(n) for n in names])
+        return p_metal @ energy + basis @ coef
+
+
+# --------------------------------------------------------------------------------------------
+# Public pure function
+# --------------------------------------------------------------------------------------------
+
+def synthetic_spectrum(wavelength_nm: ArrayLike, bin_width_nm: ArrayLike, *,
+                       lines: LineList, temperature_k: float,
+                       column_density_m2: dict[str, float], fwhm_nm: float | ArrayLike | Callable,
+                       hot_temperature_k: float = _HOT_REFERENCE_K,
+                       hot_species: Sequence[str] = HOT_SPECIES,
+                       area_scale: float = 1.0, hot_area_scale: float | None = None,
+                       self_absorption: bool = True,
+                       nuisance: dict[str, float] | None = None, shift_nm: float = 0.0,
+                       continuum_degree: int = 3) -> NDArray[np.float64]:
+    """Bin-integrated synthetic meteor spectrum (flux density, data units per nm).
+
+    Parameters
+    ----------
+    wavelength_nm, bin_width_nm : array_like
+        Bin centres (increasing, air) and widths.
+    lines : LineList
+        Lines to include. Species of :data:`AIR_SPECIES` are treated as atmospheric
+        nuisance; species in ``hot_species`` belong to the hot component; all others to the
+        main component.
+    temperature_k, hot_temperature_k : float
+        Excitation temperatures of the two components.
+    column_density_m2 : dict
+        Column density of every metal species in ``lines``, m^-2.
+    fwhm_nm : float, array or callable
+        Instrument FWHM: one value, one per bin, or a function of wavelength.
+    area_scale : float
+        ``A`` of the module notes (data units per W m^-2 sr^-1).
+    hot_area_scale : float, optional
+        ``A`` of the hot component; default ``area_scale``.
+    self_absorption : bool
+        Use ``B (1 - exp(-tau))`` (True) or the optically thin limit.
+    nuisance : dict, optional
+        Amplitudes of the linear terms by name: ``"O I: <multiplet>"``, ``"O I: other"``
+        (energy of that set of lines, data units x nm), ``"n2_dv3_blue"`` ... (energy per
+        band), ``"continuum_0"`` ... (Legendre coefficients over the grid, data units per
+        nm). Missing names are 0.
+    shift_nm : float
+        Added to every line position.
+    continuum_degree : int
+
+    Returns
+    -------
+    ndarray of shape (n_bins,)
+    """
+    wl = np.atleast_1d(np.asarray(wavelength_nm, dtype=float))
+    bw = np.broadcast_to(np.asarray(bin_width_nm, dtype=float), wl.shape).astype(float)
+    component = np.where(np.isin(lines.species, AIR_SPECIES), "air",
+                         np.where(np.isin(lines.species, list(hot_species)), "hot", "main"))
+    model = _Model(wl, bw, _fwhm_function(fwhm_nm, wl), lines, component,
+                   self_absorption=self_absorption, continuum_degree=continuum_degree)
+    model.params["log_t"].value = math.log10(temperature_k)
+    model.params["log_t_hot"].value = math.log10(hot_temperature_k)
+    model.params["log_scale"].value = math.log10(area_scale)
+    model.params["log_scale_hot"].value = math.log10(area_scale if hot_area_scale is None
+                                                     else hot_area_scale)
+    model.params["shift_nm"].value = float(shift_nm)
+    for s in model.species:
+        if s not in column_density_m2:
+            raise ValueError(f"column_density_m2 has no entry for {s!r}")
+        n = float(column_density_m2[s])
+        model.params[f"log_n {s}"].value = math.log10(n) if n > 0 else -np.inf
+    for name, value in (nuisance or {}).items():
+        if name not in model.params:
+            raise ValueError(f"unknown nuisance term {name!r}; known: "
+                             f"{', '.join(model.air_names + model.n2_names + model.cont_names)}")
+        model.params[name].value = float(value)
+    return model.flux()
+
+
+# --------------------------------------------------------------------------------------------
+# Fit result
+# --------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True, eq=False)
+class PlasmaFit:
+    """Result of a plasma-model fit; falsy when the fit failed (``reason`` says why).
+
+    Attributes
+    ----------
+    success : bool
+    reason : str
+        Empty on success; otherwise one line for a flag or log.
+    temperature_k, temperature_err_k : float
+        Main-component excitation temperature and 1-sigma.
+    hot_temperature_k, hot_temperature_err_k : float
+        Hot component (NaN when it has no lines in range).
+    column_density_m2, column_density_err_m2 : dict
+        Species -> column density (m^-2) and 1-sigma. Absolute values need self-absorption
+        (see module notes); without it, or when no line saturates enough to separate column
+        and area, they are NaN / infinite.
+    line_intensity, line_intensity_err : ndarray of shape (n_lines,)
+        Model energy of each fitted line (data flux units x nm), after self-absorption.
+    line_index : ndarray of int
+        Index of each fitted line in the line list used (``line_list`` argument or the
+        project line list), increasing wavelength.
+    group_intensity, group_intensity_err : dict
+        ``"na"``, ``"mg"``, ``"fe"`` -> summed model energy of exactly the contract-section-6
+        group lines (blends with other lines are modelled and not counted).
+    group_covariance : ndarray of shape (3, 3)
+        Covariance of the group intensities, order ``GROUPS``.
+    model_flux : ndarray of shape (n_bins,)
+        Best-fit synthetic spectrum on the data grid.
+    chi2_reduced : float
+    line_optical_depth : ndarray of shape (n_lines,)
+        Centre optical depth of each line (0 for atmospheric lines).
+    area_scale, hot_area_scale : float
+        ``A`` of the module notes for the main and the hot component.
+    shift_nm, width_scale : float
+        Fitted wavelength shift and instrument-width factor (the fitted wavelength scale
+        error is ``parameters["stretch"]``).
+    parameters : dict
+        Every model parameter by name at the solution (for per-frame fits and review).
+    config : dict
+        The model settings (species, continuum degree, self-absorption, line components).
+    group_coverage : dict
+        ``"na"``, ``"mg"``, ``"fe"`` -> share of the group's model light that falls on
+        usable (unmasked, finite) bins. Below ~0.5 the group intensity rests mostly on the
+        LTE model of other lines (e.g. saturated or masked group lines): worth a flag.
+    """
+
+    success: bool
+    reason: str
+    temperature_k: float
+    temperature_err_k: float
+    hot_temperature_k: float
+    hot_temperature_err_k: float
+    column_density_m2: dict[str, float]
+    column_density_err_m2: dict[str, float]
+    line_intensity: NDArray[np.float64]
+    line_intensity_err: NDArray[np.float64]
+    line_index: NDArray[np.int64]
+    group_intensity: dict[str, float]
+    group_intensity_err: dict[str, float]
+    group_covariance: NDArray[np.float64]
+    model_flux: NDArray[np.float64]
+    chi2_reduced: float
+    line_optical_depth: NDArray[np.float64] = field(default_factory=lambda: np.zeros(0))
+    area_scale: float = float("nan")
+    hot_area_scale: float = float("nan")
+    shift_nm: float = float("nan")
+    width_scale: float = float("nan")
+    parameters: dict[str, float] = field(default_factory=dict)
+    config: dict = field(default_factory=dict)
+    group_coverage: dict[str, float] = field(default_factory=dict)
+
+    def __bool__(self) -> bool:
+        return bool(self.success)
+
+    @classmethod
+    def failed(cls, reason: str, n_bins: int = 0) -> PlasmaFit:
+        """A falsy result carrying ``reason``; every number NaN, every array empty."""
+        nan = float("nan")
+        return cls(success=False, reason=reason, temperature_k=nan, temperature_err_k=nan,
+                   hot_temperature_k=nan, hot_temperature_err_k=nan, column_density_m2={},
+                   column_density_err_m2={}, line_intensity=np.zeros(0),
+                   line_intensity_err=np.zeros(0), line_index=np.zeros(0, dtype=np.int64),
+                   group_intensity={g: nan for g in GROUPS},
+                   group_intensity_err={g: nan for g in GROUPS},
+                   group_covariance=np.full((3, 3), nan), model_flux=np.full(n_bins, nan),
+                   chi2_reduced=nan)
+
+
+# --------------------------------------------------------------------------------------------
+# Fitting
+# --------------------------------------------------------------------------------------------
+
+_FD_STEP = {"log_t": 2e-5, "log_t_hot": 2e-5, "shift_nm": 2e-3, "width_scale": 2e-4,
+            "stretch": 4e-6}
+
+
+class _Problem:
+    """Residuals and Jacobian of one model against one spectrum (internal)."""
+
+    def __init__(self, model: _Model, flux: NDArray, err: NDArray, good: NDArray,
+                 prior: dict[str, tuple[float, float]] | None = None):
+        self.model, self.good = model, good
+        self.data = flux[good]
+        self.weight = 1.0 / err[good]
+        self.prior = prior or {}
+
+    def _prior_residuals(self) -> list[float]:
+        return [(self.model.value(n) - mu) / sd for n, (mu, sd) in self.prior.items()
+                if self.model.params[n].free]
+
+    def residuals(self, x: NDArray) -> NDArray:
+        self.model.set_vector(x)
+        r = (self.model.flux()[self.good] - self.data) * self.weight
+        return np.concatenate([r, self._prior_residuals()]) if self.prior else r
+
+    def jacobian(self, x: NDArray) -> NDArray:
+        m = self.model
+        m.set_vector(x)
+        names = m.free_names
+        p_metal, _, _ = m.profiles()
+        energy, d_ln_n, _ = m.line_state()
+        lin_names, basis = m.linear_basis()
+        base = None
+        cols = np.empty((self.good.sum(), len(names)))
+        for j, name in enumerate(names):
+            if name in _FD_STEP:
+                if base is None:
+                    base = m.flux()[self.good]
+                h = _FD_STEP[name]
+                old = m.params[name].value
+                step = h if old + h <= m.params[name].hi else -h
+                m.params[name].value = old + step
+                col = (m.flux()[self.good] - base) / step
+                m.params[name].value = old
+            elif name in ("log_scale", "log_scale_hot"):
+                part = np.where(m.metal_hot == (name == "log_scale_hot"), energy, 0.0)
+                col = (p_metal @ part)[self.good] * _LN10
+            elif name.startswith("group_dex "):
+                part = np.where(m.group_of_line == name[10:], d_ln_n, 0.0)
+                col = (p_metal @ part)[self.good] * _LN10
+            elif name.startswith("log_n "):
+                s = m.species.index(name[6:])
+                col = (p_metal @ np.where(m.species_of_line == s, d_ln_n, 0.0))[self.good] * _LN10
+            else:
+                col = basis[self.good, lin_names.index(name)]
+            cols[:, j] = col
+        m.profiles()  # restore the cache for the current shift and width
+        jac = cols * self.weight[:, None]
+        if self.prior:
+            rows = [[(1.0 / sd if n == name else 0.0) for n in names]
+                    for name, (mu, sd) in self.prior.items() if m.params[name].free]
+            jac = np.vstack([jac, np.array(rows).reshape(-1, len(names))])
+        return jac
+
+
+def _covariance(jac: NDArray) -> NDArray:
+    """(J^T J)^-1 with unconstrained directions given a huge (not infinite) variance."""
+    jtj = jac.T @ jac
+    d = np.diag(jtj)
+    scale = np.sqrt(np.where(d > 0, d, 1.0))  # a parameter without effect: unit scale
+    a = jtj / np.outer(scale, scale)
+    w, v = np.linalg.eigh(a)
+    floor = max(float(w.max()), 1e-300) * 1e-13
+    inv = (v / np.maximum(w, floor)) @ v.T
+    return inv / np.outer(scale, scale)
+
+
+def _quantities(model: _Model) -> NDArray:
+    """Metal line energies, air line energies and the three group energies."""
+    energy, _, _ = model.line_state()
+    air = model.air_energy()
+    groups = [energy[model.metal.group == g].sum() for g in GROUPS]
+    return np.concatenate([energy, air, groups])
+
+
+def _quantity_jacobian(model: _Model) -> NDArray:
+    names = model.free_names
+    x0 = model.vector()
+    q0 = _quantities(model)
+    out = np.zeros((q0.size, len(names)))
+    for j, name in enumerate(names):
+        if name in ("shift_nm", "width_scale", "stretch") or name in model.cont_names \
+                or name in model.n2_names:
+            continue
+        h = 1e-6 * max(1.0, abs(x0[j]))
+        x = x0.copy()
+        x[j] += h
+        model.set_vector(x)
+        out[:, j] = (_quantities(model) - q0) / h
+    model.set_vector(x0)
+    return out
+
+
+def _design(model: _Model, good: NDArray) -> tuple[NDArray, NDArray, NDArray, list[str]]:
+    """Linear design matrix at the model's temperatures, optically thin, unit area scale."""
+    thin1, _ = model._unit_lines(10.0 ** model.value("log_t"), 10.0 ** model.value("log_t_hot"))
+    p_metal, _, _ = model.profiles()
+    n_sp = len(model.species)
+    unit = np.zeros((len(model.metal), n_sp))
+    unit[np.arange(len(model.metal)), model.species_of_line] = thin1
+    species_cols = np.asarray(p_metal @ unit)
+    lin_names, basis = model.linear_basis()
+    a = np.hstack([species_cols, basis])[good]
+    lo = np.array([0.0] * n_sp + [model.params[n].lo for n in lin_names])
+    hi = np.full(lo.size, np.inf)
+    return a, lo, hi, lin_names
+
+
+def _linear_start(model: _Model, flux: NDArray, err: NDArray, good: NDArray,
+                  temperatures_k: Sequence[float]) -> tuple[float, NDArray, list[str], float]:
+    """Best main temperature on a grid and its non-negative thin linear solution."""
+    w = 1.0 / err[good]
+    best = None
+    for t in temperatures_k:
+        model.params["log_t"].value = math.log10(t)
+        a, lo, hi, lin_names = _design(model, good)
+        colnorm = np.sqrt(np.sum((a * w[:, None]) ** 2, axis=0))
+        colnorm[colnorm == 0] = 1.0
+        res = lsq_linear(a * w[:, None] / colnorm, flux[good] * w, bounds=(lo * colnorm, hi),
+                         method="bvls")
+        chi2 = float(np.sum(res.fun**2))
+        if best is None or chi2 < best[3]:
+            best = (t, res.x / colnorm, lin_names, chi2)
+    return best
+
+
+def _initialise(model: _Model, flux: NDArray, err: NDArray, good: NDArray, *,
+                tau_start: float, temperatures_k: Sequence[float]) -> None:
+    """Set starting values: grid temperature, linear amplitudes, columns, area scale."""
+    t, coef, lin_names, _ = _linear_start(model, flux, err, good, temperatures_k)
+    model.params["log_t"].value = math.log10(t)
+    n_sp = len(model.species)
+    product = coef[:n_sp]  # A * N per species (thin, A = 1)
+    for name, value in zip(lin_names, coef[n_sp:]):
+        model.params[name].value = float(value)
+    top = float(product.max()) if n_sp and product.max() > 0 else 1.0
+    product = np.maximum(product, top * 1e-6)  # keep every species inside the bounds
+    hot_species = np.zeros(n_sp, bool)
+    hot_species[np.unique(model.species_of_line[model.metal_hot])] = True
+    log_scale = {False: 0.0, True: 0.0}
+    if model.self_absorption and n_sp:
+        _, tau1 = model._unit_lines(t, 10.0 ** model.value("log_t_hot"))
+        tau_at_unit_area = tau1 * product[model.species_of_line]
+        # each component's area chosen so that its most opaque line starts at tau_start
+        for hot in (False, True):
+            m = model.metal_hot == hot
+            if np.any(m):
+                log_scale[hot] = math.log10(max(float(tau_at_unit_area[m].max()), 1e-300)
+                                            / tau_start)
+    model.params["log_scale"].value = log_scale[False]
+    model.params["log_scale_hot"].value = log_scale[True]
+    for s, pr, hot in zip(model.species, product, hot_species):
+        q = model.params[f"log_n {s}"]
+        q.value = math.log10(pr) - log_scale[bool(hot)]
+        q.lo, q.hi = q.value - _LOG_N_SPAN, q.value + _LOG_N_SPAN
+
+
+def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
+            n_bins: int, config: dict, column_known: bool) -> PlasmaFit:
+    """Covariance, derived quantities and the PlasmaFit of a solved problem."""
+    model.set_vector(result.x)
+    names = model.free_names
+    n_data = int(problem.good.sum())
+    dof = max(n_data - len(names), 1)
+    chi2_red = float(np.sum(problem.residuals(result.x)[:n_data] ** 2) / dof)
+    jac = problem.jacobian(result.x)
+    cov = _covariance(jac) * max(1.0, chi2_red)
+    sd = dict(zip(names, np.sqrt(np.clip(np.diag(cov), 0, None))))
+
+    qj = _quantity_jacobian(model)
+    qcov = qj @ cov @ qj.T
+    q = _quantities(model)
+    q_err = np.sqrt(np.clip(np.diag(qcov), 0, None))
+    n_metal, n_air = len(model.metal), len(model.air)
+    g_cov = qcov[-3:, -3:]
+
+    energy, _, tau = model.line_state()
+    p_metal = model.profiles()[0]
+    coverage = {}
+    for g in GROUPS:
+        e_g = np.where(model.metal.group == g, energy, 0.0)
+        total = float(e_g.sum())
+        seen = float(np.sum((p_metal @ e_g)[problem.good] * model.bw[problem.good]))
+        coverage[g] = seen / total if total > 0 else float("nan")
+    # lines in increasing wavelength: metal then air, sorted
+    order = np.argsort(np.concatenate([model.metal.wavelength_nm, model.air.wavelength_nm]),
+                       kind="stable")
+    intensity = q[: n_metal + n_air][order]
+    intensity_err = q_err[: n_metal + n_air][order]
+    depth = np.concatenate([tau, np.zeros(n_air)])[order]
+
+    t = 10.0 ** model.value("log_t")
+    t_hot = 10.0 ** model.value("log_t_hot") if model.has_hot else float("nan")
+    columns, columns_err = {}, {}
+    for s in model.species:
+        name = f"log_n {s}"
+        if column_known:
+            n = 10.0 ** (model.value(name))
+            columns[s] = n
+            columns_err[s] = n * _LN10 * sd.get(name, 0.0)
+        else:
+            columns[s], columns_err[s] = float("nan"), float("nan")
+    return PlasmaFit(
+        success=True, reason="",
+        temperature_k=t, temperature_err_k=t * _LN10 * sd.get("log_t", 0.0),
+        hot_temperature_k=t_hot,
+        hot_temperature_err_k=(t_hot * _LN10 * sd.get("log_t_hot", 0.0)
+                               if model.has_hot else float("nan")),
+        column_density_m2=columns, column_density_err_m2=columns_err,
+        line_intensity=intensity, line_intensity_err=intensity_err,
+        line_index=line_index[order].astype(np.int64),
+        group_intensity={g: float(q[n_metal + n_air + k]) for k, g in enumerate(GROUPS)},
+        group_intensity_err={g: float(np.sqrt(max(g_cov[k, k], 0.0)))
+                             for k, g in enumerate(GROUPS)},
+        group_covariance=g_cov, model_flux=model.flux(), chi2_reduced=chi2_red,
+        line_optical_depth=depth, area_scale=10.0 ** model.value("log_scale"),
+        hot_area_scale=10.0 ** model.value("log_scale_hot"),
+        shift_nm=model.value("shift_nm"), width_scale=model.value("width_scale"),
+        parameters={n: p.value for n, p in model.params.items()}, config=config,
+        group_coverage=coverage,
+    )
+
+
+def _solve(problem: _Problem, *, max_nfev: int):
+    m = problem.model
+    lo, hi = m.bounds()
+    x0 = np.clip(m.vector(), lo, hi)
+    with np.errstate(over="ignore", under="ignore"):
+        return least_squares(problem.residuals, x0, jac=problem.jacobian, bounds=(lo, hi),
+                             x_scale="jac", method="trf", max_nfev=max_nfev,
+                             xtol=1e-8, ftol=1e-8, gtol=1e-8)
+
+
+def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
+               line_list: LineList | None = None, speed_km_s: float | None = None,
+               self_absorption: bool = True,
+               main_species: Sequence[str] = MAIN_SPECIES,
+               hot_species: Sequence[str] = HOT_SPECIES,
+               air_species: Sequence[str] = AIR_SPECIES,
+               continuum_degree: int = 3, min_relative: float = 1e-3,
+               fit_shift: bool = True, fit_width: bool = True,
+               group_freedom_dex: float | None = 0.3,
+               max_nfev: int = 300) -> PlasmaFit:
+    """Fit the two-temperature LTE model to a (whole-flight) spectrum.
+
+    Parameters
+    ----------
+    spectrum : Spectrum
+        ``wavelength_nm``, ``bin_width_nm``, ``flux`` (density per nm), ``flux_err``,
+        ``mask`` (True = bad). Masked or non-finite bins are ignored.
+    fwhm_nm : float, array or callable
+        Instrument FWHM (see :func:`meteorspec.lines.instrument_fwhm_nm`): a scalar, one
+        value per bin, or a function of wavelength.
+    line_list : LineList, optional
+        Default: the project line list (:func:`meteorspec.atomic.load_line_list`).
+    speed_km_s : float, optional
+        Meteor speed. Below 20 km/s the hot component starts at 9000 K, above at 10 000 K
+        (the hot component is weak in slow meteors, Borovicka 1994); only the start changes.
+    self_absorption : bool
+        Fit the area scale and use ``B (1 - exp(-tau))`` (bright fireballs); False uses the
+        optically thin limit (column densities then undetermined, reported NaN).
+    main_species, hot_species, air_species : sequence of str
+        Species of the three components.
+    continuum_degree : int
+        Degree of the Legendre continuum.
+    min_relative : float
+        Line selection threshold (:func:`select_model_lines`).
+    fit_shift, fit_width : bool
+        Fit a residual wavelength error (shift within +-1.5 nm and scale within +-1 %) and
+        an instrument-width factor (0.6-1.6).
+    group_freedom_dex : float or None
+        Let the lines of each composition group depart from the LTE level of their species
+        by a factor ``10^d`` (applied to the column seen by those lines), with a Gaussian
+        prior of this width (dex) on ``d``; None ties the groups to their species. The
+        group intensities then rest on the group's own lines where the data resolve them,
+        and on the LTE model of the other multiplets where they do not. Real meteor
+        spectra depart from a one-temperature LTE model by tens of per cent between
+        multiplets (Borovicka 1993), which is what the default 0.3 dex allows.
+    max_nfev : int
+        Limit of model evaluations of the optimiser.
+
+    Returns
+    -------
+    PlasmaFit
+        Falsy with a reason when there are too few good bins, no lines in range or the
+        optimiser fails.
+
+    Raises
+    ------
+    ValueError
+        If the spectrum arrays are inconsistent or ``fwhm_nm`` is invalid.
+
+    Notes
+    -----
+    Start: the main temperature is chosen on a 3500-6500 K grid by a non-negative linear
+    least-squares fit (optically thin, hot component at 10 000 K); that solution gives the
+    starting columns and nuisance amplitudes. With self-absorption six starts are tried
+    (that temperature with the most opaque line at tau = 0.1 and 30; 4000 K / tau 30,
+    4500 K / tau 300 and 3, 5000 K / tau 30), each for 25 evaluations, and the lowest
+    chi^2 is polished: a saturated spectrum resembles a hotter thin one, and a single
+    start can stop in that local minimum. The optimiser is
+    ``scipy.optimize.least_squares`` (trust-region reflective, bounds, ``x_scale='jac'``)
+    with an analytic Jacobian for columns, areas, group factors and linear terms and
+    finite differences for temperatures, shift, stretch and width; the group factors'
+    Gaussian priors enter as extra residuals. Uncertainties are from ``(J^T J)^-1`` at the solution,
+    multiplied by the reduced chi^2 when it exceeds 1; group-intensity errors propagate
+    that covariance through the model (``J_g C J_g^T``).
+    """
+    wl, bw, flux, err, good = _spectrum_arrays(spectrum)
+    fwhm_fn = _fwhm_function(fwhm_nm, wl)
+    line_list = _default_lines() if line_list is None else line_list
+    if good.sum() < 20:
+        return PlasmaFit.failed(f"only {int(good.sum())} usable spectrum bins (need >= 20)",
+                                wl.size)
+    lo_nm = float(wl[good][0] - 3.0 * fwhm_fn(np.array([wl[good][0]]))[0])
+    hi_nm = float(wl[good][-1] + 3.0 * fwhm_fn(np.array([wl[good][-1]]))[0])
+    index, component = select_model_lines(line_list, lo_nm, hi_nm, main_species=main_species,
+                                          hot_species=hot_species, air_species=air_species,
+                                          min_relative=min_relative)
+    if not np.any(component == "main"):
+        return PlasmaFit.failed(f"no main-component lines between {lo_nm:.0f} and {hi_nm:.0f} nm",
+                                wl.size)
+    config = dict(main_species=tuple(main_species), hot_species=tuple(hot_species),
+                  air_species=tuple(air_species), continuum_degree=int(continuum_degree),
+                  self_absorption=bool(self_absorption), min_relative=float(min_relative),
+                  line_index=index, component=component)
+    lines = line_list.select(index)
+    metal = component != "air"
+    line_index = np.concatenate([index[metal], index[~metal]])
+
+    def build() -> _Model:
+        model = _Model(wl, bw, fwhm_fn, lines, component, self_absorption=self_absorption,
+                       continuum_degree=continuum_degree, group_freedom_dex=group_freedom_dex)
+        model.params["shift_nm"].free = bool(fit_shift)
+        model.params["stretch"].free = bool(fit_shift)
+        model.params["width_scale"].free = bool(fit_width)
+        if speed_km_s is not None and speed_km_s < 20.0:
+            model.params["log_t_hot"].value = math.log10(9000.0)
+        return model
+
+    # Starts: the thin linear solution's temperature, and for self-absorption a few
+    # (temperature, opacity) pairs, since a saturated spectrum mimics a hotter thin one.
+    grid = np.arange(3500.0, 6501.0, 250.0)
+    if self_absorption:
+        starts = [(None, 0.1), (None, 30.0), (4000.0, 30.0), (4500.0, 300.0), (4500.0, 3.0),
+                  (5000.0, 30.0)]
+    else:
+        starts = [(None, 1.0)]
+    trials = []
+    reason = "optimiser failed"
+    for t_start, tau_start in starts:
+        model = build()
+        _initialise(model, flux, err, good, tau_start=tau_start,
+                    temperatures_k=grid if t_start is None else [t_start])
+        problem = _Problem(model, flux, err, good, prior=model.group_prior)
+        try:
+            result = _solve(problem, max_nfev=25 if len(starts) > 1 else max_nfev)
+        except (ValueError, np.linalg.LinAlgError) as exc:  # pragma: no cover - defensive
+            reason = f"optimiser failed: {exc}"
+            continue
+        if np.all(np.isfinite(result.x)):
+            trials.append((result.cost, model, problem, result))
+    if not trials:
+        return PlasmaFit.failed(reason, wl.size)
+    trials.sort(key=lambda tr: tr[0])
+    _, model, problem, result = trials[0]
+    if len(starts) > 1:  # polish the best start
+        model.set_vector(result.x)  # the model holds the optimiser's last trial point
+        result = _solve(problem, max_nfev=max_nfev)
+        if not np.all(np.isfinite(result.x)):
+            return PlasmaFit.failed(f"optimiser failed: {result.message}", wl.size)
+    return _finish(model, problem, result, line_index=line_index, n_bins=wl.size, config=config,
+                   column_known=bool(self_absorption))
+
+
+def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
+                         fwhm_nm: float | ArrayLike | Callable,
+                         line_list: LineList | None = None, vary_temperature: bool = False,
+                         temperature_prior_k: float = 300.0, min_bins: int = 20,
+                         max_nfev: int = 100) -> list[PlasmaFit]:
+    """Fit every frame with the whole-flight model, for time-resolved group intensities.
+
+    Parameters
+    ----------
+    frame_spectra : FrameSpectra
+        ``wavelength_nm``, ``bin_width_nm`` (common grid), ``flux`` and ``variance`` of shape
+        (n_frames, n_wl), ``mask`` (True = bad).
+    whole_flight_fit : PlasmaFit
+        A successful :func:`fit_plasma` result on the same grid (its model settings are
+        reused).
+    fwhm_nm : float, array or callable
+        Instrument FWHM, as for :func:`fit_plasma`.
+    line_list : LineList, optional
+        The list the whole-flight fit used (default: project line list).
+    vary_temperature : bool
+        False: main and hot temperatures fixed at the whole-flight values. True: the main
+        temperature is fitted with a Gaussian prior of width ``temperature_prior_k`` around
+        the whole-flight value.
+    min_bins : int
+        Frames with fewer usable bins fail (falsy result with the reason).
+    max_nfev : int
+
+    Returns
+    -------
+    list of PlasmaFit
+        One per frame, in frame order.
+
+    Notes
+    -----
+    The wavelength shift, scale and width factor are fixed at the whole-flight values. The area
+    scale of a frame is the whole-flight one times the frame's share of the light (its
+    flux summed over bins usable in both), so a frame keeps the flight-average optical
+    depths unless its columns say otherwise. Column densities and linear nuisance terms are
+    fitted per frame.
+    """
+    if not whole_flight_fit:
+        raise ValueError(f"whole-flight fit failed ({whole_flight_fit.reason}); "
+                         "cannot fit frames with it")
+    wl = np.asarray(frame_spectra.wavelength_nm, dtype=float)
+    bw = np.broadcast_to(np.asarray(frame_spectra.bin_width_nm, dtype=float), wl.shape)
+    flux_all = np.atleast_2d(np.asarray(frame_spectra.flux, dtype=float))
+    var_all = np.atleast_2d(np.asarray(frame_spectra.variance, dtype=float))
+    mask_all = np.atleast_2d(np.asarray(frame_spectra.mask, dtype=bool))
+    if not (flux_all.shape == var_all.shape == mask_all.shape and flux_all.shape[1] == wl.size):
+        raise ValueError(f"frame spectra shapes differ: flux {flux_all.shape}, variance "
+                         f"{var_all.shape}, mask {mask_all.shape}, grid {wl.shape}")
+    if whole_flight_fit.model_flux.shape != wl.shape:
+        raise ValueError("whole-flight fit was made on another wavelength grid")
+    cfg = whole_flight_fit.config
+    line_list = _default_lines() if line_list is None else line_list
+    lines = line_list.select(cfg["line_index"])
+    fwhm_fn = _fwhm_function(fwhm_nm, wl)
+    wf_model = whole_flight_fit.model_flux
+    model = _Model(wl, bw.astype(float), fwhm_fn, lines, cfg["component"],
+                   self_absorption=cfg["self_absorption"],
+                   continuum_degree=cfg["continuum_degree"])
+    wf_params = whole_flight_fit.parameters
+    metal = cfg["component"] != "air"
+    line_index = np.concatenate([cfg["line_index"][metal], cfg["line_index"][~metal]])
+    out = []
+    for k in range(flux_all.shape[0]):
+        flux, var = flux_all[k], var_all[k]
+        with np.errstate(invalid="ignore"):
+            err = np.sqrt(var)
+        good = ~mask_all[k] & np.isfinite(flux) & np.isfinite(err) & (err > 0)
+        if good.sum() < min_bins:
+            out.append(PlasmaFit.failed(f"frame {k}: only {int(good.sum())} usable bins",
+                                        wl.size))
+            continue
+        share = float(np.sum(flux[good] * bw[good]) / np.sum(wf_model[good] * bw[good]))
+        if not (np.isfinite(share) and share > 0):
+            out.append(PlasmaFit.failed(f"frame {k}: no positive signal", wl.size))
+            continue
+        for name, p in model.params.items():
+            p.value = wf_params[name]
+            p.free = (name.startswith("log_n ") or name in model.air_names
+                      or name in model.n2_names or name in model.cont_names)
+            if name in model.air_names or name in model.n2_names or name in model.cont_names:
+                p.value = wf_params[name] * share
+        model.params["log_scale"].value = wf_params["log_scale"] + math.log10(share)
+        model.params["log_scale_hot"].value = wf_params["log_scale_hot"] + math.log10(share)
+        if not cfg["self_absorption"]:
+            for s in model.species:  # A fixed: the columns carry the frame's share
+                model.params[f"log_n {s}"].value += math.log10(share)
+        for s in model.species:
+            q = model.params[f"log_n {s}"]
+            q.lo, q.hi = q.value - _LOG_N_SPAN, q.value + _LOG_N_SPAN
+        prior = None
+        if vary_temperature:
+            model.params["log_t"].free = True
+            prior = {"log_t": (wf_params["log_t"],
+                               temperature_prior_k / (_LN10 * 10.0 ** wf_params["log_t"]))}
+        problem = _Problem(model, flux, err, good, prior=prior)
+        result = _solve(problem, max_nfev=max_nfev)
+        if result.status < 0 or not np.all(np.isfinite(result.x)):
+            out.append(PlasmaFit.failed(f"frame {k}: optimiser failed: {result.message}",
+                                        wl.size))
+            continue
+        fit = _finish(model, problem, result, line_index=line_index, n_bins=wl.size,
+                      config=cfg, column_known=bool(cfg["self_absorption"]))
+        if not vary_temperature:  # fixed, not measured here: carry the flight's values
+            fit = dataclasses.replace(fit, temperature_err_k=whole_flight_fit.temperature_err_k,
+                           hot_temperature_err_k=whole_flight_fit.hot_temperature_err_k)
+        out.append(fit)
+    return out

@@ -108,16 +108,23 @@ def find_events(paths: Sequence[str | Path]) -> list[tuple[Path, Path]]:
     """Expand command-line paths into ``(event.toml, run root)`` pairs, sorted, no repeats.
 
     A folder without ``event.toml`` is searched at any depth; it is then the run
-    root where the search for station files stops. A path that does not exist
-    is kept, so that it is reported as a failed event.
+    root where the search for station files stops. An event named directly has
+    the current folder as its run root when it lies below it (else the file-system
+    root), so station files in its parent folders are found. A path that does not
+    exist is kept, so that it is reported as a failed event.
     """
+    cwd = Path.cwd().resolve()
+
+    def direct_root(event_dir: Path) -> Path:
+        return cwd if event_dir.is_relative_to(cwd) else Path(event_dir.anchor)
+
     found: dict[Path, Path] = {}
     for raw in paths:
         path = Path(raw)
         if path.is_file():
-            found.setdefault(path.resolve(), path.resolve().parent)
+            found.setdefault(path.resolve(), direct_root(path.resolve().parent))
         elif (path / "event.toml").is_file():
-            found.setdefault((path / "event.toml").resolve(), path.resolve())
+            found.setdefault((path / "event.toml").resolve(), direct_root(path.resolve()))
         elif path.is_dir():
             for toml in sorted(path.rglob("event.toml")):
                 found.setdefault(toml.resolve(), path.resolve())

@@ -1208,7 +1208,8 @@ def light_curve_from_spectra(frame_spectra: Any, *, center_nm: float, half_width
         coef_lin = ((sxx[:, None] - sx[:, None] * x) * a_band
                     + (n[:, None] * x - sx[:, None]) * b_band) / det[:, None]
         coef_flat = np.broadcast_to(a_band / n[:, None], coef_lin.shape)
-    coef = np.where(slope_ok[:, None], coef_lin, coef_flat) * use
+        # frames with no usable window bin (n = 0) give NaN here and are dropped by `ok` below
+        coef = np.where(slope_ok[:, None], coef_lin, coef_flat) * use
     continuum = (coef * f).sum(axis=1)
     continuum_var = (coef**2 * v).sum(axis=1)
     ok = band_ok & (n > 0)

@@ -13,13 +13,20 @@ from pathlib import Path
 
 import numpy as np
 
-from .background import estimate_background
-from .config import Station, find_station_file, load_event, load_station
+from .background import bin_frames, estimate_background, refine_background
+from .calibrate import apply_response, calibrate_event, station_solution
+from .classify import (LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify, light_curve_from_spectra,
+                       time_resolved_from_fits)
+from .config import Event, Station, find_station_file, load_event, load_station
 from .errors import InputError
-from .extract import FrameSpectra, extract_spectra
+from .extinction import extinction_correction, pixel_altaz
+from .extract import FrameSpectra, Spectrum, extract_spectra
+from .lines import identify_lines, instrument_fwhm_nm
 from .optics import SpectralGeometry
+from .plasma import PlasmaFit, fit_plasma, fit_plasma_per_frame
 from .result import STAGES, EventResult, FrameTimes, InputRecord
-from .track import Track, find_track
+from .track import Track, find_track, remeasure_light_curve
+from .wavesol import WavelengthSolution
 from .version import software_version
 from .video import FrameStack, read_stack
 
@@ -113,27 +120,6 @@ def spectrum_part(spectra: FrameSpectra, *, flux_unit: str) -> dict[str, object]
     }
 
 
-def _calibration_from_station(station: Station) -> dict[str, object]:
-    """``/calibration`` when no refinement has run: the station values, flagged as such."""
-    g, ln = station.grating, station.lens
-    attrs: dict[str, object] = {
-        "source": "station",
-        "grooves_per_mm": g.grooves_per_mm,
-        "dispersion_angle_deg": g.dispersion_angle_deg,
-        "tilt_deg": g.tilt_deg,
-        "tilt_azimuth_deg": g.tilt_azimuth_deg,
-        "projection": ln.projection,
-        "focal_px": ln.focal_px,
-        "cx": ln.cx,
-        "cy": ln.cy,
-        "k1": ln.k1,
-        "k2": ln.k2,
-        "rms_nm": float("nan"),
-        "n_lines": 0,
-    }
-    return {"attrs": attrs}
-
-
 def process_event(event_path: str | Path, *, stations_dir: str | Path | None = None,
                   run_root: str | Path | None = None) -> EventResult:
     """Run every available stage on one event.
@@ -181,26 +167,171 @@ def process_event(event_path: str | Path, *, stations_dir: str | Path | None = N
 
     if result.frames.n_saturated_px.any():
         result.add_flag("saturated")
-    camera = station.camera
-    geometry = SpectralGeometry.from_station(station)
-    orders = [o for o in station.grating.orders if o != 0]
-    background = estimate_background(stack, camera=camera, seed=0)
-    track = find_track(stack, background, geometry, camera=camera, orders=orders, seed=0)
-    result.parts["track"] = track_part(track)
-    for flag in track.flags:
-        result.add_flag(flag)
-    if track:
-        spectra = extract_spectra(stack, background, track, geometry, camera=camera, order=orders[0])
-        for flag in spectra.flags:
-            result.add_flag(flag)
-        result.parts["spectrum"] = spectrum_part(spectra, flux_unit="adu")
-    else:
-        result.add_flag("no_meteor")
-    result.parts["calibration"] = _calibration_from_station(station)
-    result.add_flag("calibration_from_station")
-    for stage in STAGES:
-        if stage not in result.parts or stage == "calibration":
-            # calibration from station values is a fallback, not the refinement stage
-            result.add_flag(f"stage_missing:{stage}")
+    _reduce(result, event, station, stack)
     result.status = "partial" if any(f.startswith("stage_missing:") for f in result.flags) else "ok"
     return result
+
+
+def _reduce(result: EventResult, event: Event, station: Station, stack: FrameStack) -> None:
+    """The science stages in data-flow order; each adds its part and flags to ``result``.
+
+    A stage that cannot run (no meteor, failed plasma fit) leaves its part out and
+    flags ``stage_missing:<stage>`` plus the reason; nothing here raises for a
+    difficult event.
+    """
+    camera = station.camera
+    station_geometry = SpectralGeometry.from_station(station)
+    orders = [o for o in station.grating.orders if o != 0]
+    order = orders[0]
+
+    binned = bin_frames(stack, camera=camera)  # the one full pass, shared by background and tracker
+    background = estimate_background(stack, camera=camera, seed=0, binned=binned)
+    track = find_track(stack, background, station_geometry, camera=camera, orders=orders, seed=0, binned=binned)
+    del binned
+    if track:
+        # the meteor's light masked frame by frame; then the light curve against that background
+        refined = refine_background(stack, background, track, station_geometry, camera=camera, orders=orders)
+        if refined is not background:
+            background, track = refined, remeasure_light_curve(stack, refined, track)
+    result.parts["track"] = track_part(track)
+    _add_flags(result, track.flags)
+    if not track:
+        result.add_flag("no_meteor")
+        result.parts["calibration"] = {"attrs": station_solution(station_geometry).to_attrs()}
+        result.add_flag("calibration_from_station")
+        _flag_missing(result)
+        return
+
+    solution = calibrate_event(stack, background, track, station_geometry, camera=camera, order=order,
+                               event=event.id)
+    result.parts["calibration"] = calibration_part(solution)
+    _add_flags(result, solution.flags)
+
+    spectra = extract_spectra(stack, background, track, solution.geometry, camera=camera, order=order)
+    _add_flags(result, spectra.flags)
+    spectra, flags = apply_response(spectra, station.response)
+    _add_flags(result, flags)
+    if station.pointing is not None:
+        altitude_deg, _ = pixel_altaz(solution.geometry.lens, station.pointing, track.x_px, track.y_px)
+        # frames outside the luminous span have no position and carry no meteor light;
+        # give them the span's median altitude so they are not reported below the horizon
+        altitude_deg = np.where(np.isfinite(altitude_deg), altitude_deg, np.nanmedian(altitude_deg))
+        spectra, flags = extinction_correction(spectra, altitude_deg)
+        _add_flags(result, flags)
+    flux_unit = "adu" if station.response is None else "adu/response"
+    result.parts["spectrum"] = spectrum_part(spectra, flux_unit=flux_unit)
+
+    whole = spectra.whole_flight()
+    fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order)
+    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s)
+    table = identify_lines(whole, fwhm_nm=fwhm_nm, plasma_fit=fit if fit else None)
+    result.parts["lines"] = {"table": (table.to_records(), flux_unit + " nm"),
+                             "attrs": {"columns_unit": "lab_nm, measured_nm: nm; intensity: flux x nm"}}
+    if not fit:
+        result.add_flag("plasma_fit_failed")
+        result.parts["plasma"] = {"attrs": {"success": False, "reason": fit.reason}}
+        _flag_missing(result)
+        return
+    result.parts["plasma"] = plasma_part(fit, whole, flux_unit=flux_unit)
+    for group, share in fit.group_coverage.items():
+        if share < 0.5:  # the group rests mostly on the model of other lines
+            result.add_flag(f"group_poorly_covered:{group}")
+
+    composition = classify(fit.group_intensity, fit.group_covariance, speed_km_s=event.speed_km_s,
+                           speed_err_km_s=event.speed_err_km_s, seed=0)
+    _add_flags(result, composition.flags)
+    frame_fits = fit_plasma_per_frame(spectra, fit, fwhm_nm=fwhm_nm)
+    centre_nm, half_width_nm = LIGHT_CURVE_BANDS_NM["O I 777"]
+    o777, o777_err = light_curve_from_spectra(spectra, center_nm=centre_nm, half_width_nm=half_width_nm)
+    timeline = time_resolved_from_fits(spectra.time_s, frame_fits, o777_per_frame=o777, o777_err=o777_err)
+    _add_flags(result, timeline.flags)
+    result.parts["composition"] = composition_part(composition, timeline)
+    _flag_missing(result)
+
+
+def _add_flags(result: EventResult, flags) -> None:
+    for flag in flags:
+        result.add_flag(str(flag))
+
+
+def _flag_missing(result: EventResult) -> None:
+    for stage in STAGES:
+        if stage not in result.parts:
+            result.add_flag(f"stage_missing:{stage}")
+
+
+def _instrument_fwhm(geometry: SpectralGeometry, track: Track, wavelength_nm: np.ndarray, *,
+                     order: int) -> np.ndarray:
+    """Instrument FWHM per wavelength bin at the middle of the luminous track.
+
+    The PSF comes from the tracker; the motion streak's component along the
+    dispersion widens lines (median over the luminous frames).
+    """
+    lum = track.luminous & np.isfinite(track.x_px)
+    x0, y0 = float(np.median(track.x_px[lum])), float(np.median(track.y_px[lum]))
+    vx, vy = track.velocity_px_s(track.time_s[lum])
+    dx, dy = geometry.direction(x0, y0, 550.0, order)
+    streak_px = float(np.nanmedian(np.abs(vx * dx + vy * dy))) * track.exposure_s
+    psf_sigma_px = track.psf_sigma_px if np.isfinite(track.psf_sigma_px) else 1.3
+    return instrument_fwhm_nm(geometry, x0, y0, wavelength_nm, psf_fwhm_px=2.3548 * psf_sigma_px,
+                              streak_px=streak_px, order=order)
+
+
+def calibration_part(solution: WavelengthSolution) -> dict[str, object]:
+    """``/calibration``: values used with errors, and the line-position residuals."""
+    res = solution.residuals
+    datasets = {}
+    for name, unit in (("frame", "1"), ("lab_nm", "nm"), ("measured_nm", "nm"), ("residual_nm", "nm"),
+                       ("cross_px", "px"), ("used", "1")):
+        if hasattr(res, name):
+            datasets[f"residuals/{name}"] = (np.asarray(getattr(res, name)), unit)
+    return {"attrs": solution.to_attrs(), "datasets": datasets}
+
+
+def plasma_part(fit: PlasmaFit, whole: Spectrum, *, flux_unit: str) -> dict[str, object]:
+    """``/plasma``: temperatures, column densities, group intensities and the model spectrum."""
+    attrs: dict[str, object] = {
+        "temperature_k": fit.temperature_k, "temperature_err_k": fit.temperature_err_k,
+        "hot_temperature_k": fit.hot_temperature_k, "hot_temperature_err_k": fit.hot_temperature_err_k,
+        "chi2_reduced": fit.chi2_reduced, "shift_nm": fit.shift_nm, "width_scale": fit.width_scale,
+        "method": "two-component LTE (Borovicka 1993) with self-absorption",
+    }
+    for group in ("na", "mg", "fe"):
+        attrs[f"{group}_intensity"] = fit.group_intensity[group]
+        attrs[f"{group}_intensity_err"] = fit.group_intensity_err[group]
+        attrs[f"{group}_coverage"] = fit.group_coverage.get(group, float("nan"))
+    for species, value in fit.column_density_m2.items():
+        attrs[f"column_density_m2:{species}"] = value
+        attrs[f"column_density_err_m2:{species}"] = fit.column_density_err_m2.get(species, float("nan"))
+    return {"attrs": attrs, "datasets": {
+        "group_covariance": (fit.group_covariance, f"({flux_unit} nm)^2"),
+        "model_flux": (fit.model_flux, f"{flux_unit}/nm"),
+        "wavelength_nm": (whole.wavelength_nm, "nm"),
+    }}
+
+
+def composition_part(composition: Composition, timeline: TimeResolved) -> dict[str, object]:
+    """``/composition`` (contract sections 5 and 6) and its time-resolved companion."""
+    attrs: dict[str, object] = {
+        "na": composition.na, "mg": composition.mg, "fe": composition.fe,
+        "na_err": composition.na_err, "mg_err": composition.mg_err, "fe_err": composition.fe_err,
+        "class": composition.class_name, "class_confidence": composition.class_confidence,
+        "class_reason": composition.class_reason, "speed_km_s": composition.speed_km_s,
+        "speed_used_km_s": composition.speed_used_km_s, "flags": list(composition.flags),
+        "expected_normal_na_mg_fe": np.asarray(composition.expected_normal, float),
+    }
+    datasets = {"time_s": (timeline.time_s, "s")}
+    for name in ("na", "mg", "fe", "na_err", "mg_err", "fe_err"):
+        datasets[f"per_frame/{name}"] = (getattr(timeline, name), "1")
+    for name, curve in timeline.light_curves.items():
+        key = name.replace(" ", "_")
+        datasets[f"light_curves/{key}"] = (curve, "flux x nm")
+        datasets[f"light_curves/{key}_err"] = (timeline.light_curve_errs[name], "flux x nm")
+    timeline_attrs = {"na_peak_lead_s": timeline.na_peak_lead_s,
+                      "na_peak_lead_fraction": timeline.na_peak_lead_fraction,
+                      "duration_s": timeline.duration_s, "flags": list(timeline.flags),
+                      "method": "differential ablation: Na peak minus mean of Mg and Fe peaks "
+                                "(Vojacek et al. 2019)"}
+    for name, t in timeline.peak_time_s.items():
+        timeline_attrs[f"peak_time_s:{name}"] = t
+    return {"attrs": attrs, "datasets": datasets, "groups": {"timeline": {"attrs": timeline_attrs}}}

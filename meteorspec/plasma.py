@@ -1049,7 +1049,8 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
         group_intensity={g: float(q[n_metal + n_air + k]) for k, g in enumerate(GROUPS)},
         group_intensity_err={g: float(np.sqrt(max(g_cov[k, k], 0.0)))
                              for k, g in enumerate(GROUPS)},
-        group_covariance=g_cov, model_flux=model.flux(), chi2_reduced=chi2_red,
+        # J C J^T is symmetric in exact arithmetic; round-off is removed so users may test it
+        group_covariance=0.5 * (g_cov + g_cov.T), model_flux=model.flux(), chi2_reduced=chi2_red,
         line_optical_depth=depth, area_scale=10.0 ** model.value("log_scale"),
         hot_area_scale=10.0 ** model.value("log_scale_hot"),
         shift_nm=model.value("shift_nm"), width_scale=model.value("width_scale"),

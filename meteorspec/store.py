@@ -34,9 +34,11 @@ def _str_array(values: list[str]) -> np.ndarray:
 def _set_attr(obj: h5py.HLObject, key: str, value: Any) -> None:
     if value is None:
         value = np.nan
+    if isinstance(value, np.ndarray) and value.dtype.kind == "U":
+        value = [str(v) for v in value.ravel()]
     if isinstance(value, str):
         obj.attrs[key] = value
-    elif isinstance(value, (list, tuple)) and value and all(isinstance(v, str) for v in value):
+    elif isinstance(value, (list, tuple)) and all(isinstance(v, str) for v in value):
         obj.attrs[key] = _str_array(list(value))
     else:
         obj.attrs[key] = value
@@ -88,7 +90,15 @@ def _fill(f: h5py.File, result: EventResult) -> None:
             _set_attr(g, key, value)
 
     for name, part in result.parts.items():
-        if part is not None:
+        if part is None:
+            continue
+        if "table" in part:  # a compound table at the root, e.g. /lines (contract section 5)
+            records, unit = part["table"]
+            ds = f.create_dataset(name, data=records)
+            ds.attrs["unit"] = unit
+            for key, value in part.get("attrs", {}).items():
+                _set_attr(ds, key, value)
+        else:
             _write_part(f.create_group(name), part)
 
 

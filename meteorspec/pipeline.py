@@ -242,7 +242,10 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     _add_flags(result, composition.flags)
     frame_fits = fit_plasma_per_frame(spectra, fit, fwhm_nm=fwhm_nm)
     centre_nm, half_width_nm = LIGHT_CURVE_BANDS_NM["O I 777"]
-    o777, o777_err = light_curve_from_spectra(spectra, center_nm=centre_nm, half_width_nm=half_width_nm)
+    try:
+        o777, o777_err = light_curve_from_spectra(spectra, center_nm=centre_nm, half_width_nm=half_width_nm)
+    except ValueError:  # the spectrum does not sample the O I 777 band
+        o777 = o777_err = None
     timeline = time_resolved_from_fits(spectra.time_s, frame_fits, o777_per_frame=o777, o777_err=o777_err)
     _add_flags(result, timeline.flags)
     result.parts["composition"] = composition_part(composition, timeline)

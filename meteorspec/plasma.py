@@ -514,8 +514,9 @@ class _Model:
         p["log_t"] = _Param("log_t", math.log10(4500.0), *np.log10(_MAIN_T_BOUNDS_K))
         p["log_t_hot"] = _Param("log_t_hot", math.log10(_HOT_REFERENCE_K),
                                 *np.log10(_HOT_T_BOUNDS_K))
-        p["log_scale"] = _Param("log_scale", 0.0, -np.inf, np.inf, free=self.self_absorption)
-        p["log_scale_hot"] = _Param("log_scale_hot", 0.0, -np.inf, np.inf,
+        # area scales span any physical range but must stay inside float64 (10**+-300)
+        p["log_scale"] = _Param("log_scale", 0.0, -250.0, 250.0, free=self.self_absorption)
+        p["log_scale_hot"] = _Param("log_scale_hot", 0.0, -250.0, 250.0,
                                     free=self.self_absorption)
         p["shift_nm"] = _Param("shift_nm", 0.0, -1.5, 1.5)
         p["stretch"] = _Param("stretch", 0.0, -0.01, 0.01)

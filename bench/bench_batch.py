@@ -2,7 +2,11 @@
 
 Usage (from the top of the repository)::
 
-    python bench/bench_batch.py [--night sample_events] [--copies 4] [--repeat 3]
+    python bench/bench_batch.py [--night sample_events] [--copies 2] [--repeat 1]
+
+Now that every stage runs, one sample event takes 8-90 s (about 3 minutes for the five
+on the 2-core machine), so the defaults (10 events, one run each) take about 12 minutes;
+raise ``--repeat`` on a quiet machine for steadier numbers.
 
 The night (default: the bundled sample events) is copied ``--copies`` times into
 a temporary folder, each copy with its own event ids, so that both workers have
@@ -68,8 +72,8 @@ def timed(events, out: Path, *, repeat: int, **kw) -> tuple[float, int]:
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--night", default=str(REPO / "sample_events"), help="folder of events")
-    parser.add_argument("--copies", type=int, default=4, help="copies of the night to process")
-    parser.add_argument("--repeat", type=int, default=3, help="runs per configuration; the best is reported")
+    parser.add_argument("--copies", type=int, default=2, help="copies of the night to process")
+    parser.add_argument("--repeat", type=int, default=1, help="runs per configuration; the best is reported")
     args = parser.parse_args(argv)
 
     night = Path(args.night)

@@ -51,6 +51,9 @@ from .version import software_version
 
 NIGHT_TABLE = "night.csv"
 
+# Thread-count variables of the BLAS libraries numpy and scipy may load (see meteorspec.cli).
+SINGLE_THREAD_BLAS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
 # Root attributes and composition values copied into the night table, in column order.
 TABLE_COLUMNS = ("event_id", "status", "class", "na", "na_err", "mg", "mg_err", "fe", "fe_err",
                  "speed_km_s", "flags", "error", "output", "event")
@@ -452,6 +455,7 @@ def run_night(events: Sequence[tuple[str | Path, str | Path]], *, out_dir: str |
 def _run_on_dask(jobs: list[EventJob], finished: Callable[[EventRow], None], *, workers: int,
                  scheduler: str | None) -> None:
     """Submit every job as a Dask future and hand rows to ``finished`` as they complete."""
+    import dask
     from distributed import Client, LocalCluster, as_completed
 
     if not jobs:
@@ -463,9 +467,16 @@ def _run_on_dask(jobs: list[EventJob], finished: Callable[[EventRow], None], *, 
         # listens on the loopback interface only; the scheduler's HTTP server (which
         # distributed starts even without a dashboard, by default on 0.0.0.0:8787) gets
         # a free loopback port, so two nights on one machine do not collide.
-        cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                               dashboard_address="127.0.0.1:0", host="127.0.0.1",
-                               silence_logs=logging.ERROR)
+        # Single-threaded BLAS in the workers, as the command line sets for itself: it must be in
+        # the environment before the worker process imports numpy, which only the nanny's
+        # pre-spawn environment guarantees (distributed's default, made explicit here so that a
+        # user's Dask configuration cannot change it; results then match a serial run bit for bit).
+        pre_spawn = {**dask.config.get("distributed.nanny.pre-spawn-environ", default={}),
+                     **{var: "1" for var in SINGLE_THREAD_BLAS}}
+        with dask.config.set({"distributed.nanny.pre-spawn-environ": pre_spawn}):
+            cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                   dashboard_address="127.0.0.1:0", host="127.0.0.1",
+                                   silence_logs=logging.ERROR)
         client = Client(cluster)
     else:
         client = Client(scheduler)

@@ -1002,11 +1002,16 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
     dof = max(n_data - len(names), 1)
     chi2_red = float(np.sum(problem.residuals(result.x)[:n_data] ** 2) / dof)
     jac = problem.jacobian(result.x)
-    cov = _covariance(jac) * max(1.0, chi2_red)
+    # An unconstrained direction (weak spectrum) makes the covariance overflow; that is a
+    # property of the data, reported as a failed fit below, not a numerical warning.
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        cov = _covariance(jac) * max(1.0, chi2_red)
+        qj = _quantity_jacobian(model)
+        qcov = qj @ cov @ qj.T
+    if not np.all(np.isfinite(qcov[-3:, -3:])):
+        return PlasmaFit.failed("the fit leaves the Na/Mg/Fe group intensities unconstrained "
+                                "(non-finite covariance)", n_bins)
     sd = dict(zip(names, np.sqrt(np.clip(np.diag(cov), 0, None))))
-
-    qj = _quantity_jacobian(model)
-    qcov = qj @ cov @ qj.T
     q = _quantities(model)
     q_err = np.sqrt(np.clip(np.diag(qcov), 0, None))
     n_metal, n_air = len(model.metal), len(model.air)
@@ -1216,7 +1221,7 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
                          fwhm_nm: float | ArrayLike | Callable,
                          line_list: LineList | None = None, vary_temperature: bool = False,
                          temperature_prior_k: float = 300.0, min_bins: int = 20,
-                         max_nfev: int = 100) -> list[PlasmaFit]:
+                         min_snr: float = 3.0, max_nfev: int = 100) -> list[PlasmaFit]:
     """Fit every frame with the whole-flight model, for time-resolved group intensities.
 
     Parameters
@@ -1235,6 +1240,9 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
         False: main and hot temperatures fixed at the whole-flight values. True: the main
         temperature is fitted with a Gaussian prior of width ``temperature_prior_k`` around
         the whole-flight value.
+    min_snr : float
+        Frames whose whole-spectrum signal-to-noise is below this are not fitted (failed
+        entries), e.g. the frames before and after the meteor.
     min_bins : int
         Frames with fewer usable bins fail (falsy result with the reason).
     max_nfev : int
@@ -1284,6 +1292,11 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
         good = ~mask_all[k] & np.isfinite(flux) & np.isfinite(err) & (err > 0)
         if good.sum() < min_bins:
             out.append(PlasmaFit.failed(f"frame {k}: only {int(good.sum())} usable bins",
+                                        wl.size))
+            continue
+        total_snr = float(np.sum(flux[good] * bw[good]) / np.sqrt(np.sum(var[good] * bw[good] ** 2)))
+        if not total_snr >= min_snr:  # a frame without meteor light has nothing to fit
+            out.append(PlasmaFit.failed(f"frame {k}: total signal S/N {total_snr:.1f} < {min_snr}",
                                         wl.size))
             continue
         share = float(np.sum(flux[good] * bw[good]) / np.sum(wf_model[good] * bw[good]))

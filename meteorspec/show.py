@@ -10,7 +10,7 @@ from typing import Any
 import numpy as np
 
 from .store import read_event
-from .report.html import STAGE_NAMES, _flag_text, lines_columns
+from .report.html import STAGE_NAMES, _flag_text, lines_columns, why_missing
 
 
 def _f(value: Any, fmt: str = "{:.3f}") -> str:
@@ -57,7 +57,8 @@ def summarise(path: str | Path, *, max_lines: int = 12) -> str:
                    f"{int(np.count_nonzero(nsat))} with saturated pixels")
 
     def missing(stage: str) -> None:
-        out.append(f"{stage:<8} not in file: {STAGE_NAMES[stage]} has not run")
+        why = why_missing(ev, stage)
+        out.append(f"{stage:<8} not in file: {STAGE_NAMES[stage]} has not run" + (f" ({why})" if why else ""))
 
     track = g.get("track")
     if track is None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import html
 import shutil
 import urllib.parse
 from pathlib import Path
@@ -10,58 +11,30 @@ import numpy as np
 import pytest
 
 from meteorspec.batch import find_events, run_night
-from meteorspec.pipeline import process_event
 from meteorspec.report import write_report
 from meteorspec.report.figures import (plot_composition, plot_light_curves, plot_spectrogram, plot_spectrum,
                                        plot_stack, plot_ternary, ternary_xy, window_light_curves)
-from meteorspec.store import output_path, write_event
-from test_batch import make_night
+from meteorspec.store import read_event
+from test_batch import BLANK_ID, CORRUPT_ID, SAMPLE_SUBSET, make_night, sample_night  # noqa: F401 (fixture)
 
-# Contract section 6 line positions (nm, air), NIST ASD values as listed in the contract.
-NA_NM, MG_NM, FE_NM = (588.995, 589.592), (516.732, 517.268, 518.360), (526.954, 532.804, 537.149, 539.713)
-
-
-def complete_event(event_folder: Path, out_dir: Path) -> Path:
-    """Process a real (invented) event, then add every later stage's part with invented values.
-
-    The display test needs each figure drawn; the numbers are for display only, not physics.
-    """
-    result = process_event(event_folder, run_root=event_folder.parents[1])
-    assert result.status != "failed", result.error
-    t = result.frames.time_s
-    wl = np.arange(380.0, 880.0, 0.5)
-    lab = np.array(NA_NM + MG_NM + FE_NM)
-    amp = np.array([4, 2, 1, 2, 3, 1.5, 1.2, 1.0, 0.8])
-    spectrum = 0.05 + (amp[:, None] * np.exp(-0.5 * ((wl - lab[:, None]) / 0.8) ** 2)).sum(axis=0)
-    light = np.exp(-0.5 * ((t - t.mean()) / (0.2 * np.ptp(t))) ** 2)
-    species = np.array([b"Na I"] * 2 + [b"Mg I"] * 3 + [b"Fe I"] * 4)
-    result.parts.update({
-        "track": {"datasets": {"time_s": (t, "s"), "x": (10 + 3 * np.arange(t.size, dtype=float), "px"),
-                               "y": (12 + np.arange(t.size, dtype=float), "px"), "flux": (100 * light, "adu")}},
-        "spectrum": {"datasets": {"wavelength_nm": (wl, "nm"), "flux": (spectrum, "relative"),
-                                  "flux_err": (0.02 + 0.05 * spectrum, "relative"),
-                                  "per_frame": (light[:, None] * spectrum[None, :], "relative")}},
-        "lines": {"datasets": {"species": (species, ""), "lab_nm": (lab, "nm"), "measured_nm": (lab + 0.03, "nm"),
-                               "intensity": (amp, "relative"), "intensity_err": (0.1 * amp, "relative"),
-                               "snr": (10 * amp, "")}},
-        "composition": {"attrs": {"na": 0.3, "mg": 0.45, "fe": 0.25, "na_err": 0.03, "mg_err": 0.04,
-                                  "fe_err": 0.03, "class": "normal", "class_confidence": 0.8,
-                                  "speed_km_s": 35.0}},
-    })
-    return write_event(output_path(out_dir, result.event_id), result)
+COMPLETE_ID, NO_PLASMA_ID = SAMPLE_SUBSET[1], SAMPLE_SUBSET[0]  # QM03 runs every stage; QM04's plasma fit fails
+MOVED_ID = "20261114T030200Z_TB01"
 
 
 @pytest.fixture(scope="module")
-def night_report(tmp_path_factory):
-    """A night with a complete event, skeleton-only events and a failed (corrupt) event, and its report."""
+def night_report(sample_night, tmp_path_factory):
+    """The sample night's outputs plus one more blank event whose video has been moved since, and its report.
+
+    Outputs are copied, so the shared serial outputs stay untouched.
+    """
     root = tmp_path_factory.mktemp("report")
-    folders = make_night(root / "night", 4, corrupt=1)
     out = root / "out"
+    shutil.copytree(sample_night.out, out)
+    (moved,) = make_night(root / "night", 1, first=2)
     run_night(find_events([root / "night"]), out_dir=out)
-    complete_event(folders[0], out)
-    # an event whose video has been moved away since processing: the stacked image is skipped with a note
-    shutil.move(folders[2] / "video.fits", root / "moved.fits")
-    index = write_report(out)
+    # the stacked image of an event whose video is gone is skipped with a note
+    shutil.move(moved / "video.fits", root / "moved.fits")
+    index = write_report(out, report_dir=root / "html")
     return out, index
 
 
@@ -70,32 +43,46 @@ def test_every_page_and_figure_is_written(night_report):
     rep = index.parent
     assert sorted(p.name for p in (rep / "events").iterdir()) == sorted(p.stem + ".html" for p in out.glob("*.h5"))
     imgs = {p.name for p in (rep / "img").iterdir()}
-    complete = "20261114T030000Z_TB01"
     for kind in ("stack", "spectrum", "spectrogram", "lightcurves", "composition"):
-        assert f"{complete}_{kind}.png" in imgs
+        assert f"{COMPLETE_ID}_{kind}.png" in imgs
     assert "ternary.png" in imgs
-    page = (rep / "events" / f"{complete}.html").read_text()
+    page = (rep / "events" / f"{COMPLETE_ID}.html").read_text()
     assert "Na I 589.0" not in page  # labels live in the figure, the table lists the lines
-    assert "588.995" in page and "normal" in page
+    ev = read_event(out / f"{COMPLETE_ID}.h5")
+    lines = ev["datasets"]["lines"]
+    assert len(lines["lab_nm"]) > 0
+    for lab in lines["lab_nm"]:  # every identified line is in the table, as written in the file
+        assert f"{lab:.3f}" in page
+    assert f"Class <b>{ev['groups']['composition']['attrs']['class']}</b>" in page
+    assert "has not run" not in page
 
 
-def test_missing_parts_say_which_stage_has_not_run(night_report):
-    from meteorspec.store import read_event
+def test_missing_parts_say_which_stage_has_not_run_and_why(night_report):
     from meteorspec.report.html import STAGE_NAMES
 
     out, index = night_report
-    ev = read_event(out / "20261114T030100Z_TB01.h5")
-    page = (index.parent / "events" / "20261114T030100Z_TB01.html").read_text()
-    missing = [s for s in ("track", "spectrum", "lines", "composition")
-               if s not in ev["groups"] and not (s == "lines" and "lines" in ev["datasets"])]
-    assert missing, "some stage is expected not to have run on the invented test events"
+    events = index.parent / "events"
+    # a sky without a meteor: tracking ran and found nothing, so extraction, lines and composition did not run
+    ev = read_event(out / f"{BLANK_ID}.h5")
+    missing = sorted(f.split(":", 1)[1] for f in ev["attrs"]["flags"] if f.startswith("stage_missing:"))
+    assert missing == ["composition", "lines", "spectrum"] and "no_meteor" in ev["attrs"]["flags"]
+    assert not {"spectrum", "composition"} & set(ev["groups"]) and "lines" not in ev["datasets"]
+    page = (events / f"{BLANK_ID}.html").read_text()
     for stage in missing:
-        if stage == "lines" and "spectrum" in missing:
+        if stage == "lines":
             continue  # without a spectrum the page says so once, for the spectrum
         assert f"{STAGE_NAMES[stage]} has not run" in page, stage
-    moved = (index.parent / "events" / "20261114T030200Z_TB01.html").read_text()
+    assert "no meteor found" in page
+    # a real event whose plasma fit failed: spectrum and lines exist, composition does not, and the page says why
+    ev = read_event(out / f"{NO_PLASMA_ID}.h5")
+    assert "plasma_fit_failed" in ev["attrs"]["flags"] and "stage_missing:composition" in ev["attrs"]["flags"]
+    page = (events / f"{NO_PLASMA_ID}.html").read_text()
+    assert f"{STAGE_NAMES['composition']} has not run" in page and f"{NO_PLASMA_ID}_spectrum.png" in page
+    reason = ev["groups"]["plasma"]["attrs"]["reason"]
+    assert reason and html.escape(reason) in page
+    moved = (events / f"{MOVED_ID}.html").read_text()
     assert "Stacked image skipped" in moved and "not found" in moved
-    failed = (index.parent / "events" / "20261114T030300Z_TB01.html").read_text()
+    failed = (events / f"{CORRUPT_ID}.html").read_text()
     assert "not a readable FITS file" in failed and "badge failed" in failed
 
 
@@ -189,7 +176,7 @@ def test_pages_render_in_a_headless_browser(night_report, browser):
             assert target.is_file(), f"{url}: broken link {href}"
             if target.suffix == ".html":
                 to_visit.append(target.as_uri())
-    assert len(seen) == 1 + 4  # index and one page per event
+    assert len(seen) == 1 + 5  # index and one page per event
     assert n_images >= 1 + 5   # ternary, and at least the complete event's five figures
 
 

@@ -2,32 +2,45 @@
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 
-from meteorspec.batch import find_events, run_night
 from meteorspec.cli import main
+from meteorspec.report.html import STAGE_NAMES
 from meteorspec.show import summarise
-from test_batch import make_night
-from test_report import complete_event
+from meteorspec.store import read_event
+from test_batch import BLANK_ID, CORRUPT_ID, SAMPLE_SUBSET, sample_night  # noqa: F401 (fixture)
 
 
-def test_summary_of_a_complete_event(tmp_path):
-    folders = make_night(tmp_path / "night", 1)
-    path = complete_event(folders[0], tmp_path / "out")
+def test_summary_of_a_complete_event(sample_night):
+    # a real sample event through every stage: the summary shows the file's values, formatted
+    path = sample_night.out / f"{SAMPLE_SUBSET[1]}.h5"
+    ev = read_event(path)
+    c = ev["groups"]["composition"]["attrs"]
     text = summarise(path)
-    assert text.splitlines()[0].startswith("event    20261114T030000Z_TB01")
-    assert "Na 0.300 +/- 0.030, Mg 0.450 +/- 0.040, Fe 0.250 +/- 0.030" in text
-    assert "class    normal (confidence 0.80), speed 35.0 km/s" in text
-    assert "lines    9 identified" in text and "Na I" in text
-    assert "track    12 points" in text
+    assert text.splitlines()[0] == f"event    {SAMPLE_SUBSET[1]}   [{ev['attrs']['status']}]"
+    assert (f"Na {c['na']:.3f} +/- {c['na_err']:.3f}, Mg {c['mg']:.3f} +/- {c['mg_err']:.3f}, "
+            f"Fe {c['fe']:.3f} +/- {c['fe_err']:.3f}") in text
+    speed = "n/a" if not np.isfinite(c["speed_km_s"]) else f"{c['speed_km_s']:.1f}"
+    assert f"class    {c['class']} (confidence {c['class_confidence']:.2f})" in text
+    assert f"speed {speed} km/s" in text
+    lines = ev["datasets"]["lines"]
+    assert f"lines    {len(lines['lab_nm'])} identified" in text
+    strongest = int(np.nanargmax(lines["intensity"]))
+    assert f"  {lines['species'][strongest]:<6} {lines['lab_nm'][strongest]:8.3f} nm" in text
+    assert f"track    {len(ev['groups']['track']['datasets']['time_s'])} points" in text
+    assert "has not run" not in text
 
 
-def test_summary_names_missing_stages_and_failures(tmp_path, capsys):
-    make_night(tmp_path / "night", 2, corrupt=1)
-    night = run_night(find_events([tmp_path / "night"]), out_dir=tmp_path / "out")
-    partial = summarise(tmp_path / "out" / night.rows[0].output)
-    assert "composition and class (classify stage) has not run" in partial
-    assert main(["show", str(tmp_path / "out" / night.rows[1].output)]) == 0
+def test_summary_names_missing_stages_and_failures(sample_night, capsys):
+    out = sample_night.out
+    blank = summarise(out / f"{BLANK_ID}.h5")  # a sky without a meteor
+    for stage in ("spectrum", "lines", "composition"):
+        assert f"{stage:<8} not in file: {STAGE_NAMES[stage]} has not run (no meteor found in the video)" in blank
+    no_plasma = summarise(out / f"{SAMPLE_SUBSET[0]}.h5")  # a real event whose plasma fit failed
+    assert f"{STAGE_NAMES['composition']} has not run (the plasma fit failed" in no_plasma
+    assert "spectrum not in file" not in no_plasma
+    assert main(["show", str(out / f"{CORRUPT_ID}.h5")]) == 0
     failed = capsys.readouterr().out
     assert "[failed]" in failed and "error    " in failed and "not a readable FITS file" in failed
 

@@ -36,6 +36,8 @@ FLAG_TEXT = {
     "low_snr": "low signal-to-noise ratio",
     "calibration_from_station": "wavelength scale from the station file values, not refined on this event",
     "speed_unknown": "no trajectory speed: class given without the speed-dependent expectation",
+    "no_meteor": "no meteor found in the video: nothing to extract, identify or classify",
+    "plasma_fit_failed": "the plasma fit did not converge: no composition or class",
 }
 
 CSS = """\
@@ -125,9 +127,22 @@ def _group(ev: Mapping[str, Any], name: str) -> Mapping[str, Any] | None:
     return ev["groups"].get(name)
 
 
-def _missing_note(stage: str, what: str) -> str:
+def why_missing(ev: Mapping[str, Any], stage: str) -> str:
+    """The recorded cause of a missing stage (no meteor, failed plasma fit), or ``""``."""
+    flags = list(ev["attrs"].get("flags", []))
+    if "no_meteor" in flags and stage in ("spectrum", "lines", "composition"):
+        return "no meteor found in the video"
+    plasma = ev["groups"].get("plasma")
+    if stage == "composition" and plasma is not None and not plasma["attrs"].get("success", True):
+        reason = str(plasma["attrs"].get("reason", "")).strip()
+        return "the plasma fit failed" + (f": {reason}" if reason else "")
+    return ""
+
+
+def _missing_note(stage: str, what: str, ev: Mapping[str, Any] | None = None) -> str:
+    why = why_missing(ev, stage) if ev is not None else ""
     return (f'<p class="note">No {_e(what)}: {_e(STAGE_NAMES.get(stage, stage))} has not run for this event '
-            f'(no <code>/{_e(stage)}</code> in the file).</p>')
+            f'(no <code>/{_e(stage)}</code> in the file)' + (f"; {_e(why)}" if why else "") + ".</p>")
 
 
 # --------------------------------------------------------------------------- data for the figures
@@ -285,7 +300,7 @@ def _event_sections(ev: Mapping[str, Any], img_dir: Path, img_href: str, stem: s
     lines_table = lines_columns(ev)
     parts.append("<h2>Spectrum</h2>")
     if spec is None or not {"wavelength_nm", "flux"} <= set(spec["datasets"]):
-        parts.append(_missing_note("spectrum", "calibrated spectrum"))
+        parts.append(_missing_note("spectrum", "calibrated spectrum", ev))
     else:
         d = spec["datasets"]
         calibrated = "uncalibrated_flux" not in ev["attrs"].get("flags", [])
@@ -294,7 +309,7 @@ def _event_sections(ev: Mapping[str, Any], img_dir: Path, img_href: str, stem: s
                "spectrum", "Whole-flight spectrum with 1-sigma band; shaded: the Na, Mg and Fe line groups; "
                            "labels: identified lines (strongest first).")
         if lines_table is None:
-            parts.append(_missing_note("lines", "identified lines"))
+            parts.append(_missing_note("lines", "identified lines", ev))
         if "per_frame" in d and np.ndim(d["per_frame"]) == 2 and np.size(d["per_frame"]):
             per_frame = np.asarray(d["per_frame"], dtype=float)
             t, source = _frame_times(ev, per_frame.shape[0])
@@ -327,7 +342,7 @@ def _event_sections(ev: Mapping[str, Any], img_dir: Path, img_href: str, stem: s
     parts.append("<h2>Composition</h2>")
     comp = _group(ev, "composition")
     if comp is None:
-        parts.append(_missing_note("composition", "composition"))
+        parts.append(_missing_note("composition", "composition", ev))
     else:
         a = comp["attrs"]
         figure(plot_composition(a), "composition", "Relative intensities of the Na, Mg and Fe groups "

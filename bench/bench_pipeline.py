@@ -14,9 +14,10 @@ step allocated counts:
 
 - ``decode``: the bare decode, a loop over :func:`read_raw_frames` that keeps
   nothing (the floor any reader must pay);
-- ``pipeline``: :func:`read_stack`, :func:`estimate_background`,
-  :func:`find_track` and :func:`extract_spectra` as :func:`process_event`
-  calls them, each timed;
+- ``pipeline``: :func:`read_stack`, :func:`bin_frames` +
+  :func:`estimate_background` ("background"), :func:`find_track`,
+  :func:`refine_background` + :func:`remeasure_light_curve` ("refine") and
+  :func:`extract_spectra` as :func:`process_event` calls them, each timed;
 - memory: the resident-set high-water mark (``VmHWM`` of ``/proc/self/status``,
   which restarts at exec, unlike ``ru_maxrss``) of the subprocess minus its
   value after the imports (the resident-set peak that the stages
@@ -46,11 +47,11 @@ REPO = Path(__file__).resolve().parents[1]
 _CHILD = r"""
 import json, resource, sys, time, tracemalloc
 sys.path.insert(0, {repo!r})
-from meteorspec.background import estimate_background
+from meteorspec.background import bin_frames, estimate_background, refine_background
 from meteorspec.config import find_station_file, load_event, load_station
 from meteorspec.extract import extract_spectra
 from meteorspec.optics import SpectralGeometry
-from meteorspec.track import find_track
+from meteorspec.track import find_track, remeasure_light_curve
 from meteorspec.video import read_raw_frames, read_stack
 
 mode, event_dir, use_tm = sys.argv[1], sys.argv[2], sys.argv[3] == "1"
@@ -80,13 +81,20 @@ else:
     cam = station.camera
     geo = SpectralGeometry.from_station(station)
     orders = [o for o in station.grating.orders if o != 0]
-    bg = estimate_background(stack, camera=cam, seed=0)
+    binned = bin_frames(stack, camera=cam)
+    bg = estimate_background(stack, camera=cam, seed=0, binned=binned)
     t2 = time.perf_counter()
-    tr = find_track(stack, bg, geo, camera=cam, orders=orders, seed=0)
+    tr = find_track(stack, bg, geo, camera=cam, orders=orders, seed=0, binned=binned)
+    del binned
     t3 = time.perf_counter()
+    refined = refine_background(stack, bg, tr, geo, camera=cam, orders=orders) if tr else bg
+    if refined is not bg:
+        bg, tr = refined, remeasure_light_curve(stack, refined, tr)
+    t3r = time.perf_counter()
     fs = extract_spectra(stack, bg, tr, geo, camera=cam, order=orders[0]) if tr else None
     t4 = time.perf_counter()
-    out.update(read_stack_s=t1 - t0, background_s=t2 - t1, track_s=t3 - t2, extract_s=t4 - t3,
+    out.update(read_stack_s=t1 - t0, background_s=t2 - t1, track_s=t3 - t2, refine_s=t3r - t3,
+               extract_s=t4 - t3r,
                total_s=t4 - t0, found=bool(tr), raw_bytes=int(stack.stored.nbytes),
                flags=list(fs.flags) if fs is not None else [])
 out["maxrss_delta_bytes"] = (hwm_kb() - base_kb) * 1024
@@ -137,7 +145,7 @@ def main(argv=None) -> int:
     mb = 1 / 2**20
     print(f"event {event.name}: {dec['n_frames']} frames, raw uint8 {raw * mb:.0f} MiB")
     print(f"bare decode          {dec['decode_s']:7.2f} s   (maxrss +{dec['maxrss_delta_bytes'] * mb:.0f} MiB)")
-    for k in ("read_stack_s", "background_s", "track_s", "extract_s", "total_s"):
+    for k in ("read_stack_s", "background_s", "track_s", "refine_s", "extract_s", "total_s"):
         print(f"{k[:-2]:20s} {pipe[k]:7.2f} s   {pipe[k] / dec['decode_s']:5.2f} x decode")
     print(f"time ratio (read_stack..extract / bare decode): {pipe['total_s'] / dec['decode_s']:.2f} (target <= 1.5)")
     print(f"peak memory, ru_maxrss delta: {pipe['maxrss_delta_bytes'] * mb:.0f} MiB = "

@@ -8,9 +8,11 @@ collected charge (common practice, e.g. Janesick 2007, *Photon Transfer*, SPIE
 PM170), plus the temporal excess of twinkling stars (scintillation), which is
 measured on the star pixels.
 
-Streaming: one pass over all frames builds an 8x8-binned copy (1/64 of the
-data) to choose the meteor-free frames; only those (at most ``max_frames``)
-are then read again at full resolution.
+Streaming: one pass over all frames builds a 4x4-binned copy (1/16 of the
+data, :func:`bin_frames`, shared with the tracker's detection); its 8x8 blocks
+choose the meteor-free frames, and only those (at most ``max_frames``) are then
+read again at full resolution. After tracking, :func:`refine_background`
+re-estimates the pixels the meteor reaches with its light masked frame by frame.
 """
 
 from __future__ import annotations
@@ -23,7 +25,8 @@ from scipy import ndimage
 
 from .config import Camera
 
-__all__ = ["Background", "estimate_background", "bin_rows", "frame_rows", "BIN_PX"]
+__all__ = ["Background", "BinnedFrames", "bin_frames", "estimate_background", "refine_background", "meteor_mask", "bin_rows", "frame_rows",
+           "BIN_PX"]
 
 #: Block size (pixels, both axes, in image coordinates) of the binned copy used for selection and detection.
 BIN_PX = 4
@@ -54,6 +57,61 @@ def bin_rows(img: np.ndarray, by: int, bx: int) -> np.ndarray:
         out += rows[:, j::bx]
     out *= 1.0 / (by * bx)
     return out
+
+
+@dataclass(frozen=True, eq=False)
+class BinnedFrames:
+    """Every frame (or field) of an event as ``BIN_PX`` x ``BIN_PX`` block means, with its frame data.
+
+    One full pass over the video makes it (:func:`bin_frames`); the background's
+    choice of meteor-free frames and the tracker's detection both work on it, so
+    neither needs a full-resolution pass of its own. 1/16 of the linear data.
+
+    Attributes
+    ----------
+    data : list of ndarray, float32
+        Block means of ``BIN_PX`` image rows (``BIN_PX // y_step_px`` field rows)
+        by ``BIN_PX`` columns, one array per frame.
+    time_s, exposure_s : ndarray of float
+    index, y_start_px, y_step_px, n_rows : ndarray of int
+        ``Frame`` attributes (``n_rows``: rows of ``Frame.signal``).
+    """
+
+    data: list
+    time_s: np.ndarray
+    exposure_s: np.ndarray
+    index: np.ndarray
+    y_start_px: np.ndarray
+    y_step_px: np.ndarray
+    n_rows: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.data)
+
+
+def bin_frames(frames, *, camera: Camera) -> BinnedFrames:
+    """One pass over all frames: ``BIN_PX`` x ``BIN_PX`` block means and frame data.
+
+    Raises
+    ------
+    ValueError
+        Frames that do not fit the camera or hold NaN or infinite values.
+    """
+    h, w = camera.height, camera.width
+    stored = getattr(frames, "stored", None)
+    if isinstance(stored, np.ndarray) and stored.ndim == 3 and stored.dtype.kind == "u":
+        return _bin_stored(frames, stored, camera)
+    data, meta = [], []
+    for frame in frames:
+        _check_frame(frame, h, w)
+        by = max(BIN_PX // frame.y_step_px, 1)
+        data.append(bin_rows(frame.signal, by, BIN_PX))
+        meta.append((frame.time_s, frame.exposure_s, frame.index, frame.y_start_px, frame.y_step_px,
+                     frame.signal.shape[0]))
+    cols = list(zip(*meta)) if meta else [()] * 6
+    return BinnedFrames(data=data, time_s=np.array(cols[0], float), exposure_s=np.array(cols[1], float),
+                        index=np.array(cols[2], int), y_start_px=np.array(cols[3], int),
+                        y_step_px=np.array(cols[4], int), n_rows=np.array(cols[5], int))
 
 
 def _robust_sigma(x: np.ndarray, axis=None) -> np.ndarray:
@@ -133,6 +191,28 @@ class Background:
                             np.maximum(level - frame_rows(self.sky_adu, frame), 0.0), 0.0)
             var += (np.float32(self.scintillation) * star) ** 2
         return var.astype(np.float32, copy=False)
+
+    def sample(self, frame, rows: np.ndarray, cols: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Residual, variance and sky-only variance at some pixels of a frame, float32.
+
+        The values of :meth:`residual`, :meth:`variance` (with the frame's residual)
+        and :meth:`variance` with a zero residual at ``frame.signal[rows, cols]``,
+        without computing them for the whole frame.
+        """
+        self._check(frame)
+        y = frame.y_start_px + frame.y_step_px * np.asarray(rows)
+        level = self.level_adu[y, cols]
+        resid = frame.signal[rows, cols] - level
+        inv_gain = np.float32(1.0 / self.gain_e_per_adu)
+        read2 = np.float32(self.read_noise_adu**2)
+        var = np.maximum(level + resid, 0.0) * inv_gain + read2
+        var_sky = np.maximum(level, np.float32(0.0)) * inv_gain + read2
+        if self.scintillation > 0 and self.sky_adu is not None:
+            star = np.where(self.star_mask[y, cols], np.maximum(level - self.sky_adu[y, cols], 0.0), 0.0)
+            extra = (np.float32(self.scintillation) * star) ** 2
+            var, var_sky = var + extra, var_sky + extra
+        return (resid.astype(np.float32, copy=False), var.astype(np.float32, copy=False),
+                var_sky.astype(np.float32, copy=False))
 
     def _check(self, frame) -> None:
         h, w = self.level_adu.shape
@@ -270,7 +350,7 @@ def select_quiet_frames(binned: np.ndarray, *, max_frames: int, min_frames: int 
 
 def estimate_background(frames: Sequence, *, camera: Camera, seed: int | None = None,
                         max_frames: int = 16, clip_sigma: float = 4.0,
-                        star_sigma: float = 5.0) -> Background:
+                        star_sigma: float = 5.0, binned: BinnedFrames | None = None) -> Background:
     """Robust per-pixel background, noise model and star mask of an event.
 
     Parameters
@@ -288,6 +368,9 @@ def estimate_background(frames: Sequence, *, camera: Camera, seed: int | None = 
         Per-pixel temporal clipping threshold, in robust sigma.
     star_sigma : float
         A pixel above the local sky by this many noise sigma is a star pixel.
+    binned : BinnedFrames, optional
+        :func:`bin_frames` of the same frames, when the caller has it (saves the
+        full pass; the tracker uses the same copy).
 
     Returns
     -------
@@ -313,14 +396,17 @@ def estimate_background(frames: Sequence, *, camera: Camera, seed: int | None = 
     if n == 0:
         raise ValueError("no frames to estimate the background from")
     h, w = camera.height, camera.width
-    # ---- pass 1: binned copy of every frame, grouped by field parity (rows differ between fields)
+    # ---- pass 1 (or the caller's): binned copy of every frame, grouped by field parity
+    if binned is None:
+        binned = bin_frames(frames, camera=camera)
+    elif len(binned) != n:
+        raise ValueError(f"binned frames ({len(binned)}) do not match the {n} frames")
     groups: dict[tuple[int, int], list[tuple[int, np.ndarray]]] = {}
-    for pos, frame in enumerate(frames):
-        _check_frame(frame, h, w)
+    f = _SELECT_BIN_PX // BIN_PX
+    for pos, b in enumerate(binned.data):
         # 8x8 blocks: 1/64 of the data, enough to see a meteor light up many blocks
-        by = max(_SELECT_BIN_PX // frame.y_step_px, 1)
-        groups.setdefault((frame.y_start_px, frame.y_step_px), []).append(
-            (pos, bin_rows(frame.signal, by, _SELECT_BIN_PX)))
+        groups.setdefault((int(binned.y_start_px[pos]), int(binned.y_step_px[pos])), []).append(
+            (pos, bin_rows(b, f, f)))
     # ---- choose quiet frames per parity, then pass 2 over them at full resolution
     level = np.zeros((h, w), np.float32)
     var = np.zeros((h, w), np.float32)
@@ -333,10 +419,15 @@ def estimate_background(frames: Sequence, *, camera: Camera, seed: int | None = 
         positions = np.array([p for p, _ in items])
         chosen = positions[select_quiet_frames(stack, max_frames=per_group)]
         del stack
-        full = [frames[int(p)] for p in chosen]
-        used.extend(int(f.index) for f in full)
+        items.clear()  # the 8x8 copies are no longer needed
+        full = []  # signals only: the saturation masks are not used here
+        for p in chosen:
+            f = frames[int(p)]
+            used.append(int(f.index))
+            full.append(f.signal)
+            del f
         dof.append(len(full) - 1)
-        lv, vr = _clipped_stats([f.signal for f in full], clip_sigma)
+        lv, vr = _clipped_stats(full, clip_sigma)
         del full
         rows = np.arange(y0, h, step)[: lv.shape[0]]
         level[rows] = lv
@@ -349,12 +440,19 @@ def estimate_background(frames: Sequence, *, camera: Camera, seed: int | None = 
         nearest = src[np.clip(np.searchsorted(src, missing), 0, src.size - 1)]
         level[missing], var[missing] = level[nearest], var[nearest]
 
+    return _model_from_stats(level, var, camera, dof=min(dof), star_sigma=star_sigma,
+                             frames_used=np.array(sorted(used), dtype=int))
+
+
+def _model_from_stats(level: np.ndarray, var: np.ndarray, camera: Camera, *, dof: int, star_sigma: float,
+                      frames_used: np.ndarray) -> Background:
+    """Noise model, star mask and scintillation from per-pixel temporal level and variance."""
     sky = _smooth_sky(level)
     # a first star mask from the level alone (variance model not known yet): 5 x local robust scatter
     excess = level - sky
     prelim_star = excess > star_sigma * np.sqrt(np.maximum(_smooth_sky(var), 1e-6))
     quiet_px = ~ndimage.binary_dilation(prelim_star, iterations=2)
-    read, gain, read_est, gain_est = _fit_photon_transfer(level[quiet_px], var[quiet_px], camera, dof=min(dof))
+    read, gain, read_est, gain_est = _fit_photon_transfer(level[quiet_px], var[quiet_px], camera, dof=dof)
 
     model = _model_var(level, read, gain).astype(np.float32)
     star = excess > star_sigma * np.sqrt(_model_var(sky, read, gain))
@@ -372,7 +470,7 @@ def estimate_background(frames: Sequence, *, camera: Camera, seed: int | None = 
         noise_var += np.where(star_mask, (scint * np.maximum(excess, 0.0)) ** 2, 0.0).astype(np.float32)
     return Background(level_adu=level, noise_adu=np.sqrt(noise_var).astype(np.float32),
                       read_noise_adu=read, gain_e_per_adu=gain, star_mask=star_mask,
-                      frames_used=np.array(sorted(used), dtype=int), scintillation=scint,
+                      frames_used=frames_used, scintillation=scint,
                       sky_adu=sky, gain_estimated=gain_est, read_noise_estimated=read_est)
 
 
@@ -450,3 +548,301 @@ def _interp_matrix(n: int, nb: int, block: int) -> np.ndarray:
     if nb > 1:
         mat[np.arange(n), lo + 1] += f
     return mat
+
+
+# --------------------------------------------------------------------------- meteor-free refinement
+
+# Wavelengths (nm) whose first-order light is masked: beyond the 350-900 nm the tool extracts, so
+# that the band's ends (and the N2/O I light around them) stay out of the background (common practice:
+# meteor spectra show lines from Ca II 393 nm to O I 845 nm).
+_MASK_NM = (330.0, 950.0)
+
+
+def meteor_mask(frame, track, geometry, *, orders: Sequence[int] = (1,), height: int, width: int,
+                zeroth_radius_px: float = 10.0, band_radius_px: float = 9.0) -> np.ndarray:
+    """Pixels of one frame (full-frame ``(height, width)``) that the meteor may light during its exposure.
+
+    The zeroth-order streak (the track's position over the exposure) and, for each
+    diffraction order, the band swept by the spectrum curve of every point of the
+    streak (330-950 nm), each widened by a square of the given half-size. Frames
+    up to two exposures outside the track's luminous span are covered too (a
+    faint start or end the tracker did not see); the trajectory is extrapolated there.
+
+    Returns an all-False mask when the frame is far from the luminous span.
+    """
+    mask = np.zeros((height, width), bool)
+    traj = getattr(track, "trajectory", None)
+    lum = np.asarray(track.luminous) if hasattr(track, "luminous") else np.isfinite(track.x_px)
+    if traj is None or not lum.any():
+        return mask
+    t_lum = np.asarray(track.time_s, float)[lum]
+    t0 = frame.time_s - 0.5 * frame.exposure_s
+    t1 = frame.time_s + 0.5 * frame.exposure_s
+    margin = 2.0 * frame.exposure_s
+    if t1 < t_lum.min() - margin or t0 > t_lum.max() + margin:
+        return mask
+    xa, ya = (float(v) for v in traj.pixel(t0))
+    xb, yb = (float(v) for v in traj.pixel(t1))
+    if not np.all(np.isfinite([xa, ya, xb, yb])):
+        return mask
+    # sub-positions along the streak no further apart than the band radius: the squares overlap
+    n_sub = int(np.ceil(np.hypot(xb - xa, yb - ya) / max(0.8 * band_radius_px, 1.0))) + 1
+    f = np.linspace(0.0, 1.0, n_sub)
+    sx, sy = xa + f * (xb - xa), ya + f * (yb - ya)
+    _paint(mask, sx, sy, zeroth_radius_px)
+    lam = np.arange(_MASK_NM[0], _MASK_NM[1], 2.0)
+    for m in orders:
+        if m == 0:
+            continue
+        cx, cy = geometry.spectrum_pixel(sx[:, None], sy[:, None], lam[None, :], m)
+        ok = np.isfinite(cx) & np.isfinite(cy)
+        cx, cy = cx[ok], cy[ok]
+        if cx.size == 0:
+            continue
+        # thin to about one point per pixel before painting
+        key = np.unique(np.rint(cy).astype(np.int64) * (4 * width + 1) + np.rint(cx).astype(np.int64))
+        iy, ix = np.divmod(key + 2 * width, 4 * width + 1)
+        _paint(mask, ix - 2 * width, iy, band_radius_px)
+    return mask
+
+
+def _paint(mask: np.ndarray, x: np.ndarray, y: np.ndarray, radius: float) -> None:
+    """Set squares of half-size ``radius`` around points (x, y) in ``mask`` (clipped to it)."""
+    h, w = mask.shape
+    r = int(np.ceil(radius))
+    ix = np.rint(np.asarray(x, float)).astype(np.int64)
+    iy = np.rint(np.asarray(y, float)).astype(np.int64)
+    keep = (ix >= -r) & (ix < w + r) & (iy >= -r) & (iy < h + r)
+    if not keep.any():
+        return
+    ix, iy = ix[keep], iy[keep]
+    # rows of points: mark the columns hit, then spread along x and y by cumulative sums
+    x_lo, x_hi = max(int(ix.min()) - r, 0), min(int(ix.max()) + r + 1, w)
+    y_lo, y_hi = max(int(iy.min()) - r, 0), min(int(iy.max()) + r + 1, h)
+    bw, bh = x_hi - x_lo, y_hi - y_lo
+    if bw <= 0 or bh <= 0:
+        return
+    seed = np.zeros((bh + 2 * r + 1, bw + 2 * r + 1), np.int32)
+    np.add.at(seed, (iy - y_lo + r, ix - x_lo + r), 1)
+    # box filter of size 2r+1 along both axes via cumulative sums (exact, O(area))
+    k = 2 * r + 1
+    c = np.cumsum(seed, axis=0)
+    c[k:] = c[k:] - c[:-k]
+    c = np.cumsum(c, axis=1)
+    c[:, k:] = c[:, k:] - c[:, :-k]
+    # c[i, j] counts seeds in rows i-2r..i and cols j-2r..j: pixel (y, x) sits at i = y - y_lo + 2r
+    mask[y_lo:y_hi, x_lo:x_hi] |= c[2 * r:2 * r + bh, 2 * r:2 * r + bw] > 0
+
+
+def refine_background(frames: Sequence, background: Background, track, geometry, *, camera: Camera,
+                      orders: Sequence[int] = (1,), max_frames: int = 24, clip_sigma: float = 4.0,
+                      star_sigma: float = 5.0, min_samples: int = 3) -> Background:
+    """Background re-estimated with the meteor's light excluded frame by frame.
+
+    Parameters
+    ----------
+    frames : sequence of Frame
+        The event's frames (fields), as given to :func:`estimate_background`.
+    background : Background
+        The first estimate (its ``frames_used`` are read again).
+    track : Track
+        The zeroth-order track (``trajectory``, ``time_s``, ``luminous``); a falsy
+        track returns ``background`` unchanged.
+    geometry : SpectralGeometry
+        Where each order's spectrum of a zeroth-order position lies.
+    camera : Camera
+    orders : sequence of int
+        Diffraction orders recorded on the sensor.
+    max_frames : int
+        Frames per field parity read, spread evenly over the clip, besides the
+        first estimate's frames.
+    min_samples : int
+        Fewest meteor-free samples a pixel needs to be re-estimated; pixels with
+        fewer keep the first estimate.
+
+    Returns
+    -------
+    Background
+
+    Notes
+    -----
+    A faint meteor lit in most frames leaves no meteor-free frame to choose, and
+    a per-pixel clip at 4 sigma cannot reject light at 1-3 sigma: the first
+    estimate then holds part of the meteor, which the extraction subtracts from
+    the spectrum. The track and the grating geometry say where the meteor's
+    light is in each frame (:func:`meteor_mask`); every pixel the meteor reaches
+    in a read frame is re-estimated from the read frames in which it is dark,
+    with the same clipped temporal statistics. Only those pixels are touched,
+    so a frame read here costs its linearisation and a gather.
+    """
+    if not track or getattr(track, "trajectory", None) is None:
+        return background
+    n = len(frames)
+    h, w = camera.height, camera.width
+    times = np.asarray(track.time_s, float)
+    used = set(int(i) for i in background.frames_used)
+    index_of = np.asarray(getattr(track, "frame_index", np.arange(n)), int)
+    pos_used = [p for p in range(min(n, index_of.size)) if int(index_of[p]) in used]
+    # the first estimate's frames all far from the meteor: that estimate is already meteor-free
+    # (the usual case for a long clip); deciding this reads no frame
+    if not any(meteor_mask(_FrameTimes(float(times[p]), float(track.exposure_s)), track, geometry,
+                           orders=orders, height=h, width=w).any() for p in pos_used):
+        return background
+    # positions: first estimate's frames plus an even spread over the clip
+    n_par = 2 if camera.interlaced else 1
+    per_parity = max(max_frames // n_par, min_samples + 2)
+    spread = np.unique(np.round(np.linspace(0, n - 1, min(n, per_parity * n_par))).astype(int))
+    chosen = sorted(set(spread.tolist()) | set(pos_used))
+    first_row = 0 if camera.field_order == "top" else 1
+
+    def parity(p: int) -> tuple[int, int]:
+        # rows of frame position p, as the video reader splits fields (contract section 1)
+        if not camera.interlaced:
+            return (0, 1)
+        return (first_row if p % 2 == 0 else 1 - first_row, 2)
+
+    # ---- masks of the chosen frames (from the track alone), and their union per parity
+    masks: dict[int, np.ndarray] = {}
+    union: dict[tuple[int, int], np.ndarray] = {}
+    by_parity: dict[tuple[int, int], list[int]] = {}
+    for p in chosen:
+        key = parity(p)
+        by_parity.setdefault(key, []).append(p)
+        m = meteor_mask(_FrameTimes(float(times[p]), float(track.exposure_s)), track, geometry,
+                        orders=orders, height=h, width=w)[key[0]::key[1]]
+        if m.any():
+            masks[p] = m
+            union[key] = m.copy() if key not in union else (union[key] | m)
+    del times
+    if not union:
+        return background
+    level = background.level_adu.copy()
+    var = np.square(background.noise_adu, dtype=np.float32)  # replaced below where re-estimated
+    # the stored temporal variance is not kept; the refit needs a per-pixel variance: use the model's
+    # noise where nothing changes (it is what the fit sees at those pixels anyway)
+    var_changed = np.zeros((h, w), bool)
+    for key, pos_list in by_parity.items():
+        if key not in union:
+            continue
+        y0, step = key
+        rr, cc = np.nonzero(union[key])
+        samples = np.empty((len(pos_list), rr.size), np.float32)
+        for i, p in enumerate(pos_list):
+            f = frames[p]
+            if (f.y_start_px, f.y_step_px) != key or f.signal.shape[0] != union[key].shape[0]:
+                raise ValueError(f"frame {f.index} does not have the rows of field parity {key}")
+            samples[i] = f.signal[rr, cc]
+            if p in masks:
+                samples[i][masks[p][rr, cc]] = np.nan
+        lv, vr, cnt = _clipped_stats_masked(samples, clip_sigma)
+        ok = cnt >= min_samples
+        yy = y0 + step * rr[ok]
+        level[yy, cc[ok]] = lv[ok]
+        var[yy, cc[ok]] = vr[ok]
+        var_changed[yy, cc[ok]] = True
+    # noise and star mask where the level changed: the first estimate's read noise, gain and
+    # scintillation (fitted over the whole frame, hardly touched by the meteor) on the new level
+    read, gain, scint = background.read_noise_adu, background.gain_e_per_adu, background.scintillation
+    sky = _smooth_sky(level)
+    excess = level - sky
+    model = _model_var(level, read, gain).astype(np.float32)
+    star = excess > star_sigma * np.sqrt(_model_var(sky, read, gain))
+    twinkle = var_changed & (var > 3.0 * model)
+    new_star = ndimage.binary_dilation(star | (twinkle & ndimage.binary_dilation(star, iterations=3)),
+                                       iterations=1)
+    near = ndimage.binary_dilation(var_changed, iterations=2)
+    star_mask = np.where(near, new_star, background.star_mask)
+    noise_var = model
+    if scint > 0:
+        noise_var = noise_var + np.where(star_mask, (scint * np.maximum(excess, 0.0)) ** 2, 0.0).astype(np.float32)
+    noise = np.where(var_changed, np.sqrt(noise_var), background.noise_adu).astype(np.float32)
+    return Background(level_adu=level, noise_adu=noise, read_noise_adu=read, gain_e_per_adu=gain,
+                      star_mask=star_mask, frames_used=background.frames_used, scintillation=scint,
+                      sky_adu=sky, gain_estimated=background.gain_estimated,
+                      read_noise_estimated=background.read_noise_estimated)
+
+
+def _bin_stored(stack, stored: np.ndarray, camera: Camera) -> BinnedFrames:
+    """:func:`bin_frames` of a decoded stack of stored integer values (``FrameStack``), faster.
+
+    A linear camera (``gamma = 1``) needs no lookup: the block mean of
+    ``stored - black`` is the block mean of the stored values minus the black
+    level whenever no value of the frame lies below black (the usual case; else
+    the frame goes through the lookup table like any other). Otherwise the
+    stored values are linearised through a table of all possible values; the
+    saturation mask is not needed here. Fields are split as the video reader
+    does (contract section 1: ``field_order = "top"``: even rows first).
+    """
+    h, w = camera.height, camera.width
+    n_stored = stored.shape[0]
+    if stored.shape[1:] != (h, w):
+        raise ValueError(f"stored frames are {stored.shape[2]}x{stored.shape[1]}; the camera is {w}x{h}")
+    from .video import linearize  # the one definition of the pixel-value transfer (contract section 3)
+
+    lut = linearize(np.arange(2 ** (8 * stored.dtype.itemsize)), camera)[0]
+    black = camera.black_level_adu
+    linear = camera.gamma == 1.0
+    fpf = 2 if camera.interlaced else 1
+    if fpf == 2:
+        first_row = 0 if camera.field_order == "top" else 1
+        starts = (first_row, 1 - first_row)
+    else:
+        starts = (0,)
+    step = fpf
+    by = max(BIN_PX // step, 1)
+    data = []
+    meta = []
+    fps = float(stack.fps)
+    for k in range(n_stored):
+        raw = stored[k]
+        for half, y0 in enumerate(starts):
+            rows = raw[y0::step]
+            if linear and int(rows.min()) >= black:
+                b = bin_rows(rows, by, BIN_PX)
+                b -= np.float32(black)
+            else:
+                b = bin_rows(np.take(lut, rows), by, BIN_PX)
+            data.append(b)
+            j = fpf * k + half
+            meta.append(((j + 0.5) / (fpf * fps), 1.0 / (fpf * fps), j, y0, step, rows.shape[0]))
+    cols = list(zip(*meta))
+    return BinnedFrames(data=data, time_s=np.array(cols[0], float), exposure_s=np.array(cols[1], float),
+                        index=np.array(cols[2], int), y_start_px=np.array(cols[3], int),
+                        y_step_px=np.array(cols[4], int), n_rows=np.array(cols[5], int))
+
+
+@dataclass(frozen=True)
+class _FrameTimes:
+    """Exposure of a frame without its pixels (for :func:`meteor_mask`)."""
+
+    time_s: float
+    exposure_s: float
+
+
+def _clipped_stats_masked(d: np.ndarray, clip_sigma: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-column sigma-clipped mean, variance and sample count of ``d`` (samples, n) with NaN = absent.
+
+    As :func:`_clipped_stats`, with a count of its own per column: NaN sort to the
+    end, so the order statistics of column ``j`` are rows ``0 .. count_j - 1``.
+    """
+    s = np.sort(d, axis=0)
+    cnt = np.count_nonzero(np.isfinite(s), axis=0)
+    cols = np.arange(s.shape[1])
+
+    def stat(q: float) -> np.ndarray:
+        pos = np.clip((cnt - 1) * q, 0.0, None)
+        lo = np.floor(pos).astype(int)
+        hi = np.minimum(lo + 1, np.maximum(cnt - 1, 0))
+        f = (pos - lo).astype(np.float32)
+        return s[lo, cols] * (1 - f) + s[hi, cols] * f
+
+    med = stat(0.5)
+    sig = (stat(0.75) - stat(0.25)) * np.float32(1.0 / 1.349)
+    lim = clip_sigma * np.maximum(sig, np.float32(0.3))
+    with np.errstate(invalid="ignore"):
+        keep = np.isfinite(s) & (np.abs(s - med) <= lim)
+    k = np.maximum(keep.sum(axis=0), 1).astype(np.float32)
+    m = np.where(keep, s, np.float32(0.0)).sum(axis=0) / k
+    dev = np.where(keep, s - m, np.float32(0.0))
+    v = (dev * dev).sum(axis=0) / np.maximum(k - 1, 1)
+    return m, v, cnt

@@ -132,10 +132,11 @@ class FrameSpectra:
         Middle of each exposure.
     flags : tuple of str
     frame_weight : ndarray of shape (n_frames,)
-        Relative brightness of each frame (the track's zeroth-order flux where
-        known, otherwise the frame's fit to the mean spectrum of the frames of
-        known weight over its unmasked bins); used by :meth:`whole_flight` to
-        account for masked samples.
+        Relative brightness of each frame: a rank-1 fit of the frames' unmasked
+        bins to one mean spectrum, started (and scaled) by the track's
+        zeroth-order flux; used by :meth:`whole_flight` to account for masked
+        samples. NaN for a lit frame whose every bin was lost to saturation
+        (its share is unknown); 0 for frames not lit or entirely off the sensor.
     optimal : bool
         Whether profile-weighted (Horne 1986) extraction was used.
     profile_offset_px, profile : ndarray
@@ -194,6 +195,11 @@ class FrameSpectra:
         else:
             cover = good.any(axis=0).astype(float)
         ok = (cover >= min_coverage) & good.any(axis=0)
+        # a frame of unknown weight (NaN: lit, but every bin lost to saturation) makes the share
+        # of the bins it lost unknown
+        unknown = ~np.isfinite(self.frame_weight)
+        if unknown.any():
+            ok &= ~self.mask[unknown].any(axis=0)
         with np.errstate(invalid="ignore", divide="ignore"):
             flux = np.where(ok, flux / cover, np.nan)
             err = np.where(ok, np.sqrt(var) / cover, np.nan)
@@ -443,10 +449,12 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
     Parameters
     ----------
     frames : iterable of Frame
-        Frames or fields in time order; streamed (each used once).
+        Frames or fields in time order, each used once. A sequence (``len()`` and
+        indexing) with one frame per track entry is read only where the track is
+        luminous; any other iterable is streamed in full.
     background : Background
-        ``residual(frame)``, ``variance(frame, residual)``, ``star_mask``,
-        ``gain_e_per_adu``.
+        ``sample(frame, rows, cols)`` (or ``residual(frame)`` and
+        ``variance(frame, residual)``), ``star_mask``, ``gain_e_per_adu``.
     track : Track
         Zeroth-order path: ``time_s``, ``x_px``/``y_px`` (NaN where not
         luminous), ``flux_adu``, ``position(time_s)``.
@@ -511,7 +519,19 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
     lam_step = None
     zeros_cache: dict[tuple[int, int], np.ndarray] = {}
 
-    for k, frame in enumerate(frames):
+    # a sequence of the track's length is read only where the track is luminous (each read of a
+    # FrameStack linearises a whole frame); any other iterable is streamed in full
+    t_track = np.asarray(track.time_s, dtype=float)
+    if hasattr(frames, "__getitem__") and hasattr(frames, "__len__") and len(frames) == t_track.size:
+        lit = np.isfinite(x_track) & np.isfinite(y_track)
+        frame_iter: Iterable[Any] = (frames[k] if lit[k] else None for k in range(t_track.size))
+    else:
+        frame_iter = frames
+    for k, frame in enumerate(frame_iter):
+        if frame is None:
+            times.append(float(t_track[k]))
+            weights.append(0.0)
+            continue
         times.append(float(frame.time_s))
         i = _track_index(track, frame.time_s, frame.exposure_s) if n_wl else None
         if i is None or not (np.isfinite(x_track[i]) and np.isfinite(y_track[i])):
@@ -543,13 +563,6 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
         rows = (py - frame.y_start_px) // frame.y_step_px
         off_sensor = (px < 0) | (px >= w) | (py < 0) | (py >= h) | (rows < 0) | (rows >= frame.signal.shape[0])
         on = ~off_sensor
-        resid = np.asarray(background.residual(frame), dtype=np.float32)
-        var_full = np.asarray(background.variance(frame, resid), dtype=np.float32)
-        zkey = resid.shape
-        if zkey not in zeros_cache:
-            zeros_cache.clear()
-            zeros_cache[zkey] = np.zeros(zkey, dtype=np.float32)
-        var_sky_full = np.asarray(background.variance(frame, zeros_cache[zkey]), dtype=np.float32)
         n = px.size
         data = np.zeros(n)
         var = np.zeros(n)
@@ -557,9 +570,20 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
         sat = np.zeros(n, dtype=bool)
         star = np.zeros(n, dtype=bool)
         r_on, x_on = rows[on], px[on]
-        data[on] = resid[r_on, x_on]
-        var[on] = var_full[r_on, x_on]
-        var_sky[on] = var_sky_full[r_on, x_on]
+        if hasattr(background, "sample"):
+            # only the band's pixels: a whole-frame residual and two variances cost far more
+            data[on], var[on], var_sky[on] = background.sample(frame, r_on, x_on)
+        else:
+            resid = np.asarray(background.residual(frame), dtype=np.float32)
+            var_full = np.asarray(background.variance(frame, resid), dtype=np.float32)
+            zkey = resid.shape
+            if zkey not in zeros_cache:
+                zeros_cache.clear()
+                zeros_cache[zkey] = np.zeros(zkey, dtype=np.float32)
+            var_sky_full = np.asarray(background.variance(frame, zeros_cache[zkey]), dtype=np.float32)
+            data[on] = resid[r_on, x_on]
+            var[on] = var_full[r_on, x_on]
+            var_sky[on] = var_sky_full[r_on, x_on]
         sat[on] = frame.saturated[r_on, x_on]
         if star_mask is not None:
             star[on] = np.asarray(star_mask)[py[on], x_on]
@@ -623,7 +647,17 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
         mask[fidx] = ~ok
 
     # frames whose track flux is unknown take their extracted total as weight
-    _fill_weights(frame_weight, flux, mask, widths)
+    frame_sat = np.zeros(n_frames, bool)
+    for fidx, (present, _, _) in lost_share.items():
+        frame_sat[fidx] = bool(np.any(present & (sat_share[fidx] > _SAT_SHARE)))
+    measured = np.isfinite(frame_weight)
+    _fill_weights(frame_weight, flux, mask, widths, frame_sat)
+    # then the weights of frames without a zeroth-order flux from a rank-1 fit of all the spectra
+    # bins scaled up for lost pixels carry the profile model's approximation: left out of this fit
+    rescaled = np.zeros((n_frames, n_wl), bool)
+    for fidx, (present, lost, _) in lost_share.items():
+        rescaled[fidx] = present & (lost > 1e-3)
+    _spectral_weights(frame_weight, flux, variance, mask | rescaled, widths, fixed=measured)
     snr_total = _total_snr(FrameSpectra(centres, widths, flux, variance, mask, time_s, (), frame_weight))
     use_optimal = (snr_total < optimal_snr_threshold) if optimal is None else bool(optimal)
     if use_optimal:
@@ -652,7 +686,8 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
                         use_optimal, prof_x, prof)
 
 
-def _fill_weights(weight: np.ndarray, flux: np.ndarray, mask: np.ndarray, widths: np.ndarray) -> None:
+def _fill_weights(weight: np.ndarray, flux: np.ndarray, mask: np.ndarray, widths: np.ndarray,
+                  saturated: np.ndarray | None = None) -> None:
     """Replace unknown (NaN) frame weights, in place, by a fit of the frame to the flight's mean spectrum.
 
     The tracker gives no zeroth-order flux where that order is saturated or cut
@@ -679,7 +714,10 @@ def _fill_weights(weight: np.ndarray, flux: np.ndarray, mask: np.ndarray, widths
             template = np.where(wk.sum(axis=0) > 0, energy[known].sum(axis=0) / wk.sum(axis=0), np.nan)
     for k in np.flatnonzero(unknown):
         if not good[k].any():
-            weight[k] = 0.0
+            # nothing measured: a frame lost to saturation was bright, its share is unknown (NaN, and
+            # :meth:`FrameSpectra.whole_flight` masks the bins it lost); one whose spectrum left the
+            # sensor is left out (weight 0: the whole-flight spectrum covers the frames seen)
+            weight[k] = np.nan if saturated is not None and saturated[k] else 0.0
             continue
         if template is not None:
             use = good[k] & np.isfinite(template)
@@ -690,6 +728,58 @@ def _fill_weights(weight: np.ndarray, flux: np.ndarray, mask: np.ndarray, widths
         lum = good.any(axis=1)
         common = good[lum].all(axis=0)
         weight[k] = max(float(np.sum(energy[k, common] if common.any() else energy[k])), 0.0)
+
+
+def _spectral_weights(weight: np.ndarray, flux: np.ndarray, variance: np.ndarray, mask: np.ndarray,
+                      widths: np.ndarray, *, fixed: np.ndarray | None = None, n_iter: int = 50) -> None:
+    """Frame weights, in place, from a rank-1 fit of the per-frame spectra: ``E[k, j] ~ w_k T_j``.
+
+    The whole-flight coverage (:meth:`FrameSpectra.whole_flight`) needs each
+    frame's share of the flight's light. The zeroth-order aperture sum is a poor
+    measure of it exactly where it matters: it is missing where that order is
+    saturated or cut by the sensor edge, and in a faint frame it is a handful of
+    noisy pixels. The first-order spectrum carries far more light, so every frame
+    with unmasked bins and without a ``fixed`` (measured) weight gets the weight
+    that best explains its unmasked bins as a multiple of one mean spectrum
+    ``T``, found by alternating least squares over all frames (unweighted, so
+    that the bright bins decide, as they decide the coverage correction; exact
+    for a spectrum of constant shape, which that correction assumes anyway). ``T`` is estimated from every frame, so a
+    frame's weight rests on the whole flight's spectrum rather than on the few
+    frames whose zeroth order was measured. The incoming weights start the
+    iteration; the fixed ones (or, without any, the total) set the scale.
+    Frames without unmasked bins keep theirs.
+    """
+    good = ~mask & np.isfinite(flux) & np.isfinite(variance) & (variance > 0)
+    rows = good.any(axis=1) & np.isfinite(weight)
+    if np.count_nonzero(rows) < 2:
+        return
+    e = np.where(good, flux, 0.0)[rows] * widths
+    # plain least squares on the energies: the bright bins (lines, strong continuum) decide, as
+    # they do the coverage correction; 1/variance weights would hand the fit to the faint bins
+    iv = good[rows].astype(float)
+    w = np.clip(weight[rows], 0.0, None).astype(float)
+    keep = np.zeros(w.size, bool) if fixed is None else np.asarray(fixed, bool)[rows]
+    if keep.all():
+        return
+    scale = float(w.sum())
+    if not scale > 0:
+        return
+    for _ in range(n_iter):
+        den_t = (iv * w[:, None] ** 2).sum(axis=0)
+        t = np.where(den_t > 0, (iv * w[:, None] * e).sum(axis=0) / np.where(den_t > 0, den_t, 1.0), 0.0)
+        den_w = (iv * t[None, :] ** 2).sum(axis=1)
+        w_new = np.where(den_w > 0, (iv * t[None, :] * e).sum(axis=1) / np.where(den_w > 0, den_w, 1.0), w)
+        w_new = np.where(keep, w, np.clip(w_new, 0.0, None))
+        if not keep.any():
+            total = float(w_new.sum())
+            if not total > 0:
+                return
+            w_new *= scale / total
+        done = np.allclose(w_new, w, rtol=1e-6, atol=1e-12 * scale)
+        w = w_new
+        if done:
+            break
+    weight[rows] = w
 
 
 def _total_snr(fs: FrameSpectra) -> float:

@@ -43,16 +43,17 @@ Returns an empty, falsy :class:`Track` with the reason when no meteor is found.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from .background import BIN_PX, Background, bin_rows, frame_rows
+from .background import BIN_PX, Background, BinnedFrames, bin_frames, bin_rows, frame_rows
 from .config import Camera
 from .optics import LensModel, SpectralGeometry
 
-__all__ = ["Track", "GreatCircle", "find_track", "STATUSES", "FLAGS"]
+__all__ = ["Track", "GreatCircle", "find_track", "remeasure_light_curve", "STATUSES", "FLAGS"]
 
 STATUSES = ("measured", "saturated", "off_frame", "from_spectrum", "interpolated", "absent")
 FLAGS = ("saturated", "zeroth_order_off_frame", "motion_parallel_to_dispersion", "low_snr",
@@ -216,12 +217,13 @@ def _empty_track(times, index, exposure, reason: str) -> Track:
 class _BinnedModel:
     """Binned background level and 2x2-box noise of one field parity, built on first use."""
 
-    def __init__(self, background: Background, frame):
-        by = max(BIN_PX // frame.y_step_px, 1)
+    def __init__(self, background: Background, y_start_px: int, y_step_px: int, n_rows: int):
+        by = max(BIN_PX // y_step_px, 1)
         self.by, self.bx = by, BIN_PX
-        self.y0, self.step = frame.y_start_px, frame.y_step_px
-        level = frame_rows(background.level_adu, frame)
-        var = frame_rows(background.noise_adu, frame).astype(np.float32) ** 2
+        self.y0, self.step = y_start_px, y_step_px
+        rows = slice(y_start_px, None, y_step_px)
+        level = background.level_adu[rows][:n_rows]
+        var = background.noise_adu[rows][:n_rows].astype(np.float32) ** 2
         self.level = bin_rows(level, by, BIN_PX)
         vb = bin_rows(var, by, BIN_PX) / (by * BIN_PX)  # variance of a block mean
         self.noise2 = np.sqrt(_box2(vb) / 4.0)            # of the mean of 2x2 block means
@@ -567,14 +569,15 @@ def _poly_predict(t, x, y, t_new, deg=2):
 
 def find_track(frames: Sequence, background: Background, geometry: SpectralGeometry, *, camera: Camera,
                orders: Sequence[int] = (1,), detect_sigma: float = 5.0, max_candidates: int = 24,
-               psf_sigma_px: float | None = None, seed: int | None = 0) -> Track:
+               psf_sigma_px: float | None = None, seed: int | None = 0,
+               binned: BinnedFrames | None = None) -> Track:
     """Detect the meteor's zeroth order in every frame and fit its trajectory.
 
     Parameters
     ----------
     frames : sequence of Frame
         Every frame (or field) of the event, in time order; ``len()`` and
-        indexing are used. Iterated once in full; the luminous frames are then
+        indexing are used. Iterated once in full (unless ``binned`` is given); the luminous frames are then
         read once more by index (a frame whose zeroth order is not seen may be
         read a third time for the spectrum search).
     background : Background
@@ -594,6 +597,9 @@ def find_track(frames: Sequence, background: Background, geometry: SpectralGeome
         aperture (3 sigma); default 1.3 px, typical of meteor video (from memory).
     seed : int, optional
         Seed of the RANSAC sampling (deterministic by default).
+    binned : BinnedFrames, optional
+        :func:`~meteorspec.background.bin_frames` of the same frames (the one the
+        background was built from); saves the full pass over the frames.
 
     Returns
     -------
@@ -617,19 +623,27 @@ def find_track(frames: Sequence, background: Background, geometry: SpectralGeome
     models: dict[tuple[int, int, int], _BinnedModel] = {}
     wl = np.linspace(*_SPECTRUM_NM, 48)
     c_pos, c_x, c_y, c_snr, c_sup = [], [], [], [], []
-    # ---------------- pass 1: binned detection in every frame
-    for pos, frame in enumerate(frames):
-        times[pos], index[pos], exposure = frame.time_s, frame.index, frame.exposure_s
-        key = (frame.y_start_px, frame.y_step_px, frame.signal.shape[0])
+    # ---------------- pass 1: binned detection in every frame (the background's binned copy if given)
+    if binned is None:
+        binned = bin_frames(frames, camera=camera)
+    elif len(binned) != n:
+        raise ValueError(f"binned frames ({len(binned)}) do not match the {n} frames")
+    h_bg, w_bg = background.shape
+    for pos in range(n):
+        times[pos], index[pos], exposure = binned.time_s[pos], binned.index[pos], binned.exposure_s[pos]
+        key = (int(binned.y_start_px[pos]), int(binned.y_step_px[pos]), int(binned.n_rows[pos]))
         model = models.get(key)
         if model is None:
-            background._check(frame)
-            model = models[key] = _BinnedModel(background, frame)
-        binned = bin_rows(frame.signal, model.by, model.bx)
-        if not np.isfinite(binned.sum(dtype=np.float64)):
-            raise ValueError(f"frame {frame.index} holds NaN or infinite values")
-        binned -= model.level
-        snr = _box2(binned) / (4.0 * model.noise2)
+            last_row = key[0] + key[1] * (key[2] - 1)
+            if key[0] < 0 or last_row >= h_bg or w_bg != width:
+                raise ValueError(f"frame {index[pos]} ({key[2]} rows from y={key[0]} step {key[1]}) does "
+                                 f"not fit the {w_bg}x{h_bg} background")
+            model = models[key] = _BinnedModel(background, *key)
+        binned_frame = binned.data[pos]
+        if not np.isfinite(binned_frame.sum(dtype=np.float64)):
+            raise ValueError(f"frame {index[pos]} holds NaN or infinite values")
+        resid = binned_frame - model.level
+        snr = _box2(resid) / (4.0 * model.noise2)
         i, j = _local_maxima(snr, detect_sigma, max_candidates)
         if i.size == 0:
             continue
@@ -947,3 +961,49 @@ def _locate_from_spectrum(frames, background, geometry, gc, orders, times, expos
             misses = 0 if try_frame(p) else misses + 1
             p += direction
     return found
+
+
+def remeasure_light_curve(frames: Sequence, background: Background, track: Track) -> Track:
+    """The track with its light curve measured again against another background model.
+
+    Parameters
+    ----------
+    frames : sequence of Frame
+        The frames the track was found in (same order); only the frames with a
+        measured, unsaturated zeroth order are read.
+    background : Background
+        Typically :func:`~meteorspec.background.refine_background` of the track.
+    track : Track
+
+    Returns
+    -------
+    Track
+        Same positions, statuses and trajectory; ``flux_adu``, ``flux_err_adu``
+        and ``snr`` re-measured with the same aperture at the track's measured
+        centroids. A falsy track is returned unchanged.
+
+    Notes
+    -----
+    The first background of a faint meteor lit in most frames holds part of its
+    light, so the aperture sums (the light curve the extraction uses as frame
+    weights) come out low by a different amount in every frame.
+    """
+    if not track:
+        return track
+    psf = track.psf_sigma_px if np.isfinite(track.psf_sigma_px) else 1.3
+    window = max(1.5 * psf, 1.5)
+    aperture = max(3.0 * psf, 3.0)
+    height, width = background.shape
+    flux = track.flux_adu.copy()
+    flux_err = track.flux_err_adu.copy()
+    snr = track.snr.copy()
+    h = 0.5 * track.exposure_s
+    for p in np.flatnonzero(np.isfinite(track.flux_adu) & np.isfinite(track.x_meas_px)):
+        t = track.time_s[p]
+        (xa, ya), (xb, yb) = track.trajectory.pixel(t - h), track.trajectory.pixel(t + h)
+        m = _measure(frames[int(p)], background, float(track.x_meas_px[p]), float(track.y_meas_px[p]),
+                     float(xb - xa) / 2.0, float(yb - ya) / 2.0, window_px=window, aperture_px=aperture,
+                     width=width, height=height)
+        if m.ok and not m.edge and not m.saturated:
+            flux[p], flux_err[p], snr[p] = m.flux, m.flux_err, m.snr
+    return dataclasses.replace(track, flux_adu=flux, flux_err_adu=flux_err, snr=snr)

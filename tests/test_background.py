@@ -187,3 +187,46 @@ def test_bad_input_is_a_clear_error():
     small = Camera(width=W - 2, height=H, bit_depth=16, gamma=1.0, saturation_adu=65535.0, interlaced=False)
     with pytest.raises(ValueError, match="frame 0 is 256 px wide"):
         estimate_background(frames, camera=small)
+
+
+def test_binned_copy_of_a_stored_stack_equals_the_linearised_frames():
+    """The fast binning of a decoded stack must match binning its linearised frames exactly.
+
+    Covers the lookup-table route (gamma 0.45, interlaced, bottom field first) and the
+    linear route with a black level, including values below black (clipped to 0 by the
+    contract's pixel-value rule).
+    """
+    from meteorspec.background import bin_frames
+    from meteorspec.video import FrameStack
+
+    rng = np.random.default_rng(5)
+    for gamma, interlaced, order, black in ((0.45, True, "bottom", 16.0), (1.0, False, "top", 2.0),
+                                            (1.0, True, "top", 0.0)):
+        cam = Camera(width=64, height=48, bit_depth=8, gamma=gamma, saturation_adu=255.0, interlaced=interlaced,
+                     field_order=order, black_level_adu=black)
+        stored = rng.integers(0, 256, (5, 48, 64), dtype=np.uint8)
+        if gamma == 1.0 and black > 0:
+            stored[1:] = np.maximum(stored[1:], np.uint8(black))  # frame 0 has values below black
+        stack = FrameStack(stored=stored, camera=cam, fps=25.0)
+        fast, slow = bin_frames(stack, camera=cam), bin_frames(list(stack), camera=cam)
+        assert len(fast) == len(slow) == len(stack)
+        for a, b in zip(fast.data, slow.data):
+            np.testing.assert_allclose(a, b, rtol=0, atol=1e-4)  # float32 sums in another order
+        for name in ("time_s", "exposure_s", "index", "y_start_px", "y_step_px", "n_rows"):
+            np.testing.assert_array_equal(getattr(fast, name), getattr(slow, name))
+
+
+def test_sample_matches_whole_frame_residual_and_variance():
+    """``Background.sample`` at chosen pixels equals the whole-frame methods there (star pixels included)."""
+    frames, _, _ = make_frames()
+    bg = estimate_background(frames, camera=_camera())
+    assert bg.scintillation > 0  # the scintillation term is exercised
+    frame = frames[15]
+    ys, xs = np.nonzero(bg.star_mask)
+    rows = np.concatenate([ys, np.arange(100)])
+    cols = np.concatenate([xs, np.arange(100) + 50])
+    resid, var, var_sky = bg.sample(frame, rows, cols)
+    full = bg.residual(frame)
+    np.testing.assert_allclose(resid, full[rows, cols], rtol=1e-6, atol=1e-4)
+    np.testing.assert_allclose(var, bg.variance(frame, full)[rows, cols], rtol=1e-5)
+    np.testing.assert_allclose(var_sky, bg.variance(frame, np.zeros_like(full))[rows, cols], rtol=1e-5)

@@ -411,3 +411,25 @@ def test_saturated_brightest_frames_recovered_from_light_curve_without_zeroth_fl
     cont_in = 2.0 * np.count_nonzero((cont[0] > lo) & (cont[0] < hi))
     got = window_energy(fs, 589.0, lines)
     assert_allclose(got, light.sum() * (6000.0 + cont_in), rtol=0.01)
+
+
+def test_frame_weights_from_the_spectra_recover_a_light_curve_with_masked_bins():
+    """Rank-1 data ``E = w T`` with bins masked at random (saturation, sensor edge):
+
+    starting from wrong weights (one frame's zeroth order known, the rest guessed), the
+    fit returns the true relative weights (noise-free data: to round-off).
+    """
+    from meteorspec.extract import _spectral_weights
+
+    rng = np.random.default_rng(8)
+    n, m = 12, 300
+    w_true = np.exp(-0.5 * ((np.arange(n) - 6.0) / 2.5) ** 2)
+    t_true = 1.0 + rng.random(m) * 5.0
+    widths = np.full(m, 0.4)
+    flux = w_true[:, None] * t_true[None, :] / widths
+    variance = np.full((n, m), 1.0)
+    mask = rng.random((n, m)) < 0.4
+    mask[5:8, 100:200] = True  # the brightest frames lose a block of bins, as a saturated line does
+    weight = np.where(np.arange(n) == 2, w_true[2] * 7.0, 1.0)  # scale from frame 2, others a guess
+    _spectral_weights(weight, np.where(mask, np.nan, flux), variance, mask, widths)
+    np.testing.assert_allclose(weight / weight.sum(), w_true / w_true.sum(), rtol=1e-6)

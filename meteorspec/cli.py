@@ -123,6 +123,47 @@ def _cmd_simulate(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_calibrate(args: argparse.Namespace) -> int:
+    from .calibrate import calibrate_event, calibrate_night
+    from .config import find_station_file, load_event, load_station
+    from .errors import InputError
+    from .optics import SpectralGeometry
+    from .pipeline import locate_meteor, recorded_orders
+    from .video import read_stack
+
+    by_station: dict[str, tuple] = {}
+    for toml, root in find_events(args.events):
+        try:
+            event = load_event(toml)
+            station = load_station(find_station_file(event, stations_dir=args.stations, run_root=root))
+            stack = read_stack(event, station)
+        except InputError as exc:
+            print(f"skipped: {exc}")
+            continue
+        background, track = locate_meteor(stack, station)
+        if not track:
+            print(f"{event.id}: no meteor ({track.reason})")
+            continue
+        solution = calibrate_event(stack, background, track, SpectralGeometry.from_station(station),
+                                   camera=station.camera, order=recorded_orders(station)[0], event=event.id)
+        print(f"{event.id}: {solution.source}, {solution.n_lines} lines, rms {solution.rms_nm:.3f} nm")
+        by_station.setdefault(station.id, (station, []))[1].append(solution)
+    if not by_station:
+        print("meteorspec: no event could be calibrated", file=sys.stderr)
+        return 1
+    status = 0
+    for station, solutions in by_station.values():
+        try:
+            night = calibrate_night(solutions, station, fit_lens=not args.fix_lens, date=args.date,
+                                    out_dir=args.out_dir)
+        except ValueError as exc:
+            print(f"{station.id}: not refined: {exc}")
+            status = 1
+            continue
+        print(night.report())
+    return status
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="meteorspec", description="Reduce meteor spectra from grating cameras.")
     parser.add_argument("--version", action="version", version=f"meteorspec {__version__}")
@@ -148,6 +189,14 @@ def build_parser() -> argparse.ArgumentParser:
     w = sub.add_parser("show", help="print a text summary of one event file")
     w.add_argument("event_file", help="an <event id>.h5 file")
     w.set_defaults(func=_cmd_show)
+
+    c = sub.add_parser("calibrate", help="refine each station's grating (and lens) from a night of events")
+    c.add_argument("events", nargs="+", help="event folders, event.toml files, or folders of events")
+    c.add_argument("--stations", help="folder of <station>.toml files (default: search beside the events)")
+    c.add_argument("--date", help="YYYYMMDD for the new file name (default: today, UTC)")
+    c.add_argument("--fix-lens", action="store_true", help="keep focal_px and k1 at the station values")
+    c.add_argument("--out-dir", help="folder for <id>.refined-<date>.toml (default: beside the station file)")
+    c.set_defaults(func=_cmd_calibrate)
 
     s = sub.add_parser("simulate", help="write synthetic events from the forward model")
     s.add_argument("--out", required=True, help="folder for the event folders and stations/")

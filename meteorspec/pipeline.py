@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .background import bin_frames, estimate_background, refine_background
+from .background import Background, bin_frames, estimate_background, refine_background
 from .calibrate import apply_response, calibrate_event, station_solution
 from .classify import (LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify, light_curve_from_spectra,
                        time_resolved_from_fits)
@@ -172,6 +172,32 @@ def process_event(event_path: str | Path, *, stations_dir: str | Path | None = N
     return result
 
 
+def recorded_orders(station: Station) -> list[int]:
+    """Non-zero diffraction orders on the sensor; the first is the one extracted."""
+    return [o for o in station.grating.orders if o != 0]
+
+
+def locate_meteor(stack: FrameStack, station: Station) -> tuple[Background, Track]:
+    """Background and zeroth-order track of a decoded event (the stages before calibration).
+
+    One binned pass feeds both the background model and the tracker; when a meteor
+    is found, the background is re-estimated with its light masked frame by frame
+    and the light curve is measured again against it.
+    """
+    camera = station.camera
+    geometry = SpectralGeometry.from_station(station)
+    orders = recorded_orders(station)
+    binned = bin_frames(stack, camera=camera)  # the one full pass, shared by background and tracker
+    background = estimate_background(stack, camera=camera, seed=0, binned=binned)
+    track = find_track(stack, background, geometry, camera=camera, orders=orders, seed=0, binned=binned)
+    del binned
+    if track:
+        refined = refine_background(stack, background, track, geometry, camera=camera, orders=orders)
+        if refined is not background:
+            background, track = refined, remeasure_light_curve(stack, refined, track)
+    return background, track
+
+
 def _reduce(result: EventResult, event: Event, station: Station, stack: FrameStack) -> None:
     """The science stages in data-flow order; each adds its part and flags to ``result``.
 
@@ -181,18 +207,8 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     """
     camera = station.camera
     station_geometry = SpectralGeometry.from_station(station)
-    orders = [o for o in station.grating.orders if o != 0]
-    order = orders[0]
-
-    binned = bin_frames(stack, camera=camera)  # the one full pass, shared by background and tracker
-    background = estimate_background(stack, camera=camera, seed=0, binned=binned)
-    track = find_track(stack, background, station_geometry, camera=camera, orders=orders, seed=0, binned=binned)
-    del binned
-    if track:
-        # the meteor's light masked frame by frame; then the light curve against that background
-        refined = refine_background(stack, background, track, station_geometry, camera=camera, orders=orders)
-        if refined is not background:
-            background, track = refined, remeasure_light_curve(stack, refined, track)
+    order = recorded_orders(station)[0]
+    background, track = locate_meteor(stack, station)
     result.parts["track"] = track_part(track)
     _add_flags(result, track.flags)
     if not track:

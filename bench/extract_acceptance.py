@@ -22,8 +22,13 @@ and the motion, not from the data: per exposure, the streak components along
 the extraction applies (``s = m_T m_N / (m_N^2 + 12 sigma^2)``) give the
 variance along the wavelength coordinate ``(m_T - s m_N)^2 / 12 +
 sigma^2 (1 + s^2) + (1 + s^2) / 12``, with ``sigma^2`` the render's PSF plus
-its bilinear splat (1/6 px^2 per axis); the energy-weighted mean over
-exposures, times the dispersion squared, plus the bin width squared / 12.
+its bilinear splat (1/6 px^2 per axis), times that exposure's dispersion
+squared (near the edge of a wide-angle lens it changes several-fold over the
+flight); the energy-weighted mean over exposures, plus the bin width squared
+/ 12. The truth energies are those of the exposures the whole-flight sum
+stands for (frame weight not 0): an exposure whose spectrum and zeroth order
+both left the sensor is seen by nothing and left out of that sum
+(``unseen`` in the output is its share of the flight's light).
 
 - **Group energies** (contract section 6): in a window from the group's
   bluest line - 3 LSF sigma to its reddest + 3 sigma, the extracted and the
@@ -111,7 +116,11 @@ def frames_of(rendered, camera):
 
 
 def lsf_sigma_px2(r, spec, lam_nm):
-    """Energy-weighted variance (px^2) of a line along the extraction's wavelength coordinate."""
+    """Energy-weighted variance (px^2) of a line along the extraction's wavelength coordinate.
+
+    All exposures, no dispersion (kept for bench/bench_calibration.py; this
+    script uses :func:`lsf_sigma_nm2`).
+    """
     geo = r.geometry
     s2 = spec.psf_sigma_px**2 + 1.0 / 6.0
     num = np.zeros(lam_nm.size)
@@ -133,6 +142,38 @@ def lsf_sigma_px2(r, spec, lam_nm):
         num += np.where(ok, v, 0.0) * t.emitted_energy_adu
         den += t.emitted_energy_adu
     return num / den if den > 0 else np.full(lam_nm.size, s2)
+
+
+def lsf_sigma_nm2(r, spec, lam_nm, counted):
+    """Energy-weighted variance (nm^2) of a line along the extraction's wavelength coordinate.
+
+    Per exposure the variance in px^2 is converted with that exposure's own
+    dispersion (near the edge of a wide-angle lens it changes several-fold
+    over the flight); only the exposures the whole-flight sum ``counted``.
+    """
+    geo = r.geometry
+    s2 = spec.psf_sigma_px**2 + 1.0 / 6.0
+    num = np.zeros(lam_nm.size)
+    den = 0.0
+    for ex, t, use in zip(r.exposures, r.truths, counted):
+        if not (t.emitted_energy_adu > 0 and use):
+            continue
+        p = [np.array(r.trajectory.pixel(tt), dtype=float) for tt in (ex.t_start_s, ex.time_s, ex.t_end_s)]
+        xs, ys = (np.array(v) for v in zip(*[geo.spectrum_pixel(q[0], q[1], lam_nm) for q in p]))
+        x1, y1 = geo.spectrum_pixel(p[1][0], p[1][1], lam_nm + 0.01)
+        tx, ty = x1 - xs[1], y1 - ys[1]
+        nrm = np.hypot(tx, ty)
+        tx, ty = tx / nrm, ty / nrm
+        mx, my = xs[2] - xs[0], ys[2] - ys[0]
+        mt, mn = mx * tx + my * ty, -mx * ty + my * tx
+        s = mt * mn / (mn * mn + 12.0 * spec.psf_sigma_px**2)
+        v = (mt - s * mn) ** 2 / 12.0 + s2 * (1 + s * s) + (1 + s * s) / 12.0
+        v = v * np.asarray(geo.dispersion_nm_per_px(p[1][0], p[1][1], lam_nm), dtype=float) ** 2
+        ok = np.isfinite(v)
+        num += np.where(ok, v, 0.0) * t.emitted_energy_adu
+        den += np.where(ok, t.emitted_energy_adu, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
 
 
 def expected_spectrum(edges, lam, energy, sigma_nm):
@@ -192,15 +233,19 @@ def evaluate(spec, *, light_curve="tracker", background="estimated"):
     if wf.wavelength_nm.size == 0:
         return res
     m = r.emission
-    total = sum(t.emitted_energy_adu for t in tr)
+    # the whole-flight sum stands for the frames it counts (frame weight > 0, or unknown); a frame
+    # whose spectrum and zeroth order both left the sensor is not seen at all and is left out of it
+    counted = ~(np.asarray(fs.frame_weight, dtype=float) == 0)
+    if fs.frame_weight.size != len(tr):
+        counted = np.ones(len(tr), bool)
+    total = sum(t.emitted_energy_adu for t, c in zip(tr, counted) if c)
+    res["lost_share"] = 1.0 - total / max(sum(t.emitted_energy_adu for t in tr), 1e-300)
     sensor = FIRST_ORDER_SHARE * m.share * total * r.response  # whole-flight first-order ADU
     grid = wf.wavelength_nm
     edges = np.concatenate([[grid[0] - 0.5 * wf.bin_width_nm[0]], grid + 0.5 * wf.bin_width_nm])
     probe = np.linspace(grid[0], grid[-1], 24)
-    var_px = lsf_sigma_px2(r, spec, probe)
-    x0, y0 = np.nanmedian(track.x_px), np.nanmedian(track.y_px)
-    disp_probe = np.asarray(r.geometry.dispersion_nm_per_px(x0, y0, probe), dtype=float)
-    sig_probe = np.sqrt(var_px * disp_probe**2 + np.median(wf.bin_width_nm) ** 2 / 12.0)
+    var_nm2 = lsf_sigma_nm2(r, spec, probe, counted)
+    sig_probe = np.sqrt(var_nm2 + np.median(wf.bin_width_nm) ** 2 / 12.0)
     ok_probe = np.isfinite(sig_probe)
     sigma_of = lambda lam: np.interp(lam, probe[ok_probe], sig_probe[ok_probe])  # noqa: E731
     sig_all = sigma_of(m.wavelength_nm)
@@ -253,7 +298,7 @@ def evaluate(spec, *, light_curve="tracker", background="estimated"):
             off_err = float(np.sqrt(cov[1, 1])) if np.isfinite(cov[1, 1]) else np.nan
         except (RuntimeError, ValueError):
             off, off_err = np.nan, np.nan
-        res["peaks"].append((float(lam), off, float(sensor[i] / noise), off_err))
+        res["peaks"].append((float(lam), off, float(sensor[i] / noise), off_err, float(fw)))
     return res
 
 
@@ -278,13 +323,14 @@ def main(argv=None):
         if args.only and k not in args.only:
             continue
         res = evaluate(spec, light_curve=args.light_curve, background=args.background)
-        offs = np.array([d for _, d, _, _ in res["peaks"]])
-        errs = np.array([e for _, _, _, e in res["peaks"]])
+        offs = np.array([d for _, d, _, _, _ in res["peaks"]])
+        errs = np.array([e for _, _, _, e, _ in res["peaks"]])
         # a peak outside the tolerance but within 3 of its own fit errors is noise-limited, not biased
         n_noise += int(np.sum((np.abs(offs) > PEAK_TOL_NM) & (np.abs(offs) <= 3.0 * errs)))
-        for lam_i, d_i, snr_i, e_i in res["peaks"]:
+        for lam_i, d_i, snr_i, e_i, fw_i in res["peaks"]:
             if not abs(d_i) <= PEAK_TOL_NM:
-                fail_lines.append(f"{res['id']}:{lam_i:.1f}nm off={d_i:+.2f}+-{e_i:.2f} snr={snr_i:.0f}")
+                fail_lines.append(f"{res['id']}:{lam_i:.1f}nm off={d_i:+.2f}+-{e_i:.2f} snr={snr_i:.0f} "
+                                  f"lsf_fwhm={fw_i:.2f}nm{'' if abs(d_i) <= 3.0 * e_i else ' BIASED'}")
         n_fail_peak = int(np.sum(~(np.abs(offs) <= PEAK_TOL_NM))) if offs.size else 0
         wp = float(np.nanmax(np.abs(offs))) if offs.size and np.isfinite(offs).any() else float("nan")
         all_off += list(offs)
@@ -300,7 +346,7 @@ def main(argv=None):
                     worst = (v[0], f"{res['id']} {n}")
         kind = "sat" if res["n_sat_frames"] else ""
         print(f"{k:3d} {res['id']:14s} lum={res['n_lum']:3d} sat={res['n_sat_frames']:3d} "
-              f"peaks={len(offs):3d} dom={res['n_dominated']:3d} worst_peak_nm={wp:.3f} {g} "
+              f"unseen={res.get('lost_share', 0.0):.2f} peaks={len(offs):3d} dom={res['n_dominated']:3d} worst_peak_nm={wp:.3f} {g} "
               f"flags={','.join(res['flags'])} t_bg+track={res['t_bg_track_s']:.1f}s "
               f"t_extract={res['t_extract_s']:.1f}s {kind} {'FAIL ' + str(fails) if fails else ''}", flush=True)
     a = np.abs(np.array(all_off))

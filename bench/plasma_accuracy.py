@@ -61,7 +61,7 @@ N2_HEADS = [h for heads in plasma.N2_BAND_HEADS_NM.values() for h in heads]
 
 
 def render(wl, bw, centres, energies, fwhm_at):
-    """Exact bin averages of unit-area Gaussians (erf), independent of plasma._profile_matrix."""
+    """Exact bin averages of unit-area Gaussians (erf), independent of plasma._Profiles."""
     lo, hi = wl - bw / 2, wl + bw / 2
     out = np.zeros(wl.size)
     sig = fwhm_at(centres) / (2 * math.sqrt(2 * math.log(2)))

@@ -125,6 +125,9 @@ _AIR_MULTIPLETS = 4  # strongest multiplets of each air species with their own a
 _HOT_REFERENCE_K = 10000.0
 _LOG_N_SPAN = 12.0  # bounds of log10 N around the starting value (dex)
 _TAU_MAX = 1e12
+# evaluations of each multi-start before the best is polished: 15 picks the same minimum as
+# 25 on the 80 cases of bench/plasma_accuracy.py (seeds 1, 2); 10 picked a worse one once
+_START_NFEV = 15
 
 
 # --------------------------------------------------------------------------------------------
@@ -180,6 +183,16 @@ def growth_ratio(tau0: ArrayLike, *, derivative: bool = False) -> NDArray[np.flo
         return np.where(small, 1.0 - tau / math.sqrt(2.0), out)
     out = np.exp(log_r(lt))
     return np.where(small, 1.0 - tau / (2.0 * math.sqrt(2.0)), out)
+
+
+def _growth_pair(tau: NDArray) -> tuple[NDArray, NDArray]:
+    """``growth_ratio(tau)`` and ``growth_ratio(tau, derivative=True)`` in one pass."""
+    lo, hi, log_r, log_dg = _growth_table()
+    lt = np.clip(np.log10(np.clip(tau, 1e-300, None)), lo, hi)
+    small = tau < 1e-6
+    ratio = np.where(small, 1.0 - tau / (2.0 * math.sqrt(2.0)), np.exp(log_r(lt)))
+    slope = np.where(small, 1.0 - tau / math.sqrt(2.0), np.exp(log_dg(lt)))
+    return ratio, slope
 
 
 def doppler_fwhm_nm(lines: LineList, temperature_k: ArrayLike) -> NDArray[np.float64]:
@@ -364,27 +377,82 @@ def _spectrum_arrays(spectrum) -> tuple[NDArray, NDArray, NDArray, NDArray, NDAr
 # Model
 # --------------------------------------------------------------------------------------------
 
-def _profile_matrix(centre_nm: NDArray, fwhm_nm: NDArray, lo_nm: NDArray,
-                    hi_nm: NDArray) -> sparse.csr_matrix:
-    """(n_bins, n_lines) Gaussians of unit area integrated over each bin, per nm of bin."""
-    n_bins, n = lo_nm.size, centre_nm.size
-    if n == 0 or n_bins == 0:
-        return sparse.csr_matrix((n_bins, n))
-    sigma = fwhm_nm * _SIGMA_PER_FWHM
-    first = np.searchsorted(hi_nm, centre_nm - 7.0 * sigma)
-    last = np.searchsorted(lo_nm, centre_nm + 7.0 * sigma, side="right")
-    span = int(np.max(last - first)) if n else 0
-    span = max(span, 1)
-    k = first[:, None] + np.arange(span)[None, :]
-    valid = k < np.minimum(last, n_bins)[:, None]
-    kc = np.clip(k, 0, n_bins - 1)
-    z_hi = (hi_nm[kc] - centre_nm[:, None]) / sigma[:, None]
-    z_lo = (lo_nm[kc] - centre_nm[:, None]) / sigma[:, None]
-    # ndtr differences lose digits in the far tail; beyond 7 sigma nothing is kept anyway
-    val = (ndtr(z_hi) - ndtr(z_lo)) / (hi_nm[kc] - lo_nm[kc])
-    rows = kc[valid]
-    cols = np.broadcast_to(np.arange(n)[:, None], k.shape)[valid]
-    return sparse.csr_matrix((val[valid], (rows, cols)), shape=(n_bins, n))
+class _Profiles:
+    """Gaussians of unit area integrated over each bin, per nm of bin, for many lines.
+
+    ``matrix()`` is the (n_bins, n_lines) profile matrix; ``derivatives()`` gives the
+    matrices of its exact derivatives with respect to the line centre (``dP/dc``) and to
+    the log of the width (``sigma dP/dsigma``), from the Gaussian pdf at the bin edges
+    (the derivative of an ``ndtr`` difference is a difference of pdfs), so that the
+    optimiser needs no profile matrices at shifted or widened positions.
+    """
+
+    def __init__(self, centre_nm: NDArray, sigma_nm: NDArray, lo_nm: NDArray, hi_nm: NDArray,
+                 *, contiguous: bool):
+        n_bins, n = lo_nm.size, centre_nm.size
+        self.shape = (n_bins, n)
+        first = np.searchsorted(hi_nm, centre_nm - 7.0 * sigma_nm)
+        last = np.minimum(np.searchsorted(lo_nm, centre_nm + 7.0 * sigma_nm, side="right"),
+                          n_bins)
+        count = np.maximum(last - first, 0)
+        span = max(int(count.max()) if n else 0, 1)
+        steps = np.arange(span)
+        self.valid = steps[None, :] < count[:, None]
+        kc = np.clip(first[:, None] + steps[None, :], 0, max(n_bins - 1, 0))
+        self.indices = kc[self.valid]
+        self.indptr = np.concatenate([[0], np.cumsum(count)])
+        self.sigma = sigma_nm
+        self.inv_width = 1.0 / (hi_nm - lo_nm)[kc] if n_bins else np.zeros(kc.shape)
+        inv_sigma = 1.0 / sigma_nm[:, None]
+        if contiguous and n_bins:
+            # adjacent bins share an edge: one ndtr per edge instead of two per bin
+            edges = np.append(lo_nm, hi_nm[-1])
+            ke = np.clip(first[:, None] + np.arange(span + 1)[None, :], 0, n_bins)
+            self.z_edge = (edges[ke] - centre_nm[:, None]) * inv_sigma
+            self.z_lo, self.z_hi = self.z_edge[:, :-1], self.z_edge[:, 1:]
+            cdf = ndtr(self.z_edge)
+            cdf_lo, cdf_hi = cdf[:, :-1], cdf[:, 1:]
+        else:
+            self.z_edge = None
+            self.z_lo = (lo_nm[kc] - centre_nm[:, None]) * inv_sigma
+            self.z_hi = (hi_nm[kc] - centre_nm[:, None]) * inv_sigma
+            cdf_lo, cdf_hi = ndtr(self.z_lo), ndtr(self.z_hi)
+        # ndtr differences lose digits in the far tail; beyond 7 sigma nothing is kept anyway
+        self._matrix = self._csc((cdf_hi - cdf_lo) * self.inv_width)
+        self._derivatives = None
+
+    def _csc(self, values: NDArray) -> sparse.csc_matrix:
+        # entries of each line are consecutive bins: the compressed-column form directly
+        return sparse.csc_matrix((values[self.valid], self.indices, self.indptr),
+                                 shape=self.shape)
+
+    def matrix(self) -> sparse.csc_matrix:
+        return self._matrix
+
+    def columns(self, start: int, stop: int) -> sparse.csc_matrix:
+        """``matrix()[:, start:stop]`` (a view of the same entries)."""
+        m = self._matrix
+        a, b = m.indptr[start], m.indptr[stop]
+        return sparse.csc_matrix((m.data[a:b], m.indices[a:b], m.indptr[start:stop + 1] - a),
+                                 shape=(self.shape[0], stop - start))
+
+    def derivatives(self) -> tuple[sparse.csc_matrix, sparse.csc_matrix]:
+        """(dP/dc, sigma dP/dsigma) as matrices shaped like ``matrix()``."""
+        if self._derivatives is None:
+            norm = 1.0 / math.sqrt(2.0 * math.pi)
+            if self.z_edge is not None:
+                pdf = norm * np.exp(-0.5 * self.z_edge**2)
+                pdf_lo, pdf_hi = pdf[:, :-1], pdf[:, 1:]
+                zpdf = pdf * self.z_edge
+                zpdf_lo, zpdf_hi = zpdf[:, :-1], zpdf[:, 1:]
+            else:
+                pdf_lo = norm * np.exp(-0.5 * self.z_lo**2)
+                pdf_hi = norm * np.exp(-0.5 * self.z_hi**2)
+                zpdf_lo, zpdf_hi = pdf_lo * self.z_lo, pdf_hi * self.z_hi
+            d_centre = (pdf_lo - pdf_hi) * self.inv_width / self.sigma[:, None]
+            d_log_sigma = (zpdf_lo - zpdf_hi) * self.inv_width
+            self._derivatives = (self._csc(d_centre), self._csc(d_log_sigma))
+        return self._derivatives
 
 
 def _n2_samples() -> tuple[NDArray, NDArray, list[str]]:
@@ -545,6 +613,22 @@ class _Model:
         self._line_cache: dict = {}
         self._reference: dict | None = None
         self._profile_cache: dict = {}
+        self._partition_groups: tuple | None = None
+        # all profiled positions (metal lines, air lines, N2 samples) in one matrix; their
+        # instrument widths depend only on the unshifted positions, so are computed once
+        self._centre_all = np.concatenate([self.metal.wavelength_nm, self.air.wavelength_nm,
+                                           self.n2_wl])
+        self._sigma_all = (np.broadcast_to(np.asarray(fwhm_fn(self._centre_all), dtype=float),
+                                           self._centre_all.shape) * _SIGMA_PER_FWHM
+                           if self._centre_all.size else np.zeros(0))
+        n_lin = len(self.air_names) + len(self.n2_names)
+        self._lin_weight = np.zeros((len(self.air) + self.n2_wl.size, n_lin))
+        self._lin_weight[:len(self.air), :len(self.air_names)] = self.air_share
+        self._lin_weight[len(self.air):, len(self.air_names):] = self.n2_weight
+        # adjacent bins share edges (the usual case): profiles then need half the ndtr calls
+        self._contiguous = bool(np.allclose(self.hi[:-1], self.lo[1:], rtol=0.0,
+                                            atol=1e-9 * float(np.max(np.abs(wl))) if wl.size
+                                            else 0.0))
 
     # -- parameter vector ---------------------------------------------------------------
     @property
@@ -584,7 +668,14 @@ class _Model:
         ref = self._reference
         t = np.where(self.metal_hot, t_hot, t_main)
         inv = 1.0 / (_K_EV_K * t) - 1.0 / (_K_EV_K * ref["t"])
-        u_ratio = ref["u"] / _partition(self.metal, self.metal_hot, t_main, t_hot)
+        if self._partition_groups is None:  # (species, hot) pairs and the line -> pair map
+            pairs = list(zip(self.metal.species.tolist(), self.metal_hot.tolist()))
+            unique = list(dict.fromkeys(pairs))
+            self._partition_groups = (unique, np.array([unique.index(q) for q in pairs],
+                                                       dtype=np.int64))
+        unique, which = self._partition_groups
+        u_pair = np.array([_partition_value(sp, t_hot if hot else t_main) for sp, hot in unique])
+        u_ratio = ref["u"] / (u_pair[which] if unique else np.ones(0))
         thin = ref["thin"] * np.exp(-self.metal.e_upper_ev * inv) * u_ratio
         tau = np.zeros(len(self.metal))
         if self.self_absorption:
@@ -611,8 +702,9 @@ class _Model:
         thin = scale * thin1 * n_line
         tau = tau1 * n_line
         if self.self_absorption:
-            energy = thin * growth_ratio(tau)
-            d_ln_n = thin * growth_ratio(tau, derivative=True)
+            ratio, slope = _growth_pair(tau)
+            energy = thin * ratio
+            d_ln_n = thin * slope
         else:
             energy, d_ln_n = thin, thin
         return energy, d_ln_n, tau
@@ -621,30 +713,49 @@ class _Model:
         amp = np.array([self.value(n) for n in self.air_names])
         return self.air_share @ amp if len(self.air_names) else np.zeros(len(self.air))
 
-    def profiles(self) -> tuple:
+    def _profile_set(self) -> tuple:
         shift, width = self.value("shift_nm"), self.value("width_scale")
         stretch = self.value("stretch")
         key = (shift, width, stretch)
         hit = self._profile_cache.get(key)
         if hit is not None:
             return hit
-
-        def matrix(centre):
-            moved = centre + shift + stretch * (centre - self.mid_nm)
-            return _profile_matrix(moved, self.fwhm_fn(centre) * width, self.lo, self.hi)
-
-        p_metal = matrix(self.metal.wavelength_nm)
-        p_air = matrix(self.air.wavelength_nm)
-        n2_cols = matrix(self.n2_wl) @ self.n2_weight if self.n2_wl.size else \
-            np.zeros((self.wl.size, 0))
-        air_cols = np.asarray(p_air @ self.air_share) if len(self.air_names) else \
-            np.zeros((self.wl.size, 0))
-        basis = np.hstack([air_cols, np.asarray(n2_cols), self.continuum_basis])
-        out = (p_metal, p_air, basis)
-        if len(self._profile_cache) >= 4:  # current point and its finite-difference steps
+        centre = self._centre_all
+        moved = centre + shift + stretch * (centre - self.mid_nm)
+        prof = _Profiles(moved, self._sigma_all * width, self.lo, self.hi,
+                         contiguous=self._contiguous)
+        p_all = prof.matrix()
+        n_metal, n_air = len(self.metal), len(self.air)
+        p_metal = prof.columns(0, n_metal).tocsr()  # row-major products are faster
+        p_air = prof.columns(n_metal, n_metal + n_air)
+        if self._lin_weight.size:
+            lin_cols = np.asarray(prof.columns(n_metal, p_all.shape[1]) @ self._lin_weight)
+        else:
+            lin_cols = np.zeros((self.wl.size, self._lin_weight.shape[1]))
+        basis = np.hstack([lin_cols, self.continuum_basis])
+        out = ((p_metal, p_air, basis), prof)
+        if len(self._profile_cache) >= 4:  # the current point and a few recent ones
             self._profile_cache.pop(next(iter(self._profile_cache)))
         self._profile_cache[key] = out
         return out
+
+    def profiles(self) -> tuple:
+        """(metal profile matrix, air profile matrix, linear basis) at the current shift,
+        stretch and width."""
+        return self._profile_set()[0]
+
+    def position_derivatives(self) -> dict[str, NDArray]:
+        """d flux / d (shift_nm, stretch, width_scale), exact, per bin."""
+        prof = self._profile_set()[1]
+        d_centre, d_log_sigma = prof.derivatives()
+        energy, _, _ = self.line_state()
+        lin_names = self.air_names + self.n2_names
+        coef = np.array([self.value(n) for n in lin_names])
+        amp = np.concatenate([energy, self._lin_weight @ coef if lin_names
+                              else np.zeros(self._lin_weight.shape[0])])
+        return {"shift_nm": d_centre @ amp,
+                "stretch": d_centre @ (amp * (self._centre_all - self.mid_nm)),
+                "width_scale": (d_log_sigma @ amp) / self.value("width_scale")}
 
     def linear_basis(self) -> tuple[list[str], NDArray]:
         """Columns of the linear nuisance parameters (air amplitudes, N2, continuum)."""
@@ -828,8 +939,8 @@ class PlasmaFit:
 # Fitting
 # --------------------------------------------------------------------------------------------
 
-_FD_STEP = {"log_t": 2e-5, "log_t_hot": 2e-5, "shift_nm": 2e-3, "width_scale": 2e-4,
-            "stretch": 4e-6}
+# finite-difference steps of the temperatures (shift, stretch and width are analytic)
+_FD_STEP = {"log_t": 2e-5, "log_t_hot": 2e-5}
 
 
 class _Problem:
@@ -858,31 +969,38 @@ class _Problem:
         p_metal, _, _ = m.profiles()
         energy, d_ln_n, _ = m.line_state()
         lin_names, basis = m.linear_basis()
-        base = None
+        position = None
         cols = np.empty((self.good.sum(), len(names)))
+        # columns that are the metal profiles times a per-line weight: one sparse product
+        weights, targets = [], []
         for j, name in enumerate(names):
-            if name in _FD_STEP:
-                if base is None:
-                    base = m.flux()[self.good]
+            if name in _FD_STEP:  # temperatures: only the line energies change
                 h = _FD_STEP[name]
                 old = m.params[name].value
                 step = h if old + h <= m.params[name].hi else -h
                 m.params[name].value = old + step
-                col = (m.flux()[self.good] - base) / step
+                moved, _, _ = m.line_state()
                 m.params[name].value = old
+                weights.append((moved - energy) / step)
+            elif name in ("shift_nm", "stretch", "width_scale"):
+                if position is None:
+                    position = m.position_derivatives()
+                cols[:, j] = position[name][self.good]
+                continue
             elif name in ("log_scale", "log_scale_hot"):
-                part = np.where(m.metal_hot == (name == "log_scale_hot"), energy, 0.0)
-                col = (p_metal @ part)[self.good] * _LN10
+                weights.append(np.where(m.metal_hot == (name == "log_scale_hot"), energy, 0.0)
+                               * _LN10)
             elif name.startswith("group_dex "):
-                part = np.where(m.group_of_line == name[10:], d_ln_n, 0.0)
-                col = (p_metal @ part)[self.good] * _LN10
+                weights.append(np.where(m.group_of_line == name[10:], d_ln_n, 0.0) * _LN10)
             elif name.startswith("log_n "):
                 s = m.species.index(name[6:])
-                col = (p_metal @ np.where(m.species_of_line == s, d_ln_n, 0.0))[self.good] * _LN10
+                weights.append(np.where(m.species_of_line == s, d_ln_n, 0.0) * _LN10)
             else:
-                col = basis[self.good, lin_names.index(name)]
-            cols[:, j] = col
-        m.profiles()  # restore the cache for the current shift and width
+                cols[:, j] = basis[self.good, lin_names.index(name)]
+                continue
+            targets.append(j)
+        if targets:
+            cols[:, targets] = np.asarray(p_metal @ np.column_stack(weights))[self.good]
         jac = cols * self.weight[:, None]
         if self.prior:
             rows = [[(1.0 / sd if n == name else 0.0) for n in names]
@@ -963,9 +1081,21 @@ def _linear_start(model: _Model, flux: NDArray, err: NDArray, good: NDArray,
 
 
 def _initialise(model: _Model, flux: NDArray, err: NDArray, good: NDArray, *,
-                tau_start: float, temperatures_k: Sequence[float]) -> None:
-    """Set starting values: grid temperature, linear amplitudes, columns, area scale."""
-    t, coef, lin_names, _ = _linear_start(model, flux, err, good, temperatures_k)
+                tau_start: float, temperatures_k: Sequence[float],
+                memo: dict | None = None) -> None:
+    """Set starting values: grid temperature, linear amplitudes, columns, area scale.
+
+    ``memo`` keeps the linear starts of models built alike (same data, same settings),
+    which several multi-start entries share.
+    """
+    key = tuple(float(t) for t in temperatures_k)
+    if memo is not None and key in memo:
+        t, coef, lin_names, _ = memo[key]
+    else:
+        t, coef, lin_names, _ = _linear_start(model, flux, err, good, temperatures_k)
+        if memo is not None:
+            memo[key] = (t, coef, lin_names, None)
+    coef = coef.copy()
     model.params["log_t"].value = math.log10(t)
     n_sp = len(model.species)
     product = coef[:n_sp]  # A * N per species (thin, A = 1)
@@ -1140,12 +1270,13 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     least-squares fit (optically thin, hot component at 10 000 K); that solution gives the
     starting columns and nuisance amplitudes. With self-absorption six starts are tried
     (that temperature with the most opaque line at tau = 0.1 and 30; 4000 K / tau 30,
-    4500 K / tau 300 and 3, 5000 K / tau 30), each for 25 evaluations, and the lowest
+    4500 K / tau 300 and 3, 5000 K / tau 30), each for 15 evaluations, and the lowest
     chi^2 is polished: a saturated spectrum resembles a hotter thin one, and a single
     start can stop in that local minimum. The optimiser is
     ``scipy.optimize.least_squares`` (trust-region reflective, bounds, ``x_scale='jac'``)
-    with an analytic Jacobian for columns, areas, group factors and linear terms and
-    finite differences for temperatures, shift, stretch and width; the group factors'
+    with an analytic Jacobian for columns, areas, group factors, linear terms, shift,
+    stretch and width (Gaussian pdf at the bin edges) and finite differences of the line
+    energies for the temperatures; the group factors'
     Gaussian priors enter as extra residuals. Uncertainties are from ``(J^T J)^-1`` at the solution,
     multiplied by the reduced chi^2 when it exceeds 1; group-intensity errors propagate
     that covariance through the model (``J_g C J_g^T``).
@@ -1192,13 +1323,14 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
         starts = [(None, 1.0)]
     trials = []
     reason = "optimiser failed"
+    linear_starts: dict = {}
     for t_start, tau_start in starts:
         model = build()
         _initialise(model, flux, err, good, tau_start=tau_start,
-                    temperatures_k=grid if t_start is None else [t_start])
+                    temperatures_k=grid if t_start is None else [t_start], memo=linear_starts)
         problem = _Problem(model, flux, err, good, prior=model.group_prior)
         try:
-            result = _solve(problem, max_nfev=25 if len(starts) > 1 else max_nfev)
+            result = _solve(problem, max_nfev=_START_NFEV if len(starts) > 1 else max_nfev)
         except (ValueError, np.linalg.LinAlgError) as exc:  # pragma: no cover - defensive
             reason = f"optimiser failed: {exc}"
             continue

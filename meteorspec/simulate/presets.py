@@ -54,8 +54,8 @@ SAMPLE_SPECS: dict[str, EventSpec] = {
     # a bright normal meteor crossing a wide-field camera (binned 640 x 480), lossless AVI
     "bright_normal": _sample(
         "QM01", start_utc="2026-11-14T03:15:22.120Z", video_form="avi", fps=25.0, n_frames=30,
-        meteor_start_s=0.14, meteor_duration_s=0.9, start_px=(70.0, 120.0), end_px=(230.0, 190.0),
-        peak_energy_adu_s=4.0e7, peak_time_frac=0.55, na=0.22, mg=0.30, fe=0.48, speed_km_s=38.0,
+        meteor_start_s=0.14, meteor_duration_s=0.9, start_px=(70.0, 120.0), end_px=(190.0, 330.0),
+        peak_energy_adu_s=2.5e7, peak_time_frac=0.55, na=0.22, mg=0.30, fe=0.48, speed_km_s=38.0,
         n_stars=30, sky_adu=4.0, seed=11),
     # a Na-free meteor low in the sky near the rim of an all-sky lens (binned 512 x 512), PNG frames
     "nafree_allsky_edge": _sample(

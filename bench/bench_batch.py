@@ -90,10 +90,9 @@ def main(argv: list[str] | None = None) -> int:
         results = {}
         results["serial"] = timed(events, Path(tmp) / "serial", repeat=args.repeat)
         results["2 workers"] = timed(events, Path(tmp) / "two", repeat=args.repeat, workers=2)
-        from distributed import LocalCluster
+        from meteorspec.batch import start_local_cluster
 
-        with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                          dashboard_address="127.0.0.1:0", silence_logs=logging.ERROR) as cluster:
+        with start_local_cluster(2) as cluster:  # the cluster --workers 2 would start
             timed(events[:2], Path(tmp) / "warmup", repeat=1, scheduler=cluster.scheduler_address)  # imports
             results["2 workers, warm"] = timed(events, Path(tmp) / "warm", repeat=args.repeat,
                                                scheduler=cluster.scheduler_address)

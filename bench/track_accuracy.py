@@ -5,8 +5,8 @@ Usage::
     python bench/track_accuracy.py [--n-random 32] [--seed 7] [--jobs 2]
 
 Each event is rendered in memory (:func:`meteorspec.simulate.render_event`),
-linearised exactly as the video reader does (:func:`meteorspec.video.linearize`,
-fields split by rows), then :func:`estimate_background` and :func:`find_track`
+held as the video reader holds a decoded video (``Rendered.frame_stack()``, a
+:class:`meteorspec.video.FrameStack`: same linearisation, fields split by rows), then :func:`estimate_background` and :func:`find_track`
 run on it. Reported per event: RMS and max distance (px) between the fitted
 track and the truth's mid-exposure zeroth-order position over the frames the
 track covers, split into unsaturated frames (acceptance <= 0.3 px) and frames
@@ -30,25 +30,11 @@ from meteorspec.background import estimate_background  # noqa: E402
 from meteorspec.optics import SpectralGeometry  # noqa: E402
 from meteorspec.simulate import SAMPLE_SPECS, random_specs, render_event  # noqa: E402
 from meteorspec.track import find_track  # noqa: E402
-from meteorspec.video import Frame, linearize  # noqa: E402
-
-
-def rendered_frames(rendered) -> list[Frame]:
-    """Frames (fields) of a rendered event, as :func:`meteorspec.video.iter_frames` makes them."""
-    cam = rendered.station.camera
-    out = []
-    for ex in rendered.exposures:
-        sig, sat = linearize(rendered.stored[ex.frame], cam)
-        rows = slice(ex.row_start, None, ex.row_step)
-        out.append(Frame(index=ex.index, time_s=ex.time_s, exposure_s=ex.t_end_s - ex.t_start_s,
-                         signal=np.ascontiguousarray(sig[rows]), saturated=np.ascontiguousarray(sat[rows]),
-                         y_start_px=ex.row_start, y_step_px=ex.row_step))
-    return out
 
 
 def evaluate(name: str, spec) -> dict:
     rendered = render_event(spec)
-    frames = rendered_frames(rendered)
+    frames = rendered.frame_stack()
     cam = rendered.station.camera
     geo = SpectralGeometry.from_station(rendered.station)
     t0 = time.perf_counter()

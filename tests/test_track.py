@@ -280,19 +280,6 @@ def test_motion_parallel_to_dispersion_is_flagged():
 # --------------------------------------------------------------------------- simulator acceptance
 
 
-def _rendered_frames(rendered):
-    from meteorspec.video import linearize
-    cam = rendered.station.camera
-    out = []
-    for ex in rendered.exposures:
-        sig, sat = linearize(rendered.stored[ex.frame], cam)
-        rows = slice(ex.row_start, None, ex.row_step)
-        out.append(Frame(index=ex.index, time_s=ex.time_s, exposure_s=ex.t_end_s - ex.t_start_s,
-                         signal=np.ascontiguousarray(sig[rows]), saturated=np.ascontiguousarray(sat[rows]),
-                         y_start_px=ex.row_start, y_step_px=ex.row_step))
-    return out
-
-
 def _acceptance_cases():
     sim = pytest.importorskip("meteorspec.simulate")
     cases = [(name, spec) for name, spec in sim.SAMPLE_SPECS.items()]
@@ -308,7 +295,7 @@ def test_acceptance_against_simulator_truth():
     failures = []
     for name, spec in _acceptance_cases():
         rendered = sim.render_event(spec)
-        frames = _rendered_frames(rendered)
+        frames = rendered.frame_stack()
         cam = rendered.station.camera
         geo = SpectralGeometry.from_station(rendered.station)
         track = find_track(frames, estimate_background(frames, camera=cam), geo, camera=cam,

@@ -27,7 +27,7 @@ from scipy.ndimage import gaussian_filter
 
 from ..config import Camera, Station
 from ..optics import SpectralGeometry
-from ..video import encode
+from ..video import FrameStack, encode
 from .emission import WAVELENGTH_RANGE_NM, EmissionModel, build_emission
 from .scene import LightCurve, Stars, Trajectory, make_light_curve, make_stars, make_trajectory, star_spectrum
 from .spec import EventSpec
@@ -126,6 +126,12 @@ class Rendered:
     light_curve: LightCurve
     station: Station
     geometry: SpectralGeometry
+
+    def frame_stack(self) -> FrameStack:
+        """The rendered video as the pipeline sees it after decoding (no file written)."""
+        fields = 2 if self.station.camera.interlaced else 1
+        exposure_s = self.exposures[0].t_end_s - self.exposures[0].t_start_s
+        return FrameStack(stored=self.stored, camera=self.station.camera, fps=1.0 / (exposure_s * fields))
 
 
 def _splat(x: np.ndarray, y: np.ndarray, w: np.ndarray, width: int, height: int) -> np.ndarray:

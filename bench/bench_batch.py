@@ -37,7 +37,7 @@ from pathlib import Path
 REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO))
 
-from meteorspec.batch import find_events, run_night  # noqa: E402
+from meteorspec.batch import find_events, run_event, run_night  # noqa: E402
 
 
 def replicate_night(night: Path, dest: Path, copies: int) -> Path:
@@ -69,11 +69,55 @@ def timed(events, out: Path, *, repeat: int, **kw) -> tuple[float, int]:
     return best, n_ok
 
 
+def _warm_worker() -> None:
+    import meteorspec.pipeline  # noqa: F401 - imports outside the timed part, as a warm Dask worker has them
+
+
+def plain_processes(events, out: Path, *, workers: int) -> tuple[float, int]:
+    """The same events on ``workers`` plain processes, no Dask: the ceiling for this machine.
+
+    A :class:`concurrent.futures.ProcessPoolExecutor` of spawned, single-threaded-BLAS processes
+    runs :func:`meteorspec.batch.run_event` per event. The ratio of this run to the serial one is
+    what the machine itself allows for this work (shared caches, memory bandwidth, other load);
+    the gap between it and the Dask runs is Dask's own cost.
+    """
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    from meteorspec.batch import SINGLE_THREAD_BLAS, EventJob
+
+    out.mkdir(parents=True)
+    jobs = [EventJob(event_path=str(Path(e).resolve()), run_root=str(Path(r).resolve()), out_dir=str(out.resolve()))
+            for e, r in events]
+    saved = {var: os.environ.get(var) for var in SINGLE_THREAD_BLAS}
+    os.environ.update({var: "1" for var in SINGLE_THREAD_BLAS})  # inherited by the spawned processes
+    try:
+        with ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("spawn"),
+                                 initializer=_warm_worker) as pool:
+            list(pool.map(_warm_worker_task, range(workers)))  # start and import before the clock
+            t0 = time.perf_counter()
+            rows = list(pool.map(run_event, jobs))
+            seconds = time.perf_counter() - t0
+    finally:
+        for var, value in saved.items():
+            if value is None:
+                os.environ.pop(var, None)
+            else:
+                os.environ[var] = value
+    return seconds, sum(row.status != "failed" for row in rows)
+
+
+def _warm_worker_task(_: int) -> None:
+    time.sleep(0.5)  # keeps each process busy long enough that every process gets one
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--night", default=str(REPO / "sample_events"), help="folder of events")
     parser.add_argument("--copies", type=int, default=2, help="copies of the night to process")
     parser.add_argument("--repeat", type=int, default=1, help="runs per configuration; the best is reported")
+    parser.add_argument("--ceiling", action="store_true",
+                        help="also run the events on plain processes without Dask (the machine's own ceiling)")
     args = parser.parse_args(argv)
 
     night = Path(args.night)
@@ -96,6 +140,8 @@ def main(argv: list[str] | None = None) -> int:
             timed(events[:2], Path(tmp) / "warmup", repeat=1, scheduler=cluster.scheduler_address)  # imports
             results["2 workers, warm"] = timed(events, Path(tmp) / "warm", repeat=args.repeat,
                                                scheduler=cluster.scheduler_address)
+        if args.ceiling:
+            results["2 plain processes"] = plain_processes(events, Path(tmp) / "plain", workers=2)
     base = n / results["serial"][0] * 60
     for name, (seconds, n_ok) in results.items():
         rate = n / seconds * 60

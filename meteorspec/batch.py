@@ -51,6 +51,9 @@ from .version import software_version
 
 NIGHT_TABLE = "night.csv"
 
+# Imported by every local Dask worker as it starts.
+PIPELINE_MODULE = "meteorspec.pipeline"
+
 # Thread-count variables of the BLAS libraries numpy and scipy may load (see meteorspec.cli).
 SINGLE_THREAD_BLAS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
@@ -466,6 +469,9 @@ def start_local_cluster(workers: int):
     match a serial run bit for bit; and not distributed's ``MALLOC_TRIM_THRESHOLD_=65536``,
     which makes glibc hand every large numpy buffer back to the OS (measured: one sample
     event 5.8 s -> 8.6 s); the pipeline allocates and frees large arrays per frame.
+
+    Each worker imports the pipeline (numpy, scipy, astropy, OpenCV; about 1 s of CPU) while
+    it starts, not inside its first event.
     """
     import dask
     from distributed import LocalCluster
@@ -476,7 +482,21 @@ def start_local_cluster(workers: int):
     pre_spawn.update({var: "1" for var in SINGLE_THREAD_BLAS})
     with dask.config.set({"distributed.nanny.pre-spawn-environ": pre_spawn}):
         return LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                            dashboard_address="127.0.0.1:0", host="127.0.0.1", silence_logs=logging.ERROR)
+                            dashboard_address="127.0.0.1:0", host="127.0.0.1", silence_logs=logging.ERROR,
+                            preload=[PIPELINE_MODULE])
+
+
+def input_size_bytes(job: EventJob) -> int:
+    """Bytes of the event's folder on disk (video file or frame folder): a cheap estimate of its cost.
+
+    Decoding, background and extraction scale with the frames times pixels that the
+    video holds; 0 if the folder cannot be read (the event then fails quickly anyway).
+    """
+    folder = Path(job.event_path).parent
+    try:
+        return sum(f.stat().st_size for f in folder.rglob("*") if f.is_file())
+    except OSError:
+        return 0
 
 
 def _run_on_dask(jobs: list[EventJob], finished: Callable[[EventRow], None], *, workers: int,
@@ -496,8 +516,12 @@ def _run_on_dask(jobs: list[EventJob], finished: Callable[[EventRow], None], *, 
         # A fresh key per submission: a re-run must run again (inputs may have changed on disk),
         # and two nights sent to one shared cluster must never be taken for the same task.
         run_id = uuid.uuid4().hex[:12]
-        futures = {client.submit(run_event, job, key=f"meteorspec-{run_id}-{i}-{Path(job.event_path).parent.name}"): job
-                   for i, job in enumerate(jobs)}
+        # Largest inputs first (longest processing time first): the last events of a night then
+        # are short ones, so no worker idles for long while another finishes a fireball.
+        order = sorted(range(len(jobs)), key=lambda i: -input_size_bytes(jobs[i]))
+        futures = {client.submit(run_event, jobs[i], priority=len(jobs) - rank,
+                                 key=f"meteorspec-{run_id}-{i}-{Path(jobs[i].event_path).parent.name}"): jobs[i]
+                   for rank, i in enumerate(order)}
         for future in as_completed(futures):
             job = futures[future]
             try:

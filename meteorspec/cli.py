@@ -12,6 +12,9 @@ Commands
     Text summary of one event file.
 ``meteorspec simulate --out DIR [--preset NAME ...] [--random N --seed S]``
     Write synthetic events (the bundled sample set by default).
+``meteorspec response SOURCE --star X Y TEFF --out FILE [--station FILE | --stations DIR] [--force]``
+    Derive a station response curve (contract section 3) from the first-order
+    spectrum of a star of known effective temperature in an event or a clip.
 """
 
 from __future__ import annotations
@@ -164,6 +167,75 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     return status
 
 
+def _cmd_response(args: argparse.Namespace) -> int:
+    import numpy as np
+
+    from .errors import InputError
+    from .extinction import ExtinctionModel
+    from .optics import SpectralGeometry
+    from .starspec import TEMPERATURE_RANGE_K, open_clip, stack_clip, star_region, star_response
+
+    out = Path(args.out)
+    source = Path(args.source)
+    x_px, y_px, temperature_k = args.star
+    try:
+        if out.exists() and not args.force:
+            raise InputError(out, "already exists; use --force to replace it")
+        if out.is_dir():
+            raise InputError(out, "is a folder; give the response file name")
+        if args.station is not None and args.stations is not None:
+            raise InputError(args.station, "give either --station or --stations, not both")
+        video, station = open_clip(source, station_file=args.station, stations_dir=args.stations)
+        lo_k, hi_k = TEMPERATURE_RANGE_K
+        if not lo_k <= temperature_k <= hi_k:  # also false for NaN
+            raise InputError(source, f"star temperature {temperature_k:g} K is not within {lo_k:.0f}-{hi_k:.0f} K")
+        if not (args.smooth_nm > 0 and args.step_nm > 0):  # also false for NaN
+            raise InputError(source, "--smooth-nm and --step-nm must be positive")
+        extinction = None
+        if args.extinction:
+            if station.pointing is None:
+                raise InputError(station.path, "no [pointing] section: cannot correct extinction (drop --extinction)",
+                                 key="[pointing]")
+            extinction = ExtinctionModel.for_station(station)
+        geometry = SpectralGeometry.from_station(station)
+        camera = station.camera
+        if not (-0.5 <= x_px <= camera.width - 0.5 and -0.5 <= y_px <= camera.height - 0.5):
+            raise InputError(video, f"star position ({x_px:g}, {y_px:g}) is outside the "
+                             f"{camera.width}x{camera.height} frame")
+        region = star_region(geometry, x_px, y_px, camera=camera, order=station.grating.orders[0])
+        stack = stack_clip(video, camera=camera, region=region, method=args.stack)
+    except InputError as exc:
+        print(f"meteorspec: {exc}", file=sys.stderr)
+        return 2
+    try:
+        result = star_response(stack, station, x_px, y_px, temperature_k, geometry=geometry,
+                               extinction=extinction, smooth_nm=args.smooth_nm, step_nm=args.step_nm)
+    except ValueError as exc:
+        print(f"meteorspec: {video}: star near ({x_px:g}, {y_px:g}): {exc}", file=sys.stderr)
+        return 1
+    star, resp = result.star, result.response
+    alt = "" if result.altitude_deg != result.altitude_deg else f", altitude {result.altitude_deg:.1f} deg"
+    print(f"star: zeroth order at ({star.x_px:.2f}, {star.y_px:.2f}), PSF sigma {star.psf_sigma_px:.2f} px{alt}, "
+          f"{stack.n_frames} frames stacked ({stack.method}), spectrum SNR {star.snr:.0f}"
+          + (f" [{', '.join(result.flags)}]" if result.flags else ""))
+    if "star_trace_offset" in result.flags:
+        print(f"note: the star's light runs up to {star.trace_offset_px:.1f} px beside the curve the station file "
+              "predicts (aperture widened); refine the grating values with 'meteorspec calibrate'")
+    try:
+        resp.write_csv(out, overwrite=args.force)
+    except FileExistsError:
+        print(f"meteorspec: {out}: already exists; use --force to replace it", file=sys.stderr)
+        return 2
+    except OSError as exc:
+        print(f"meteorspec: {out}: cannot write ({exc.strerror or exc.__class__.__name__})", file=sys.stderr)
+        return 2
+    rel = resp.response_err / resp.response
+    print(f"wrote {out}: {resp.wavelength_nm.size} rows, {resp.wavelength_nm[0]:.0f}-{resp.wavelength_nm[-1]:.0f} nm, "
+          f"{temperature_k:.0f} K black body, 1-sigma {100 * float(np.median(rel)):.1f} % typical, "
+          f"{100 * float(np.max(rel)):.1f} % at worst")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="meteorspec", description="Reduce meteor spectra from grating cameras.")
     parser.add_argument("--version", action="version", version=f"meteorspec {__version__}")
@@ -206,6 +278,27 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--perturb", action="store_true", help="random set: perturb the written grating values")
     s.add_argument("--truth", help="folder for truth JSON (default: OUT/truth)")
     s.set_defaults(func=_cmd_simulate)
+
+    rs = sub.add_parser("response", help="derive a station response curve from a star of known temperature")
+    rs.add_argument("source", help="an event folder (or its event.toml), or a clip: a video file or a folder "
+                                   "of numbered frames")
+    rs.add_argument("--star", nargs=3, type=float, required=True, metavar=("X", "Y", "TEFF"),
+                    help="approximate zeroth-order pixel of the star and its effective temperature in K")
+    rs.add_argument("--out", required=True, metavar="FILE",
+                    help="response file to write (CSV wavelength_nm,response)")
+    rs.add_argument("--station", metavar="FILE",
+                    help="station file (required for a clip; for an event, default: found as 'process' does)")
+    rs.add_argument("--stations", metavar="DIR", help="folder of <station>.toml files, for an event")
+    rs.add_argument("--stack", choices=("clipped", "mean", "median"), default="clipped",
+                    help="how frames are combined per pixel (default: clipped mean)")
+    rs.add_argument("--extinction", action="store_true",
+                    help="divide out the atmosphere towards the star (needs [pointing] in the station file)")
+    rs.add_argument("--smooth-nm", type=float, default=25.0, metavar="NM",
+                    help="smoothing scale of the curve (default 25)")
+    rs.add_argument("--step-nm", type=float, default=5.0, metavar="NM",
+                    help="row spacing of the written curve (default 5)")
+    rs.add_argument("--force", action="store_true", help="replace an existing response file")
+    rs.set_defaults(func=_cmd_response)
     return parser
 
 

@@ -10,6 +10,12 @@ Commands
     Static HTML night report (default ``OUT_DIR/report/index.html``).
 ``meteorspec show EVENT.h5``
     Text summary of one event file.
+``meteorspec review EVENT.h5 [--frames A:B] [--drop-frames LIST] [--shift-nm NM] [--stretch F] [--pin SEEN=LINE]
+[--reject-line LINE] [--ignore-nm LO-HI] [--verdict V --reviewer NAME --note TEXT] [--dry-run] [--figures DIR]
+[--window] [--history]``
+    Review one fireball by hand: correct frames, wavelength scale and line
+    identifications, re-derive lines, plasma fit, composition and class from the
+    stored per-frame spectra, and append the verdict to the event's ``/review`` log.
 ``meteorspec simulate --out DIR [--preset NAME ...] [--random N --seed S]``
     Write synthetic events (the bundled sample set by default).
 ``meteorspec response SOURCE --star X Y TEFF --out FILE [--station FILE | --stations DIR] [--force]``
@@ -102,6 +108,50 @@ def _cmd_show(args: argparse.Namespace) -> int:
     except InputError as exc:
         print(f"meteorspec: {exc}", file=sys.stderr)
         return 2
+    return 0
+
+
+def _cmd_review(args: argparse.Namespace) -> int:
+    from .errors import InputError
+    from .review import build_corrections, compare_text, open_event, review_event
+    from .review.desk import has_display, history_text, run_desk, write_figures
+
+    path = Path(args.event_file)
+    try:
+        corrections = build_corrections(path, frames=args.frames, drop_frames=args.drop_frames,
+                                        shift_nm=args.shift_nm, stretch=args.stretch, pins=tuple(args.pin or ()),
+                                        reject=tuple(args.reject_line or ()), ignore_nm=tuple(args.ignore_nm or ()))
+        view = open_event(path)
+        if args.history:
+            print(history_text(path))
+            if corrections.is_empty and args.verdict is None and not (args.window or args.figures):
+                return 0
+        verdict = args.verdict
+        figures = args.figures
+        if args.window and not has_display():
+            figures = figures if figures is not None else str(path.with_name(f"{path.stem}_review"))
+            print(f"no display for the review window: figures go to {figures} instead")
+        elif args.window:
+            choice = run_desk(view, corrections)
+            if choice is None:
+                print("meteorspec: review window closed without a decision; nothing recorded")
+                return 0
+            corrections, verdict = choice.corrections, choice.verdict or verdict
+        outcome = review_event(path, corrections, verdict=verdict, reviewer=args.reviewer,
+                               note=args.note or "", dry_run=args.dry_run, view=view)
+        if figures:
+            for figure in write_figures(view, outcome.rework, figures):
+                print(f"figure: {figure}")
+    except InputError as exc:
+        print(f"meteorspec: {exc}", file=sys.stderr)
+        return 2
+    print(compare_text(outcome))
+    if outcome.written is not None:
+        print(f"recorded: {path}:/review/{outcome.written} ({verdict}, {args.reviewer.strip()})")
+    elif args.dry_run:
+        print("dry run: nothing written" + (f" (would record /review entry: {verdict})" if verdict else ""))
+    elif verdict is None:
+        print("nothing recorded: give --verdict and --reviewer to record this review")
     return 0
 
 
@@ -261,6 +311,38 @@ def build_parser() -> argparse.ArgumentParser:
     w = sub.add_parser("show", help="print a text summary of one event file")
     w.add_argument("event_file", help="an <event id>.h5 file")
     w.set_defaults(func=_cmd_show)
+
+    v = sub.add_parser("review", help="review one fireball by hand and record the verdict in its event file")
+    v.add_argument("event_file", help="an <event id>.h5 file")
+    g = v.add_argument_group("frames (rows of /spectrum/per_frame, counted from 0)")
+    g.add_argument("--frames", metavar="FIRST:LAST", help="use only this span of frames (inclusive; 5: or :20 "
+                                                         "leave one end open)")
+    g.add_argument("--drop-frames", metavar="LIST", help="leave these frames out, e.g. 12,17-19 (an aircraft, "
+                                                         "a saturated flare)")
+    g = v.add_argument_group("wavelength scale (new = old + shift + (stretch - 1)(old - 550 nm))")
+    g.add_argument("--shift-nm", type=float, metavar="NM", help="add NM to every wavelength")
+    g.add_argument("--stretch", type=float, metavar="FACTOR", help="scale wavelength offsets from 550 nm")
+    g.add_argument("--pin", action="append", metavar="SEEN=LINE",
+                   help="the peak seen near SEEN nm is LINE, e.g. '515.2=Mg I 517.3' or '515.2=517.268' "
+                        "(repeatable: one pin shifts, two or more also stretch)")
+    g = v.add_argument_group("lines")
+    g.add_argument("--reject-line", action="append", metavar="LINE",
+                   help="rule out a line identification for this event, e.g. 'Fe I 527.0' (repeatable)")
+    g.add_argument("--ignore-nm", action="append", metavar="LO-HI",
+                   help="leave a wavelength span out of the fit, e.g. 655-658 (repeatable)")
+    g = v.add_argument_group("decision (recorded in /review; nothing is written without --verdict)")
+    g.add_argument("--verdict", choices=("accepted", "rejected", "another-look"),
+                   help="accepted, rejected, or another-look (needs another look)")
+    g.add_argument("--reviewer", metavar="NAME", help="who reviewed (required with --verdict)")
+    g.add_argument("--note", metavar="TEXT", help="why, in a sentence")
+    g = v.add_argument_group("looking")
+    g.add_argument("--dry-run", action="store_true", help="re-derive and print what would change; write nothing")
+    g.add_argument("--figures", metavar="DIR", help="write the review figures (PNG) to DIR")
+    g.add_argument("--window", action="store_true",
+                   help="open the interactive review window (press h in it for the keys); without a display "
+                        "the figures are written instead (to --figures DIR, default <event>_review/)")
+    g.add_argument("--history", action="store_true", help="print the event's review log first")
+    v.set_defaults(func=_cmd_review)
 
     c = sub.add_parser("calibrate", help="refine each station's grating (and lens) from a night of events")
     c.add_argument("events", nargs="+", help="event folders, event.toml files, or folders of events")

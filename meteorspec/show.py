@@ -131,7 +131,26 @@ def summarise(path: str | Path, *, max_lines: int = 12) -> str:
             klass += f": {c['class_reason']}"
         out.append(klass + f", speed {_f(c.get('speed_km_s'), '{:.1f}')} km/s")
 
-    review = g.get("review")
-    n_review = len(review["groups"]) if review is not None else 0
-    out.append(f"review   {n_review} manual decision(s) recorded")
+    out += review_lines(g.get("review"), automatic_class=None if comp is None else comp["attrs"].get("class"))
     return "\n".join(out)
+
+
+def review_lines(review: Mapping[str, Any] | None, *, automatic_class: Any = None) -> list[str]:
+    """The review log in brief: how many entries, and the latest verdict, reviewer, note and class."""
+    from .review.record import latest_review, reviewed_class
+
+    n_review = len(review["groups"]) if review is not None else 0
+    out = [f"review   {n_review} manual decision(s) recorded"]
+    latest = latest_review(review)
+    if latest is None:
+        return out
+    name, entry = latest
+    a = entry["attrs"]
+    out[0] += f"; latest ({name}): {a.get('verdict', '?')} by {a.get('reviewer', '?')}, {a.get('time_utc', '?')}"
+    auto = a.get("automatic_class") or automatic_class or "n/a"
+    out.append(f"  reviewed class {reviewed_class(entry) or 'n/a'} (automatic {auto})")
+    corr = [c for c in a.get("corrections", []) if c and c != "none"]
+    out.append("  corrections " + ("; ".join(corr) if corr else "none"))
+    if a.get("note"):
+        out.append(f"  note: {a['note']}")
+    return out

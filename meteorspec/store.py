@@ -4,12 +4,15 @@ Writes are atomic: the file is built under a temporary name in the same folder
 and renamed over the old one only when complete, so a crash never leaves a
 half-written file and never destroys the previous result. An existing
 ``/review`` group (manual decisions) is copied into the new file unchanged.
-h5py is used only in this module.
+Reviews are appended to that group by :func:`append_review` with the same
+discipline (copy, add, flush, rename), as numbered entries that are never
+changed afterwards. h5py is used only in this module.
 """
 
 from __future__ import annotations
 
 import os
+import shutil
 import tempfile
 from pathlib import Path
 from typing import Any
@@ -152,6 +155,99 @@ def _carry_review(old: Path, new: h5py.File) -> None:
                 new.create_group("review")
     except OSError as exc:
         raise InputError(old, f"existing output cannot be read, not overwriting it ({exc})") from None
+
+
+# --------------------------------------------------------------------------- review log
+
+
+def _next_entry_name(review: h5py.Group) -> str:
+    numbers = [int(name) for name in review if name.isdigit()]
+    return f"{max(numbers, default=0) + 1:04d}"
+
+
+def append_review(path: str | Path, entry: dict[str, Any]) -> str:
+    """Add one manual review to the event's ``/review`` log, atomically; return the entry's name.
+
+    The log is append-only: entries are subgroups ``0001``, ``0002``, ... in the order they
+    were made, and nothing already in the file is changed. The new file is the old one
+    copied under a temporary name in the same folder, with the entry added, flushed and
+    renamed over the old one, so a crash leaves either the old file or the new one, never a
+    half-written one (the discipline of :func:`write_event`).
+
+    Parameters
+    ----------
+    path : str or Path
+        An event file (schema ``meteorspec-event/1``).
+    entry : dict
+        ``{"attrs": {...}, "datasets": {name: (array, unit)}, "groups": {...}}`` as a stage
+        part (see ``_write_part``).
+
+    Raises
+    ------
+    InputError
+        If the file is missing, unreadable or not an event file, or cannot be written.
+    """
+    path = Path(path)
+    root = read_root(path)
+    if root.get("schema") != SCHEMA:
+        raise InputError(path, f"not a meteorspec event file (schema {root.get('schema')!r}, expected {SCHEMA!r})")
+    try:
+        fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    except OSError as exc:
+        raise InputError(path, f"cannot write beside the file ({exc.strerror or exc})") from None
+    os.close(fd)
+    tmp = Path(tmp_name)
+    try:
+        with _exclusive(path):  # two reviewers at once: the second copies the first one's result
+            shutil.copyfile(path, tmp)
+            with h5py.File(tmp, "a") as f:
+                review = f.require_group("review")
+                name = _next_entry_name(review)
+                _write_part(review.create_group(name), entry)
+            with open(tmp, "rb+") as fh:  # data on disk before the rename makes it visible
+                os.fsync(fh.fileno())
+            os.chmod(tmp, path.stat().st_mode & 0o777)
+            os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return name
+
+
+class _exclusive:
+    """Advisory lock on the event's folder while a review is appended (POSIX ``flock``; none elsewhere).
+
+    Only reviews take it: it orders reviewers, each of whom copies the file as the previous
+    one left it. The folder, not the file, is locked: HDF5 takes its own ``flock`` on the
+    files it opens, and the file is replaced by every append.
+    """
+
+    def __init__(self, path: Path):
+        self.folder = path.parent
+        self.fd: int | None = None
+
+    def __enter__(self) -> _exclusive:
+        try:
+            import fcntl
+        except ImportError:  # not POSIX: no lock
+            return self
+        self.fd = os.open(self.folder, os.O_RDONLY)
+        fcntl.flock(self.fd, fcntl.LOCK_EX)
+        return self
+
+    def __exit__(self, *exc: object) -> bool:
+        if self.fd is not None:
+            os.close(self.fd)  # releases the lock
+        return False
+
+
+def read_reviews(path: str | Path) -> list[dict[str, Any]]:
+    """The ``/review`` log of an event file, oldest first: ``[{"name", "attrs", "datasets", "groups"}]``."""
+    with _open(path) as f:
+        if "review" not in f:
+            return []
+        return [{"name": name, **_group(f["review"][name])} for name in sorted(f["review"])
+                if isinstance(f["review"][name], h5py.Group)]
 
 
 # --------------------------------------------------------------------------- reading

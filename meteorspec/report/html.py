@@ -69,6 +69,11 @@ nav.pager { margin: 8px 0 0; font-size: 14px; }
 nav.pager a { margin-right: 16px; }
 .grid { display: grid; grid-template-columns: repeat(auto-fit, minmax(280px, 1fr)); gap: 12px 28px; }
 code { font-size: 12px; }
+.muted { color: var(--muted); }
+.verdict { display: inline-block; padding: 0 7px; border-radius: 3px; font-size: 12px; border: 1px solid; }
+.verdict.accepted { color: var(--ok); border-color: var(--ok); }
+.verdict.rejected { color: var(--failed); border-color: var(--failed); }
+.verdict.another-look { color: var(--partial); border-color: var(--partial); }
 """
 
 
@@ -263,6 +268,88 @@ def normal_band(speed_km_s: np.ndarray | None = None) -> tuple[dict[str, np.ndar
     return {"speed_km_s": v, "centre": centre, "lower": scaled(lo), "upper": scaled(hi)}, ""
 
 
+# --------------------------------------------------------------------------- manual review
+
+
+VERDICT_TEXT = {"accepted": "accepted", "rejected": "rejected", "another-look": "needs another look"}
+
+
+def _verdict_badge(verdict: str) -> str:
+    return f'<span class="verdict {_e(verdict)}">{_e(VERDICT_TEXT.get(verdict, verdict or "no verdict"))}</span>'
+
+
+def review_cell(ev: Mapping[str, Any]) -> str:
+    """Night-table cell: the latest verdict and reviewed class, or a dash when never reviewed."""
+    from ..review.record import latest_review, reviewed_class
+
+    latest = latest_review(ev["groups"].get("review"))
+    if latest is None:
+        return '<span class="muted">&ndash;</span>'
+    _, entry = latest
+    a = entry["attrs"]
+    auto = str(a.get("automatic_class", ""))
+    cls = reviewed_class(entry)
+    changed = f" &rarr; {_e(cls)}" if cls and cls != auto else ""
+    who = _e(a.get("reviewer", ""))
+    return f'{_verdict_badge(str(a.get("verdict", "")))}{changed} <span class="muted">{who}</span>'
+
+
+def _review_summary_html(ev: Mapping[str, Any]) -> str:
+    """The latest manual review next to the automatic result (event page, near the top)."""
+    from ..review.record import latest_review, reviewed_class
+
+    latest = latest_review(ev["groups"].get("review"))
+    parts = ["<h2>Manual review</h2>"]
+    if latest is None:
+        parts.append('<p class="muted">not reviewed yet (<code>meteorspec review EVENT.h5</code>)</p>')
+        return "\n".join(parts)
+    name, entry = latest
+    a = entry["attrs"]
+    res = entry["groups"].get("result", {"attrs": {}})["attrs"]
+    comp = (ev["groups"].get("composition") or {"attrs": {}})["attrs"]
+    auto_cls = comp.get("class", "")
+    if a.get("automatic_class") and a["automatic_class"] != auto_cls:
+        parts.append(f'<p class="note">Reviewed when the automatic class was {_e(a["automatic_class"])} '
+                     f'(the event has been processed again since).</p>')
+    n = len(ev["groups"]["review"]["groups"])
+    parts.append(f'<p>{_verdict_badge(str(a.get("verdict", "")))} by <b>{_e(a.get("reviewer", ""))}</b>, '
+                 f'{_e(a.get("time_utc", ""))} (entry {_e(name)} of {n})</p>')
+    if a.get("note"):
+        parts.append(f'<p class="note">{_e(a["note"])}</p>')
+    rows = [("class", _e(auto_cls), _e(reviewed_class(entry)))]
+    rows += [(k.capitalize(), _pm(comp, k), _pm(res, k)) for k in ("na", "mg", "fe")]
+    parts.append("<table><tr><th></th><th>automatic</th><th>reviewed</th></tr>"
+                 + "".join(f"<tr><th>{k}</th><td class=num>{x}</td><td class=num>{y}</td></tr>" for k, x, y in rows)
+                 + "</table>")
+    corr = [c for c in a.get("corrections", []) if c and c != "none"]
+    parts.append("<p>Corrections: " + (_e("; ".join(corr)) if corr else "none (verdict on the automatic result)")
+                 + "</p>")
+    return "\n".join(parts)
+
+
+def _review_log_html(review: Mapping[str, Any] | None) -> str:
+    """Every entry of the append-only review log, oldest first."""
+    from ..review.record import reviewed_class
+
+    parts = ["<h2>Review log</h2>"]
+    names = sorted(review["groups"]) if review is not None else []
+    if not names:
+        parts.append("<p>no manual decisions recorded</p>")
+        return "\n".join(parts)
+    rows = []
+    for name in names:
+        entry = review["groups"][name]
+        a = entry["attrs"]
+        corr = [c for c in a.get("corrections", []) if c and c != "none"]
+        rows.append(f"<tr><td>{_e(name)}</td><td>{_e(a.get('time_utc', ''))}</td>"
+                    f"<td>{_verdict_badge(str(a.get('verdict', '')))}</td><td>{_e(a.get('reviewer', ''))}</td>"
+                    f"<td>{_e(reviewed_class(entry))}</td><td>{_e('; '.join(corr) or 'none')}</td>"
+                    f"<td>{_e(a.get('note', ''))}</td></tr>")
+    parts.append("<table><tr><th>entry</th><th>time (UTC)</th><th>verdict</th><th>reviewer</th><th>class</th>"
+                 "<th>corrections</th><th>note</th></tr>" + "".join(rows) + "</table>")
+    return "\n".join(parts)
+
+
 # --------------------------------------------------------------------------- pages
 
 
@@ -380,6 +467,7 @@ def _event_page(ev: Mapping[str, Any], *, h5_href: str, img_dir: Path, stem: str
                                         f"<td>{_e(_flag_text(f))}</td></tr>" for f in flags) + "</table>")
     else:
         body.append("<p>none</p>")
+    body.append(_review_summary_html(ev))
     body.append(_event_sections(ev, img_dir, "../img/", stem))
     cal = _group(ev, "calibration")
     body.append("<h2>Calibration values used</h2>")
@@ -390,15 +478,7 @@ def _event_page(ev: Mapping[str, Any], *, h5_href: str, img_dir: Path, stem: str
                        f"<td><code>{_e(str(g['attrs'].get('sha256', ''))[:16])}&hellip;</code></td></tr>"
                        for role, g in sorted(inputs["groups"].items()))
         body.append(f"<h2>Inputs</h2><table><tr><th>role</th><th>path</th><th>SHA-256</th></tr>{rows}</table>")
-    review = ev["groups"].get("review")
-    body.append("<h2>Review log</h2>")
-    if review is None or not (review["groups"] or review["attrs"]):
-        body.append("<p>no manual decisions recorded</p>")
-    else:
-        rows = "".join(f"<tr><td>{_e(name)}</td><td>"
-                       f"{_e(', '.join(f'{k}: {v}' for k, v in g['attrs'].items()))}</td></tr>"
-                       for name, g in sorted(review["groups"].items()))
-        body.append(f"<table>{rows}</table>")
+    body.append(_review_log_html(ev["groups"].get("review")))
     title = f"Event {a.get('event_id', stem)}"
     return _page(title, "meteorspec event report", "\n".join(body), css_href="../style.css")
 
@@ -443,7 +523,7 @@ def write_report(out_dir: str | Path, *, report_dir: str | Path | None = None) -
     for i, (path, ev, problem) in enumerate(events):
         h5_rel = os.path.relpath(path, rep / "events")
         if ev is None:
-            rows.append(f"<tr><td>{_e(path.stem)}</td><td>{_badge('failed')}</td><td colspan=7></td>"
+            rows.append(f"<tr><td>{_e(path.stem)}</td><td>{_badge('failed')}</td><td colspan=8></td>"
                         f'<td class="error">{_e(problem)}</td></tr>')
             continue
         page = _event_page(ev, h5_href=h5_rel, img_dir=rep / "img", stem=stems[i],
@@ -459,6 +539,7 @@ def write_report(out_dir: str | Path, *, report_dir: str | Path | None = None) -
             f"<td>{_badge(str(a.get('status', '')))}</td><td>{_e(a.get('station', ''))}</td>"
             f"<td>{_e(cls)}</td><td class=num>{_pm(comp, 'na')}</td><td class=num>{_pm(comp, 'mg')}</td>"
             f"<td class=num>{_pm(comp, 'fe')}</td><td class=num>{_num(comp.get('speed_km_s'), '{:.1f}')}</td>"
+            f"<td>{review_cell(ev)}</td>"
             f"<td>{_flags_html(list(a.get('flags', [])))}</td>"
             f'<td class="error">{_e(a.get("error", ""))}</td></tr>')
 
@@ -487,7 +568,7 @@ def write_report(out_dir: str | Path, *, report_dir: str | Path | None = None) -
     if any(c.get("class") for c in comps) is False and comps:
         body.append(_missing_note("composition", "composition for any event"))
     body.append("<h2>Events</h2><table><tr><th>event</th><th>status</th><th>station</th><th>class</th>"
-                "<th>Na</th><th>Mg</th><th>Fe</th><th>speed km/s</th><th>flags</th><th>error</th></tr>"
+                "<th>Na</th><th>Mg</th><th>Fe</th><th>speed km/s</th><th>reviewed</th><th>flags</th><th>error</th></tr>"
                 + "".join(rows) + "</table>")
     index = rep / "index.html"
     index.write_text(_page(f"Night report: {out.resolve().name}", f"{_e(out.resolve())}", "\n".join(body),

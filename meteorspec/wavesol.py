@@ -83,7 +83,9 @@ class LineMeasurements(_Table):
         Its laboratory (air) wavelength: for a blend the model-weighted centroid of the
         lines that make it.
     species : ndarray of str
-        Dominant species of the feature.
+        Dominant species of the feature, or ``"blend <lo>-<hi>"`` for a blend window (the
+        whole line pattern of ``lo``-``hi`` nm; ``lab_nm`` is then the template's light
+        centroid in the window).
     tangent_x, tangent_y : ndarray of float
         Unit vector along the spectrum at the measurement (the along-dispersion direction
         in which ``sigma_along_px`` applies).
@@ -141,7 +143,8 @@ class WavelengthSolution:
     rms_nm : float
         RMS of the line-position residuals used in the fit (NaN without a fit).
     n_lines : int
-        Distinct spectral features (lab wavelengths) with accepted measurements.
+        Distinct spectral features and blend windows (lab wavelengths) with accepted
+        measurements.
     n_frames_used : int
         Frames that contributed accepted measurements.
     residuals : ResidualTable

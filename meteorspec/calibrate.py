@@ -1413,8 +1413,11 @@ class DerivedResponse:
         return ResponseCurve(wavelength_nm=self.wavelength_nm.copy(), response=self.response.copy(),
                              path=Path(path))
 
-    def write_csv(self, path: str | Path, *, overwrite: bool = False) -> Path:
+    def write_csv(self, path: str | Path, *, overwrite: bool = False, comment: str | None = None) -> Path:
         """Write ``wavelength_nm,response`` (contract section 3) atomically.
+
+        ``comment`` replaces the default first line (``# derived ... from a T K black-body star``),
+        e.g. for a curve combined from several stars.
 
         Raises
         ------
@@ -1422,8 +1425,9 @@ class DerivedResponse:
             If ``path`` exists and ``overwrite`` is False.
         """
         path = Path(path)
-        lines = [f"# derived by meteorspec from a {self.temperature_k:.0f} K black-body star",
-                 "wavelength_nm,response"]
+        if comment is None:
+            comment = f"derived by meteorspec from a {self.temperature_k:.0f} K black-body star"
+        lines = ["# " + " ".join(comment.split()), "wavelength_nm,response"]
         lines += [f"{w:.3f},{r:.6g}" for w, r in zip(self.wavelength_nm, self.response)]
         _write_new_file(path, "\n".join(lines) + "\n", overwrite=overwrite)
         return path
@@ -1605,6 +1609,7 @@ def _write_new_file(path: Path, text: str, *, overwrite: bool = False) -> None:
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)
+        os.chmod(tmp, 0o644)  # mkstemp makes 0600; station and response files are shared read-only data
         if overwrite:
             os.replace(tmp, path)
         else:

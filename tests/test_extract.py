@@ -110,8 +110,12 @@ def pixel_gaussian(img, x, y, energy, sigma):
 
 
 def render(geo, track, camera, lines, *, n_frames=4, fps=25.0, sigma=1.3, n_sub=24, continuum=None,
-           interlaced=False):
-    """Noise-free linear frames: ``lines`` = [(wavelength_nm, energy per exposure, ADU)]."""
+           interlaced=False, light=None):
+    """Noise-free linear frames: ``lines`` = [(wavelength_nm, energy per exposure, ADU)].
+
+    ``light(t)``: relative emission rate (default constant 1); an exposure then holds the
+    energy times the mean rate over its substeps.
+    """
     frames = []
     n_exp = 2 * n_frames if interlaced else n_frames
     expo = 1.0 / fps / (2 if interlaced else 1)
@@ -128,7 +132,8 @@ def render(geo, track, camera, lines, *, n_frames=4, fps=25.0, sigma=1.3, n_sub=
         en = np.array([c[1] for c in comps])
         if lum.any():
             xs, ys = geo.spectrum_pixel(x0[:, None], y0[:, None], lam[None, :])
-            pixel_gaussian(img, xs, ys, np.broadcast_to(en / n_sub, xs.shape), sigma)
+            rate = np.ones(ts.size) if light is None else np.asarray(light(ts), dtype=float)
+            pixel_gaussian(img, xs, ys, en[None, :] * rate[lum, None] / n_sub, sigma)
         start, step = (j % 2, 2) if interlaced else (0, 1)
         sig = img[start::step].astype(np.float32)
         frames.append(Frame(index=j, time_s=0.5 * (t0 + t1), exposure_s=expo, signal=sig,
@@ -278,17 +283,35 @@ def test_variance_matches_scatter_of_noise_realisations():
     bg = FlatBackground(cam.height, cam.width, sky_adu=20.0, read_noise_adu=3.0, gain_e_per_adu=2.0)
     grid = np.arange(505.0, 575.0, 0.5)
     rng = np.random.default_rng(7)
-    fluxes, variances = [], []
+    fluxes, variances, win_err, naive_err, rho = [], [], [], [], []
     for _ in range(200):
         img = rng.poisson((clean.signal + 20.0) * 2.0) / 2.0 + 3.0 * rng.standard_normal(clean.signal.shape)
         fr = Frame(0, clean.time_s, clean.exposure_s, img.astype(np.float32), clean.saturated)
         fs = extract_spectra([fr], bg, tr, geo, camera=cam, wavelength_grid_nm=grid, optimal=False)
         fluxes.append(fs.flux[0])
         variances.append(fs.variance[0])
+        wf = fs.whole_flight()
+        win_err.append(wf.integrate(508.0, 532.0)[1])
+        sel = (grid >= 508.0) & (grid < 532.0)
+        naive_err.append(np.sqrt(np.sum((wf.flux_err[sel] * wf.bin_width_nm[sel]) ** 2)))
+        rho.append(wf.correlation[:, 0])
     fluxes, variances = np.array(fluxes), np.array(variances)
     ratio = np.var(fluxes, axis=0, ddof=1) / np.mean(variances, axis=0)
     inner = slice(10, -10)
     assert 0.9 < np.mean(ratio[inner]) < 1.1
+    # Neighbouring bins share pixels (2 bins per pixel here), so their noise is correlated: the
+    # stated correlation of adjacent bins matches the sample correlation (200 draws: standard
+    # error of a coefficient ~0.05, averaged over ~120 bins far smaller; 0.05 bar), and the error
+    # of a 24 nm sum, which needs it, matches the scatter of that sum (sample sd of 200 draws:
+    # 5 % standard error, 0.85-1.15 is a 3-sigma bar). Without the covariance the error is far
+    # too small (the bins' noise is positively correlated).
+    emp = np.array([np.corrcoef(fluxes[:, j], fluxes[:, j + 1])[0, 1] for j in range(10, grid.size - 11)])
+    assert abs(np.mean(emp) - np.mean(np.array(rho)[:, 10:grid.size - 11])) < 0.05
+    assert np.mean(emp) > 0.3
+    sel = (grid >= 508.0) & (grid < 532.0)
+    e_win = (fluxes[:, sel] * fs.bin_width_nm[sel]).sum(axis=1)
+    assert 0.85 < np.std(e_win, ddof=1) / np.mean(win_err) < 1.15
+    assert np.std(e_win, ddof=1) / np.mean(naive_err) > 1.3
     # and the estimate is unbiased: mean line energy equals the rendered one within 3 sigma of the mean
     e = (fluxes * fs.bin_width_nm)[:, np.abs(grid - 520.0) < 12].sum(axis=1)
     assert abs(e.mean() - 2000.0) < 3 * e.std(ddof=1) / np.sqrt(e.size)
@@ -305,19 +328,25 @@ def test_optimal_extraction_beats_boxcar_on_faint_line_and_is_unbiased():
     bg = FlatBackground(cam.height, cam.width, sky_adu=30.0, read_noise_adu=4.0, gain_e_per_adu=1.0)
     grid = np.arange(505.0, 575.0, 0.5)
     rng = np.random.default_rng(11)
-    e_box, e_opt = [], []
+    e_box, e_opt, err_box, err_opt = [], [], [], []
     for _ in range(60):
         frs = []
         for c in clean:
             img = rng.poisson(c.signal + 30.0) + 4.0 * rng.standard_normal(c.signal.shape)
             frs.append(Frame(c.index, c.time_s, c.exposure_s, img.astype(np.float32), c.saturated))
-        for opt, out in ((False, e_box), (True, e_opt)):
+        for opt, out, err in ((False, e_box, err_box), (True, e_opt, err_opt)):
             fs = extract_spectra(frs, bg, tr, geo, camera=cam, wavelength_grid_nm=grid, optimal=opt)
-            out.append(line_energy(fs, 520.0, 12.0)[0])
+            e, de = line_energy(fs, 520.0, 12.0)
+            out.append(e)
+            err.append(de)
     e_box, e_opt = np.array(e_box), np.array(e_opt)
     # truth: line + continuum in the +-3 nm window, two frames
     truth = 2 * (120.0 + 3.0 * np.count_nonzero(np.abs(np.arange(505.0, 575.0, 0.2) - 520.0) < 12))
     assert np.std(e_opt) < 0.85 * np.std(e_box)
+    # the stated errors of the sums (with the covariance of bins that share pixels) match the
+    # scatter: 60 draws give a sample sd to ~9 %, so 0.7-1.3 is a 3-sigma bar
+    for e, err in ((e_box, err_box), (e_opt, err_opt)):
+        assert 0.7 < np.std(e, ddof=1) / np.mean(err) < 1.3
     # unbiased within 3 standard errors of the mean (60 realisations) + 2 % for the profile estimate
     for e in (e_box, e_opt):
         assert abs(e.mean() - truth) < 3 * e.std(ddof=1) / np.sqrt(e.size) + 0.02 * truth
@@ -433,3 +462,90 @@ def test_frame_weights_from_the_spectra_recover_a_light_curve_with_masked_bins()
     weight = np.where(np.arange(n) == 2, w_true[2] * 7.0, 1.0)  # scale from frame 2, others a guess
     _spectral_weights(weight, np.where(mask, np.nan, flux), variance, mask, widths)
     np.testing.assert_allclose(weight / weight.sum(), w_true / w_true.sum(), rtol=1e-6)
+
+
+def test_spectrum_leaving_the_lens_field_is_masked_where_partly_recorded():
+    # Near the rim of an all-sky lens the first order runs past the lens field
+    # (the diffracted direction turns evanescent, |w_t| >= 1 in the contract's
+    # grating formula): the spectrum ends on the sensor, and as the meteor
+    # moves that end sweeps ~13 nm per frame along the spectrum. A line the end
+    # passes during an exposure is recorded for part of it only: its bins must
+    # be masked, never returned short of light (which also drags its peak, by
+    # 0.7 nm here before the fix). Lines recorded whole keep their energy to
+    # 1.5 % (the flux bar of test_flux_conserved_on_curved_off_axis_spectrum,
+    # plus the light a 5 nm/px spectrum spreads beyond the +-22 nm window) and
+    # their peaks to 0.1 nm (the issue's bar for the true geometry, as in
+    # test_line_peaks_on_curved_all_sky_spectrum).
+    cam = camera(512, 512)
+    geo = SpectralGeometry(LensModel("equidistant", 177.5, 255.5, 255.75, k1=0.008),
+                           GratingModel(600.0, -15.0, tilt_deg=0.8, tilt_azimuth_deg=120.0))
+    tr = LinearTrack(times(4), 295.0, 481.0, 32.0, 0.0)
+    # where the spectrum ends at the start and end of the flight (no light beyond: NaN)
+    lam = np.arange(400.0, 800.0, 0.25)
+    ends = [lam[np.isfinite(geo.spectrum_pixel(*tr.position(t), lam)[0])].max() for t in (0.0, 0.16)]
+    assert 655.0 < ends[0] < 665.0 and 605.0 < ends[1] < 615.0
+    lines = [(430.0, 3000.0), (480.0, 3000.0), (530.0, 3000.0), (575.0, 3000.0), (630.0, 3000.0), (655.0, 3000.0)]
+    frames = render(geo, tr, cam, lines, n_frames=4, sigma=1.2)
+    fs = extract_spectra(frames, FlatBackground(cam.height, cam.width), tr, geo, camera=cam, optimal=False,
+                         psf_sigma_px=1.2)
+    assert "spectrum_off_frame" in fs.flags
+    for k in range(fs.n_frames):
+        for lam0, e in lines:
+            core = np.abs(fs.wavelength_nm - lam0) < 15.0
+            win = np.abs(fs.wavelength_nm - lam0) < 22.0
+            if fs.mask[k, core].any():
+                continue
+            got = np.sum(np.where(fs.mask[k, win], 0.0, fs.flux[k, win]) * fs.bin_width_nm[win])
+            assert_allclose(got, e, rtol=0.015)
+    wf = fs.whole_flight()
+    # the end sweeps over 630 nm in every frame: never seen whole
+    assert wf.mask[np.abs(wf.wavelength_nm - 630.0) < 15.0].any()
+    for lam0, _ in lines[:3]:
+        assert abs(peak_nm(fs, lam0, 22.0) - lam0) < 0.1
+
+
+@pytest.mark.parametrize("rate_per_s", [25.0, -35.0])
+def test_line_peaks_when_the_meteor_brightens_or_fades_within_each_exposure(rate_per_s):
+    # The light of a line is spread along its streak as the light curve runs
+    # during the exposure: a meteor brightening by e per 40 ms puts the streak's
+    # light centroid 0.11 of the streak past its middle. Moving at 55 deg to the
+    # dispersion on this fisheye (5 nm/px), the shear leaves 28 % of the 5 px
+    # along-dispersion streak in the wavelength coordinate, so the line moved
+    # by ~0.7 nm before the extraction placed the streak at its light centroid
+    # (light curve from the frame energies, monotone cubic of the cumulative
+    # energy). Exponential light curves, noise-free: the same 0.1 nm bar as
+    # test_line_peaks_on_curved_all_sky_spectrum.
+    cam = camera()
+    tr = LinearTrack(times(4), 100.0, 150.0, 100.0, 200.0)
+
+    def light(t):
+        return np.exp(rate_per_s * np.asarray(t))
+
+    frames = render(FISHEYE, tr, cam, [(450.0, 3000.0), (589.0, 3000.0), (777.41, 3000.0)], n_frames=4,
+                    light=light, n_sub=48)
+    tr.flux_adu = np.array([np.mean(light(t + (np.arange(48) + 0.5 - 24) / 48 / 25.0)) for t in tr.time_s])
+    fs = extract_spectra(frames, FlatBackground(cam.height, cam.width), tr, FISHEYE, camera=cam, optimal=False)
+    for lam0 in (450.0, 589.0, 777.41):
+        assert abs(peak_nm(fs, lam0, 12.0) - lam0) < 0.1
+
+
+def test_light_centroid_of_exposures_from_their_energies():
+    # Exponential and Gaussian light curves sampled by 40 ms exposures: the
+    # light-weighted mean time of each exposure (exact integrals by Gauss-
+    # Legendre quadrature) against the estimate from the exposure energies
+    # alone. Inside the flight 0.01 of an exposure (0.5 nm for the 5 nm/px
+    # fisheye with a whole exposure's 10 px streak along the dispersion, and
+    # far less after the shear); a flat light curve gives exactly 0.
+    from meteorspec.extract import _light_centroid_fraction
+
+    t_e = 0.04
+    t = (np.arange(12) + 0.5) * t_e
+    x, w = np.polynomial.legendre.leggauss(32)
+    for rate in (lambda s: np.exp(s / 0.05), lambda s: np.exp(-0.5 * ((s - 0.25) / 0.08) ** 2),
+                 lambda s: np.ones_like(s)):
+        tt = t[:, None] + 0.5 * t_e * x[None, :]
+        e = (rate(tt) * w).sum(axis=1)
+        truth = (rate(tt) * w * x).sum(axis=1) / e * 0.5
+        got = _light_centroid_fraction(t, e, {k: t_e for k in range(t.size)})
+        assert_allclose(got[1:-1], truth[1:-1], atol=0.01)
+    assert_allclose(_light_centroid_fraction(t, np.ones(t.size), {k: t_e for k in range(t.size)}), 0.0, atol=1e-12)

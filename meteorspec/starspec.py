@@ -723,7 +723,8 @@ def extract_star_spectrum(stack: StarStack, geometry: SpectralGeometry, x_px: fl
     flux, var = fs.flux[0], fs.variance[0]
     bad = fs.mask[0] | ~np.isfinite(flux) | ~np.isfinite(var) | (var <= 0)
     spec = Spectrum(fs.wavelength_nm, fs.bin_width_nm, np.where(bad, np.nan, flux),
-                    np.where(bad, np.nan, np.sqrt(np.where(bad, 1.0, var))), bad)
+                    np.where(bad, np.nan, np.sqrt(np.where(bad, 1.0, var))), bad,
+                    fs.correlation[0] if fs.correlation.size else np.zeros((0, 0)))
     flags = tuple(f for f in fs.flags if f not in ("optimal_extraction", "low_snr"))
     if shift > 1.0:
         flags += ("star_trace_offset",)

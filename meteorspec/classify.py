@@ -64,7 +64,7 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy.optimize import brentq
+from scipy.optimize import brentq, least_squares
 
 from . import atomic
 from .errors import InputError
@@ -951,37 +951,78 @@ def boundary_distance_sigma(intensity: dict[str, float] | ArrayLike, covariance:
 # Time-resolved composition
 # --------------------------------------------------------------------------------------------
 
-def _peak_time(time_s: NDArray, flux: NDArray, err: NDArray, *, min_snr: float = 3.0) -> float:
-    """Time of the light-curve maximum, refined by a weighted parabola over +-2 frames.
+def _peak_time(time_s: NDArray, flux: NDArray, err: NDArray, *, min_snr: float = 3.0,
+               top_fraction: float = 0.4, exclude: NDArray | None = None,
+               strict: bool = False) -> float:
+    """Time of the light-curve maximum from a split-Gaussian fit to the curve's top.
 
-    A 1-2-1 smoothing picks the peak frame (one noisy frame cannot win alone); the parabola
-    through the raw points around it gives a sub-frame time, kept only if its vertex lies inside
-    the fitted window (otherwise the peak frame's own time is returned).
+    A 1-2-1 smoothing (normalised over the usable frames) picks the peak frame, so one noisy
+    frame cannot win alone. The raw points of the frames around it whose smoothed flux is at
+    least ``top_fraction`` of the smoothed maximum (at least +-3 frames; gaps of unusable
+    frames inside are bridged) are then fitted, weighted by their errors, with
+    ``a exp(-(t - t0)^2 / 2 s^2)``, ``s = s_rise`` before ``t0`` and ``s_fall`` after: meteor
+    light curves are skewed (common practice: rise and fall differ), and a symmetric parabola
+    over a broad, skewed top is biased towards its wider side, while a few frames around the
+    maximum are too noisy when the top is flat (slow meteors, interlaced fields). Frames in
+    ``exclude`` (e.g. lines saturated there) do not enter; the fit then bridges them from
+    the rise and the fall, as one measures a saturated light curve from its unsaturated
+    parts. ``t0`` is kept if the fit converges inside the window; otherwise the peak frame's
+    time, or NaN with ``strict``.
     """
     good = np.isfinite(flux) & np.isfinite(err) & (err > 0)
+    if exclude is not None:
+        good &= ~np.asarray(exclude, dtype=bool)
     if not np.any(good & (flux > min_snr * np.where(good, err, np.inf))):
         return math.nan
     f = np.where(good, flux, 0.0)
-    smooth = np.convolve(np.pad(f, 1, mode="edge"), [0.25, 0.5, 0.25], mode="valid")
-    smooth = np.where(good, smooth, -np.inf)
+    kernel = [0.25, 0.5, 0.25]
+    num = np.convolve(np.pad(f, 1), kernel, mode="valid")
+    den = np.convolve(np.pad(good.astype(float), 1), kernel, mode="valid")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        smooth = np.where(good, num / den, -np.inf)
     k = int(np.argmax(smooth))
-    lo, hi = max(0, k - 2), min(len(f), k + 3)
-    sel = np.arange(lo, hi)[good[lo:hi]]
-    if sel.size < 3:
-        return float(time_s[k])
-    t0 = time_s[k]
-    coef = np.polyfit(time_s[sel] - t0, flux[sel], 2, w=1.0 / err[sel])
-    if coef[0] >= 0:  # not a maximum
-        return float(t0)
-    vertex = -coef[1] / (2.0 * coef[0])
-    if not time_s[sel[0]] - t0 <= vertex <= time_s[sel[-1]] - t0:
-        return float(t0)
-    return float(t0 + vertex)
+    level = top_fraction * smooth[k]
+    top = np.flatnonzero(good & (smooth >= level))
+    # the run of frames around k down to the level, bridging unusable frames but not a
+    # usable frame below the level (a second maximum stays out)
+    below = np.flatnonzero(good & (smooth < level))
+    left = below[below < k]
+    right = below[below > k]
+    lo = int(left.max()) + 1 if left.size else 0
+    hi = int(right.min()) - 1 if right.size else len(f) - 1
+    top = top[(top >= lo) & (top <= hi)]
+    if top.size == 0:
+        top = np.array([k])
+    lo, hi = max(0, min(int(top.min()), k - 3)), min(len(f) - 1, max(int(top.max()), k + 3))
+    sel = np.arange(lo, hi + 1)[good[lo:hi + 1]]
+    t0 = float(time_s[k])
+    fallback = math.nan if strict else t0
+    if sel.size < 5:  # four parameters need more points
+        return fallback
+    t, y, w = time_s[sel] - t0, flux[sel], 1.0 / err[sel]
+    span = float(t[-1] - t[0])
+
+    def residuals(p: NDArray) -> NDArray:
+        amp, centre, s_rise, s_fall = p
+        s = np.where(t < centre, s_rise, s_fall)
+        return (amp * np.exp(-0.5 * ((t - centre) / s) ** 2) - y) * w
+
+    start = np.array([max(float(smooth[k]), 1e-300), 0.0, 0.5 * span, 0.5 * span])
+    bounds = ([0.0, float(t[0]), 1e-3 * span, 1e-3 * span], [np.inf, float(t[-1]), 10.0 * span, 10.0 * span])
+    try:
+        fit = least_squares(residuals, start, bounds=bounds, x_scale="jac")
+    except (ValueError, np.linalg.LinAlgError):  # pragma: no cover - defensive
+        return fallback
+    centre = float(fit.x[1])
+    if not (fit.success and t[0] < centre < t[-1]):
+        return fallback
+    return t0 + centre
 
 
 def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayLike],
                   errors: dict[str, ArrayLike], *, o777_per_frame: ArrayLike | None = None,
-                  o777_err: ArrayLike | None = None, min_snr: float = 3.0) -> TimeResolved:
+                  o777_err: ArrayLike | None = None, min_snr: float = 3.0,
+                  unmeasured: dict[str, ArrayLike] | None = None) -> TimeResolved:
     """Per-frame composition, light curves and how early Na peaks.
 
     Parameters
@@ -999,6 +1040,11 @@ def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayL
     min_snr : float
         A frame enters the per-frame composition and the luminous duration only if its summed
         group light has at least this S/N; a curve without a point above it has no peak.
+    unmeasured : dict, optional
+        Group -> boolean array of shape (n_frames,): frames whose value of that group rests on
+        a model rather than on the group's own lines (saturated or masked there). They keep
+        their values in the composition; the group's peak time is fitted without them when
+        the frames around them allow it, and with them otherwise.
 
     Returns
     -------
@@ -1015,7 +1061,8 @@ def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayL
     the three, is released early from a meteoroid that has kept its volatiles, so its light
     curve peaks before those of Mg and Fe. ``na_peak_lead_s`` = t_peak(Na) - mean(t_peak(Mg),
     t_peak(Fe)), and ``na_peak_lead_fraction`` divides it by the luminous duration. Peak
-    times come from a 1-2-1 smoothed maximum refined by a weighted parabola (sub-frame).
+    times come from a 1-2-1 smoothed maximum refined by a split-Gaussian fit (different rise
+    and fall widths) to the curve's top (frames above 40 % of the maximum; sub-frame).
     Flags: ``"o777_missing"``, ``"na_peak_unreliable"`` (Na never above ``min_snr``),
     ``"peak_at_edge"`` (a group peaks in the first or last luminous frame, so the meteor may
     have been cut), ``"no_luminous_frames"``.
@@ -1061,7 +1108,21 @@ def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayL
     names = {"na": "Na I", "mg": "Mg I", "fe": "Fe I"}
     curves = {names[g]: flux[g] for g in GROUPS} | {"O I 777": o_flux}
     curve_errs = {names[g]: err[g] for g in GROUPS} | {"O I 777": o_err}
-    peaks = {k: _peak_time(t, curves[k], curve_errs[k], min_snr=min_snr) for k in curves}
+    skip = {names[g]: np.asarray(unmeasured[g], dtype=bool)
+            for g in GROUPS if unmeasured is not None and g in unmeasured}
+    for key, m in skip.items():
+        if m.shape != t.shape:
+            raise ValueError(f"unmeasured[{key!r}] must have shape {t.shape}")
+    peaks = {}
+    for k in curves:
+        peaks[k] = math.nan
+        if k in skip and skip[k].any():
+            # bridged over the unmeasured frames; when the rise and fall around them do not
+            # pin the top (too few usable frames), the model-based values are used instead
+            peaks[k] = _peak_time(t, curves[k], curve_errs[k], min_snr=min_snr, exclude=skip[k],
+                                  strict=True)
+        if not np.isfinite(peaks[k]):
+            peaks[k] = _peak_time(t, curves[k], curve_errs[k], min_snr=min_snr)
 
     if np.any(luminous):
         idx = np.flatnonzero(luminous)
@@ -1091,7 +1152,7 @@ def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayL
 def time_resolved_from_fits(time_s: ArrayLike, fits: list[Any], *,
                             o777_per_frame: ArrayLike | None = None,
                             o777_err: ArrayLike | None = None,
-                            min_snr: float = 3.0) -> TimeResolved:
+                            min_snr: float = 3.0, min_coverage: float = 0.5) -> TimeResolved:
     """:func:`time_resolved` from a list of per-frame plasma fits.
 
     Parameters
@@ -1103,20 +1164,27 @@ def time_resolved_from_fits(time_s: ArrayLike, fits: list[Any], *,
         fit failed (NaN there).
     o777_per_frame, o777_err, min_snr
         As in :func:`time_resolved`.
+    min_coverage : float
+        A frame whose fit saw less than this share of a group's model light on usable bins
+        (``group_coverage``; saturated group lines) counts as ``unmeasured`` for that group's
+        peak time.
     """
     t = np.asarray(time_s, dtype=float)
     if len(fits) != t.size:
         raise ValueError(f"{len(fits)} plasma fits for {t.size} frame times")
     flux = {g: np.full(t.size, np.nan) for g in GROUPS}
     err = {g: np.full(t.size, np.nan) for g in GROUPS}
+    unmeasured = {g: np.zeros(t.size, bool) for g in GROUPS}
     for i, fit in enumerate(fits):
         if fit is None or not fit:
             continue
+        coverage = getattr(fit, "group_coverage", None) or {}
         for g in GROUPS:
             flux[g][i] = float(fit.group_intensity[g])
             err[g][i] = float(fit.group_intensity_err[g])
+            unmeasured[g][i] = bool(coverage.get(g, 1.0) < min_coverage)
     return time_resolved(t, flux, err, o777_per_frame=o777_per_frame, o777_err=o777_err,
-                         min_snr=min_snr)
+                         min_snr=min_snr, unmeasured=unmeasured)
 
 
 def light_curve_from_spectra(frame_spectra: Any, *, center_nm: float, half_width_nm: float,

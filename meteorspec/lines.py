@@ -384,7 +384,8 @@ def identify_lines(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     margin = 3.0 * float(np.max(peaks.fwhm_nm))
     if plasma_fit is not None and plasma_fit:
         index = plasma_fit.line_index
-        strength = np.clip(plasma_fit.line_intensity, 0.0, None)
+        # a line the fit left unconstrained (non-finite) cannot weigh a candidate
+        strength = np.clip(np.nan_to_num(plasma_fit.line_intensity, nan=0.0, posinf=0.0), 0.0, None)
         shift = plasma_fit.shift_nm if np.isfinite(plasma_fit.shift_nm) else 0.0
     else:
         index, strength = _predicted_strengths(line_list, wl[0] - margin, wl[-1] + margin,
@@ -398,7 +399,7 @@ def identify_lines(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
         near = np.abs(offset) <= window_fwhm * width
         weight = strength * np.exp(-4.0 * math.log(2.0) * (offset / width) ** 2) * near
         total = float(weight.sum())
-        if total <= 0:
+        if not (math.isfinite(total) and total > 0):
             rows.append(("", "", math.nan, pos, a, s, snr, "unidentified"))
             continue
         share = weight / total
@@ -409,6 +410,8 @@ def identify_lines(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
                          float(line_list.wavelength_nm[k]), pos, a, s, snr, "identified"))
             continue
         members = np.flatnonzero(share >= member_share)
+        if members.size == 0:  # no member carries member_share: name the strongest alone
+            members = np.array([top])
         members = members[np.argsort(-share[members])]
         species = list(dict.fromkeys(line_list.species[index[members]].tolist()))
         label = " + ".join(f"{line_list.species[index[j]]} {line_list.multiplet[index[j]]} "

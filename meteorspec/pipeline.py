@@ -7,16 +7,18 @@ that has not produced output (``stage_missing:<stage>``).
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 from dataclasses import asdict
 from pathlib import Path
 
 import numpy as np
 
+from .atomic import load_line_list
 from .background import Background, bin_frames, estimate_background, refine_background
 from .calibrate import apply_response, calibrate_event, station_solution
-from .classify import (LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify, light_curve_from_spectra,
-                       time_resolved_from_fits)
+from .classify import (LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify, composition_from_groups,
+                       light_curve_from_spectra, time_resolved_from_fits)
 from .config import Event, Station, find_station_file, load_event, load_station
 from .errors import InputError
 from .extinction import extinction_correction, pixel_altaz
@@ -121,7 +123,7 @@ def spectrum_part(spectra: FrameSpectra, *, flux_unit: str) -> dict[str, object]
 
 
 def process_event(event_path: str | Path, *, stations_dir: str | Path | None = None,
-                  run_root: str | Path | None = None) -> EventResult:
+                  run_root: str | Path | None = None, refine_geometry: bool = True) -> EventResult:
     """Run every available stage on one event.
 
     Parameters
@@ -132,6 +134,11 @@ def process_event(event_path: str | Path, *, stations_dir: str | Path | None = N
         Folder holding ``<station>.toml``; default: search the event folder and its parents.
     run_root : str or Path, optional
         Where the parent search stops.
+    refine_geometry : bool
+        True (default): refine the grating from the event's own lines (contract section 3).
+        False: use the station file's values as they are (flag ``calibration_from_station``),
+        for a station whose geometry is known better than one event can tell, and to judge
+        the later stages alone.
 
     Returns
     -------
@@ -167,7 +174,7 @@ def process_event(event_path: str | Path, *, stations_dir: str | Path | None = N
 
     if result.frames.n_saturated_px.any():
         result.add_flag("saturated")
-    _reduce(result, event, station, stack)
+    _reduce(result, event, station, stack, refine_geometry=refine_geometry)
     result.status = "partial" if any(f.startswith("stage_missing:") for f in result.flags) else "ok"
     return result
 
@@ -198,7 +205,8 @@ def locate_meteor(stack: FrameStack, station: Station) -> tuple[Background, Trac
     return background, track
 
 
-def _reduce(result: EventResult, event: Event, station: Station, stack: FrameStack) -> None:
+def _reduce(result: EventResult, event: Event, station: Station, stack: FrameStack, *,
+            refine_geometry: bool = True) -> None:
     """The science stages in data-flow order; each adds its part and flags to ``result``.
 
     A stage that cannot run (no meteor, failed plasma fit) leaves its part out and
@@ -218,8 +226,11 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         _flag_missing(result)
         return
 
-    solution = calibrate_event(stack, background, track, station_geometry, camera=camera, order=order,
-                               event=event.id)
+    if refine_geometry:
+        solution = calibrate_event(stack, background, track, station_geometry, camera=camera, order=order,
+                                   event=event.id)
+    else:
+        solution = station_solution(station_geometry)
     result.parts["calibration"] = calibration_part(solution)
     _add_flags(result, solution.flags)
 
@@ -240,6 +251,16 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     whole = spectra.whole_flight()
     fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order)
     fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s)
+    subset_attrs: dict[str, object] = {}
+    if not fit or min(fit.group_coverage.values(), default=0.0) < 0.5:
+        # saturated (or off-sensor) group lines in the brightest frames: the whole-flight sum
+        # cannot hold them, so measure the composition on the frames that record every group
+        fallback = fit_unsaturated_frames(spectra, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s)
+        # the whole-flight fit may still measure a group from the unsaturated wings of its
+        # lines; keep whichever composition is the more precise
+        if fallback is not None and (not fit or _composition_error(fallback[1]) <= _composition_error(fit)):
+            whole, fit, subset_attrs = fallback
+            result.add_flag("composition_from_unsaturated_frames")
     table = identify_lines(whole, fwhm_nm=fwhm_nm, plasma_fit=fit if fit else None)
     result.parts["lines"] = {"table": (table.to_records(), flux_unit + " nm"),
                              "attrs": {"columns_unit": "lab_nm, measured_nm: nm; intensity: flux x nm"}}
@@ -249,6 +270,7 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         _flag_missing(result)
         return
     result.parts["plasma"] = plasma_part(fit, whole, flux_unit=flux_unit)
+    result.parts["plasma"]["datasets"]["instrument_fwhm_nm"] = (np.asarray(fwhm_nm, float), "nm")
     for group, share in fit.group_coverage.items():
         if share < 0.5:  # the group rests mostly on the model of other lines
             result.add_flag(f"group_poorly_covered:{group}")
@@ -256,6 +278,9 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     composition = classify(fit.group_intensity, fit.group_covariance, speed_km_s=event.speed_km_s,
                            speed_err_km_s=event.speed_err_km_s, seed=0)
     _add_flags(result, composition.flags)
+    if _composition_error(fit) > COMPOSITION_UNCERTAIN:
+        # e.g. Mg I 517 and Fe I 526-546 unresolved at a coarse dispersion, or Na I D lost in N2
+        result.add_flag("composition_uncertain")
     frame_fits = fit_plasma_per_frame(spectra, fit, fwhm_nm=fwhm_nm)
     centre_nm, half_width_nm = LIGHT_CURVE_BANDS_NM["O I 777"]
     try:
@@ -263,9 +288,141 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     except ValueError:  # the spectrum does not sample the O I 777 band
         o777 = o777_err = None
     timeline = time_resolved_from_fits(spectra.time_s, frame_fits, o777_per_frame=o777, o777_err=o777_err)
+    if na_peak_saturated(spectra, fwhm_nm, timeline.peak_time_s.get("Na I", np.nan)):
+        timeline = dataclasses.replace(timeline, flags=tuple(timeline.flags) + ("na_peak_saturated",))
     _add_flags(result, timeline.flags)
     result.parts["composition"] = composition_part(composition, timeline)
+    source = {"source": "whole flight"}
+    if subset_attrs:
+        source = {"source": "unsaturated frames"} | {f"source_{k}": v for k, v in subset_attrs.items()}
+    result.parts["composition"]["attrs"].update(source)
     _flag_missing(result)
+
+
+COMPOSITION_UNCERTAIN = 0.1
+"""A 1-sigma error of na, mg or fe above this flags ``composition_uncertain``: more than the
+spread of a class region across the ternary in most directions (invented, round value)."""
+
+
+def _composition_error(fit: PlasmaFit) -> float:
+    """Largest 1-sigma error of na, mg, fe (contract section 6) from a fit's group covariance."""
+    intensity = np.array([fit.group_intensity[g] for g in ("na", "mg", "fe")], dtype=float)
+    _, errors = composition_from_groups(intensity, fit.group_covariance)
+    worst = float(np.max(errors))
+    return worst if np.isfinite(worst) else np.inf
+
+
+def na_peak_saturated(spectra: FrameSpectra, fwhm_nm: np.ndarray, peak_time_s: float) -> bool:
+    """Whether the Na I D lines are masked (saturated) in a frame next to the Na peak.
+
+    There the per-frame Na intensity rests on the weak Na I lines and the plasma model, not on
+    the D lines, so the peak time is uncertain by more than the per-frame errors suggest.
+    """
+    if not np.isfinite(peak_time_s) or spectra.n_frames == 0:
+        return False
+    wl = spectra.wavelength_nm
+    lo, hi = group_windows_nm(fwhm_nm, wl, margin_fwhm=0.5)[0]
+    na = (wl >= lo) & (wl <= hi)
+    if not na.any():
+        return False
+    k = int(np.argmin(np.abs(spectra.time_s - peak_time_s)))
+    near = slice(max(k - 1, 0), min(k + 2, spectra.n_frames))
+    weight = np.asarray(spectra.frame_weight, dtype=float)
+    lit = ~(weight == 0) if weight.shape == (spectra.n_frames,) else np.ones(spectra.n_frames, bool)
+    return bool(np.any(spectra.mask[near][:, na].any(axis=1) & lit[near]))
+
+
+def group_windows_nm(fwhm_nm: np.ndarray, wavelength_nm: np.ndarray, *,
+                     margin_fwhm: float = 1.0) -> list[tuple[float, float]]:
+    """Wavelength ranges that hold each composition group's light (contract section 6).
+
+    From the bluest to the reddest group line, widened by ``margin_fwhm`` instrument FWHM
+    on each side (the line profile's wings).
+    """
+    lines = _group_lines_nm()
+    out = []
+    for group in ("na", "mg", "fe"):
+        lo, hi = float(lines[group].min()), float(lines[group].max())
+        w_lo = float(np.interp(lo, wavelength_nm, fwhm_nm))
+        w_hi = float(np.interp(hi, wavelength_nm, fwhm_nm))
+        out.append((lo - margin_fwhm * w_lo, hi + margin_fwhm * w_hi))
+    return out
+
+
+def _group_lines_nm() -> dict[str, np.ndarray]:
+    lines = load_line_list()
+    return {g: lines.wavelength_nm[lines.group == g] for g in ("na", "mg", "fe")}
+
+
+def unsaturated_frames(spectra: FrameSpectra, fwhm_nm: np.ndarray) -> np.ndarray:
+    """Frames (or fields) whose spectrum records every composition group in full.
+
+    A frame qualifies when no bin within one instrument FWHM of any group line is masked
+    (saturated, off the sensor, bad pixels) and its light-curve weight is known and positive.
+
+    Returns
+    -------
+    ndarray of int
+        Frame indices, increasing; empty if none.
+    """
+    wl = spectra.wavelength_nm
+    if spectra.n_frames == 0 or wl.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    need = np.zeros(wl.size, bool)
+    for lo, hi in group_windows_nm(fwhm_nm, wl):
+        if hi < wl[0] or lo > wl[-1]:  # a group outside the recorded range: no frame has it
+            return np.zeros(0, dtype=np.int64)
+        need |= (wl >= lo) & (wl <= hi)
+    usable = ~spectra.mask[:, need] & np.isfinite(spectra.flux[:, need])
+    weight = np.asarray(spectra.frame_weight, dtype=float)
+    if weight.shape != (spectra.n_frames,):
+        weight = np.ones(spectra.n_frames)
+    lit = np.isfinite(weight) & (weight > 0)
+    return np.flatnonzero(usable.all(axis=1) & lit).astype(np.int64)
+
+
+def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_km_s: float | None,
+                           min_share: float = 0.0) -> tuple[Spectrum, PlasmaFit, dict] | None:
+    """Plasma fit of the sum of the frames that record every group unsaturated.
+
+    Used when the whole-flight spectrum has lost a group's lines (saturated or off the
+    sensor in the bright frames). The sum covers part of the flight only, so the result is the
+    composition of those frames (reported with their times and light share), not of the
+    whole flight; a meteoroid whose composition changes along the flight (differential
+    ablation) can differ.
+
+    Returns
+    -------
+    (Spectrum, PlasmaFit, dict) or None
+        The summed spectrum, its successful fit with every group covered, and attributes
+        (``frames``, ``time_s``, ``light_share``, ``method``); None when no frame qualifies or
+        the fit fails.
+    """
+    frames = unsaturated_frames(spectra, fwhm_nm)
+    if frames.size == 0:
+        return None
+    weight = np.asarray(spectra.frame_weight, dtype=float)
+    known = np.isfinite(weight) & (weight > 0)
+    total = float(weight[known].sum())
+    share = float(weight[frames].sum() / total) if total > 0 else float("nan")
+    # frames whose share is unknown (saturated in full) are lit: the share is an upper bound
+    if not share >= min_share:
+        return None
+    subset = dataclasses.replace(
+        spectra, flux=spectra.flux[frames], variance=spectra.variance[frames], mask=spectra.mask[frames],
+        time_s=spectra.time_s[frames], frame_weight=weight[frames],
+        correlation=(spectra.correlation[frames] if np.ndim(spectra.correlation) == 3
+                     and spectra.correlation.shape[0] == spectra.n_frames else spectra.correlation))
+    whole = subset.whole_flight()
+    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=speed_km_s)
+    if not fit or min(fit.group_coverage.values(), default=0.0) < 0.5:
+        return None
+    attrs = {"frames": frames, "time_s": spectra.time_s[frames], "light_share": share,
+             "light_share_note": "share of the light of the frames whose brightness is known; "
+                                 "frames saturated in full are not counted",
+             "method": "whole-flight composition from the frames in which no bin within one "
+                       "instrument FWHM of a group line is saturated or masked"}
+    return whole, fit, attrs
 
 
 def _add_flags(result: EventResult, flags) -> None:

@@ -41,6 +41,10 @@ The observed flux density (data units per nm) in bin ``k`` is
 * N2 first-positive bands: see :data:`N2_BAND_HEADS_NM`; two non-negative amplitudes per
   Delta-v sequence (its blue and red end, linear in between).
 * Continuum: Legendre polynomial in wavelength over the fitted range.
+* Response factor: all lines and bands are multiplied by ``1 + sum_k r_k P_k(x)`` (Legendre,
+  degree ``response_degree``, default 2), the smooth error of the response curve and of the
+  extinction correction; line and group intensities are reported as observed (times the
+  factor), so the factor keeps a broadband flux error from being read as a temperature.
 
 Saha ionisation is not needed for the intensities (ions and neutrals have their own
 columns); :func:`element_column_density` applies it when totals per element are wanted.
@@ -125,6 +129,8 @@ _AIR_MULTIPLETS = 4  # strongest multiplets of each air species with their own a
 _HOT_REFERENCE_K = 10000.0
 _LOG_N_SPAN = 12.0  # bounds of log10 N around the starting value (dex)
 _TAU_MAX = 1e12
+_SHIFT_MAX_NM = 1.5  # bound of the fitted wavelength shift (at least one bin width)
+_RESPONSE_MAX = 0.5  # bound of each response-factor coefficient: the factor stays positive
 # evaluations of each multi-start before the best is polished: 15 picks the same minimum as
 # 25 on the 80 cases of bench/plasma_accuracy.py (seeds 1, 2); 10 picked a worse one once
 _START_NFEV = 15
@@ -537,7 +543,8 @@ class _Model:
 
     def __init__(self, wl: NDArray, bw: NDArray, fwhm_fn: Callable, lines: LineList,
                  component: NDArray, *, self_absorption: bool, continuum_degree: int,
-                 air_multiplets: int = _AIR_MULTIPLETS, group_freedom_dex: float | None = None):
+                 air_multiplets: int = _AIR_MULTIPLETS, group_freedom_dex: float | None = None,
+                 response_degree: int = 0):
         self.wl, self.bw = wl, bw
         self.lo, self.hi = wl - bw / 2, wl + bw / 2
         self.fwhm_fn = fwhm_fn
@@ -577,6 +584,10 @@ class _Model:
         x = 2.0 * (wl - wl[0]) / max(wl[-1] - wl[0], 1e-9) - 1.0
         self.continuum_basis = np.polynomial.legendre.legvander(x, continuum_degree)
         self.cont_names = [f"continuum_{k}" for k in range(continuum_degree + 1)]
+        # smooth multiplicative response error of the emission (see fit_plasma, response_degree)
+        self._x_span = (float(wl[0]), max(float(wl[-1] - wl[0]), 1e-9))
+        self.response_basis = np.polynomial.legendre.legvander(x, int(response_degree))[:, 1:]
+        self.resp_names = [f"response_{k}" for k in range(1, int(response_degree) + 1)]
         # parameters
         p: dict[str, _Param] = {}
         p["log_t"] = _Param("log_t", math.log10(4500.0), *np.log10(_MAIN_T_BOUNDS_K))
@@ -586,7 +597,10 @@ class _Model:
         p["log_scale"] = _Param("log_scale", 0.0, -250.0, 250.0, free=self.self_absorption)
         p["log_scale_hot"] = _Param("log_scale_hot", 0.0, -250.0, 250.0,
                                     free=self.self_absorption)
-        p["shift_nm"] = _Param("shift_nm", 0.0, -1.5, 1.5)
+        # a residual calibration error of a few tenths of a pixel: 1.5 nm, or one bin at
+        # coarse dispersion (several nm per pixel, where the zeroth-order position decides)
+        shift_max = max(_SHIFT_MAX_NM, float(np.median(bw)) if bw.size else 0.0)
+        p["shift_nm"] = _Param("shift_nm", 0.0, -shift_max, shift_max)
         p["stretch"] = _Param("stretch", 0.0, -0.01, 0.01)
         self.mid_nm = 0.5 * (wl[0] + wl[-1])
         p["width_scale"] = _Param("width_scale", 1.0, 0.6, 1.6)
@@ -596,6 +610,8 @@ class _Model:
             p[name] = _Param(name, 0.0, 0.0, np.inf)
         for k, name in enumerate(self.cont_names):
             p[name] = _Param(name, 0.0, 0.0 if k == 0 else -np.inf, np.inf)
+        for name in self.resp_names:  # |coefficient| < 0.5 each keeps the factor positive
+            p[name] = _Param(name, 0.0, -_RESPONSE_MAX, _RESPONSE_MAX)
         # each composition group may depart from its species' LTE level by 10^dex (prior)
         self.group_of_line = np.where(self.metal_hot, "", self.metal.group)
         self.group_prior: dict[str, tuple[float, float]] = {}
@@ -716,7 +732,8 @@ class _Model:
     def _profile_set(self) -> tuple:
         shift, width = self.value("shift_nm"), self.value("width_scale")
         stretch = self.value("stretch")
-        key = (shift, width, stretch)
+        resp = tuple(self.value(n) for n in self.resp_names)
+        key = (shift, width, stretch, resp)
         hit = self._profile_cache.get(key)
         if hit is not None:
             return hit
@@ -732,6 +749,11 @@ class _Model:
             lin_cols = np.asarray(prof.columns(n_metal, p_all.shape[1]) @ self._lin_weight)
         else:
             lin_cols = np.zeros((self.wl.size, self._lin_weight.shape[1]))
+        if self.resp_names:  # all emission (lines, bands) seen through the response factor
+            factor = self.response_factor()
+            p_metal = sparse.diags(factor) @ p_metal
+            p_air = sparse.diags(factor) @ p_air
+            lin_cols = lin_cols * factor[:, None]
         basis = np.hstack([lin_cols, self.continuum_basis])
         out = ((p_metal, p_air, basis), prof)
         if len(self._profile_cache) >= 4:  # the current point and a few recent ones
@@ -753,9 +775,29 @@ class _Model:
         coef = np.array([self.value(n) for n in lin_names])
         amp = np.concatenate([energy, self._lin_weight @ coef if lin_names
                               else np.zeros(self._lin_weight.shape[0])])
-        return {"shift_nm": d_centre @ amp,
-                "stretch": d_centre @ (amp * (self._centre_all - self.mid_nm)),
-                "width_scale": (d_log_sigma @ amp) / self.value("width_scale")}
+        factor = self.response_factor()
+        return {"shift_nm": factor * (d_centre @ amp),
+                "stretch": factor * (d_centre @ (amp * (self._centre_all - self.mid_nm))),
+                "width_scale": factor * (d_log_sigma @ amp) / self.value("width_scale")}
+
+    def response_factor(self, wavelength_nm: NDArray | None = None) -> NDArray:
+        """``1 + sum_k r_k P_k(x)`` on the data grid, or at ``wavelength_nm``."""
+        if wavelength_nm is None:
+            basis = self.response_basis
+        else:
+            x = 2.0 * (np.asarray(wavelength_nm, float) - self._x_span[0]) / self._x_span[1] - 1.0
+            basis = np.polynomial.legendre.legvander(x, len(self.resp_names))[:, 1:]
+        if not self.resp_names:
+            return np.ones(basis.shape[0])
+        return 1.0 + basis @ np.array([self.value(n) for n in self.resp_names])
+
+    def emission_flux(self) -> NDArray:
+        """Lines and bands of the model on the grid (the part the response factor multiplies)."""
+        p_metal, _, basis = self.profiles()
+        energy, _, _ = self.line_state()
+        n_lin = len(self.air_names) + len(self.n2_names)
+        coef = np.array([self.value(n) for n in self.air_names + self.n2_names])
+        return p_metal @ energy + (basis[:, :n_lin] @ coef if n_lin else 0.0)
 
     def linear_basis(self) -> tuple[list[str], NDArray]:
         """Columns of the linear nuisance parameters (air amplitudes, N2, continuum)."""
@@ -970,6 +1012,7 @@ class _Problem:
         energy, d_ln_n, _ = m.line_state()
         lin_names, basis = m.linear_basis()
         position = None
+        emission = None
         cols = np.empty((self.good.sum(), len(names)))
         # columns that are the metal profiles times a per-line weight: one sparse product
         weights, targets = [], []
@@ -986,6 +1029,12 @@ class _Problem:
                 if position is None:
                     position = m.position_derivatives()
                 cols[:, j] = position[name][self.good]
+                continue
+            elif name in m.resp_names:  # d flux / d r_k = P_k(x) * emission before the factor
+                if emission is None:
+                    emission = m.emission_flux() / m.response_factor()
+                k = m.resp_names.index(name)
+                cols[:, j] = (m.response_basis[:, k] * emission)[self.good]
                 continue
             elif name in ("log_scale", "log_scale_hot"):
                 weights.append(np.where(m.metal_hot == (name == "log_scale_hot"), energy, 0.0)
@@ -1022,9 +1071,13 @@ def _covariance(jac: NDArray) -> NDArray:
 
 
 def _quantities(model: _Model) -> NDArray:
-    """Metal line energies, air line energies and the three group energies."""
+    """Metal line energies, air line energies and the three group energies, as observed
+    (times the response factor at each line)."""
     energy, _, _ = model.line_state()
     air = model.air_energy()
+    if model.resp_names:
+        energy = energy * model.response_factor(model.metal.wavelength_nm)
+        air = air * model.response_factor(model.air.wavelength_nm)
     groups = [energy[model.metal.group == g].sum() for g in GROUPS]
     return np.concatenate([energy, air, groups])
 
@@ -1152,7 +1205,8 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
     coverage = {}
     for g in GROUPS:
         e_g = np.where(model.metal.group == g, energy, 0.0)
-        total = float(e_g.sum())
+        # what the bins see carries the response factor: compare with the same
+        total = float(np.sum(e_g * model.response_factor(model.metal.wavelength_nm)))
         seen = float(np.sum((p_metal @ e_g)[problem.good] * model.bw[problem.good]))
         coverage[g] = seen / total if total > 0 else float("nan")
     # lines in increasing wavelength: metal then air, sorted
@@ -1213,7 +1267,7 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
                air_species: Sequence[str] = AIR_SPECIES,
                continuum_degree: int = 3, min_relative: float = 1e-3,
                fit_shift: bool = True, fit_width: bool = True,
-               group_freedom_dex: float | None = 0.3,
+               group_freedom_dex: float | None = 0.3, response_degree: int = 2,
                max_nfev: int = 300) -> PlasmaFit:
     """Fit the two-temperature LTE model to a (whole-flight) spectrum.
 
@@ -1240,7 +1294,8 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     min_relative : float
         Line selection threshold (:func:`select_model_lines`).
     fit_shift, fit_width : bool
-        Fit a residual wavelength error (shift within +-1.5 nm and scale within +-1 %) and
+        Fit a residual wavelength error (shift within +-1.5 nm or one bin width, whichever is
+        larger, and scale within +-1 %) and
         an instrument-width factor (0.6-1.6).
     group_freedom_dex : float or None
         Let the lines of each composition group depart from the LTE level of their species
@@ -1250,6 +1305,17 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
         and on the LTE model of the other multiplets where they do not. Real meteor
         spectra depart from a one-temperature LTE model by tens of per cent between
         multiplets (Borovicka 1993), which is what the default 0.3 dex allows.
+    response_degree : int
+        Degree of a smooth multiplicative factor ``1 + sum_k r_k P_k(x)`` (Legendre, k >= 1,
+        each ``|r_k| <= 0.5``) on all modelled emission: the error of the response curve and
+        of the extinction correction, which would otherwise be read as a temperature (a
+        10-30 % tilt across the range moves the Boltzmann slope, and at low resolution,
+        through the blends of Mg I 517 with Fe I and Cr I lines, the group intensities: on a
+        simulated 10 nm FWHM event a 1.5x tilt from 420 to 850 nm moved mg from 0.30 to 0.22
+        without the factor, 0.30 with it).
+        Line and group intensities are reported *as observed* (times the factor at their
+        wavelength), so the factor frees the temperature without moving intensities the data
+        fix. 0 disables it.
     max_nfev : int
         Limit of model evaluations of the optimiser.
 
@@ -1298,14 +1364,15 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     config = dict(main_species=tuple(main_species), hot_species=tuple(hot_species),
                   air_species=tuple(air_species), continuum_degree=int(continuum_degree),
                   self_absorption=bool(self_absorption), min_relative=float(min_relative),
-                  line_index=index, component=component)
+                  line_index=index, component=component, response_degree=int(response_degree))
     lines = line_list.select(index)
     metal = component != "air"
     line_index = np.concatenate([index[metal], index[~metal]])
 
     def build() -> _Model:
         model = _Model(wl, bw, fwhm_fn, lines, component, self_absorption=self_absorption,
-                       continuum_degree=continuum_degree, group_freedom_dex=group_freedom_dex)
+                       continuum_degree=continuum_degree, group_freedom_dex=group_freedom_dex,
+                       response_degree=response_degree)
         model.params["shift_nm"].free = bool(fit_shift)
         model.params["stretch"].free = bool(fit_shift)
         model.params["width_scale"].free = bool(fit_width)
@@ -1412,7 +1479,8 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
     wf_model = whole_flight_fit.model_flux
     model = _Model(wl, bw.astype(float), fwhm_fn, lines, cfg["component"],
                    self_absorption=cfg["self_absorption"],
-                   continuum_degree=cfg["continuum_degree"])
+                   continuum_degree=cfg["continuum_degree"],
+                   response_degree=cfg.get("response_degree", 0))
     wf_params = whole_flight_fit.parameters
     metal = cfg["component"] != "air"
     line_index = np.concatenate([cfg["line_index"][metal], cfg["line_index"][~metal]])

@@ -186,3 +186,27 @@ def test_line_table_records_follow_contract_columns(line_list):
     assert LineTable.empty().to_records().shape == (0,)
     with pytest.raises(ValueError, match="status"):
         LineTable(["Na I"], [""], [1.0], [1.0], [1.0], [1.0], [1.0], ["maybe"])
+
+
+def test_plasma_fit_with_unconstrained_lines_weighs_nothing(line_list):
+    # a fit that left some line energies non-finite (an unconstrained, very blended model)
+    # must not poison the weights: those lines count as zero, the rest still identify peaks
+    spec = _meteor_like(line_list, 1.2)
+    keep = np.flatnonzero(np.isin(np.round(line_list.wavelength_nm, 3),
+                                  [393.366, 396.847, 588.995, 589.592])
+                          & (line_list.transition_type == "E1"))
+    lam = line_list.wavelength_nm[keep]
+    strength = np.where(np.abs(lam - 393.366) < 1e-3, np.nan,
+                        np.where(np.abs(lam - 396.847) < 1e-3, np.inf, 1.0e3))
+
+    class _Fit:  # the attributes identify_lines reads from a PlasmaFit
+        line_index, line_intensity, shift_nm = keep, strength, 0.0
+
+        def __bool__(self):
+            return True
+
+    table = identify_lines(spec, fwhm_nm=1.2, plasma_fit=_Fit())  # filterwarnings=error: no warning
+    ca = np.abs(table.measured_nm - 393.37) < 0.6
+    assert ca.sum() == 1 and table.status[ca][0] == "unidentified"
+    na = np.abs(table.measured_nm - 589.2) < 0.6
+    assert table.species[na][0] == "Na I"

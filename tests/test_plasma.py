@@ -275,6 +275,30 @@ def test_fit_recovers_temperature_and_groups(bright_fit):
                     [fit.group_intensity_err[g] for g in plasma.GROUPS], rtol=1e-9)
 
 
+def test_response_tilt_moves_neither_temperature_nor_observed_groups(line_list):
+    # A response curve (or extinction correction) wrong by a smooth tilt, here -25 % at
+    # 360 nm to +25 % at 880 nm, multiplies the observed line energies. The fit reports
+    # energies as observed, so the truth is each group's energy times the tilt at the group
+    # (its lines span at most 20 nm: the tilt changes by < 1 % across a group). Without the
+    # response factor (response_degree=0) the tilt is read as a Boltzmann slope and the
+    # temperature moves (Boltzmann plot, common practice; here ~60 K at 2.5 nm FWHM, and
+    # through the blends of Mg I 517 at ~10 nm FWHM the groups move with it).
+    spec, truth = _meteor(line_list, snr=300.0, seed=3)
+    x = 2.0 * (spec.wavelength_nm - 360.0) / (880.0 - 360.0) - 1.0
+    tilt = 1.0 + 0.25 * x
+    tilted = SimpleNamespace(wavelength_nm=spec.wavelength_nm, bin_width_nm=spec.bin_width_nm,
+                             flux=spec.flux * tilt, flux_err=spec.flux_err * tilt, mask=spec.mask)
+    centre = {"na": 589.3, "mg": 517.3, "fe": 536.0}
+    seen = np.array([truth[g] * np.interp(centre[g], spec.wavelength_nm, tilt) for g in plasma.GROUPS])
+    fit = plasma.fit_plasma(tilted, fwhm_nm=2.5)
+    got = np.array([fit.group_intensity[g] for g in plasma.GROUPS])
+    # composition to 0.01: the acceptance's scale (0.03) with room for the render difference
+    assert_allclose(got / got.sum(), seen / seen.sum(), atol=0.01)
+    assert abs(fit.temperature_k - 4600.0) < 3 * fit.temperature_err_k + 100.0
+    rigid = plasma.fit_plasma(tilted, fwhm_nm=2.5, response_degree=0)
+    assert abs(rigid.temperature_k - 4600.0) > abs(fit.temperature_k - 4600.0)
+
+
 def test_short_multi_starts_pick_the_fully_converged_best(bright_fit, monkeypatch):
     # The multi-start runs each start only briefly before polishing the best one. Running
     # every start to convergence instead (the slow, thorough reference; 100 evaluations,

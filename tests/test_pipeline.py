@@ -1,0 +1,138 @@
+"""Tests of meteorspec.pipeline's own logic: the composition of fireballs whose group lines
+saturate in the bright frames, and keeping the station geometry.
+
+The synthetic meteor is an optically thin LTE spectrum from the NIST line data of the shared
+extract (Boltzmann populations with NIST partition functions, :mod:`meteorspec.atomic`),
+rendered here with exact Gaussian bin integrals (``scipy.special.ndtr``), independently of the
+plasma module's profile code; its group energies (contract section 6) are the truth.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy.special import ndtr
+
+from meteorspec import atomic, pipeline, plasma
+from meteorspec.extract import FrameSpectra
+
+SAMPLES = Path(__file__).resolve().parents[1] / "sample_events"
+COLUMNS = {"Na I": 3e16, "Mg I": 3e17, "Fe I": 1e18, "Ca I": 3e16, "Cr I": 1e16, "Mn I": 1e16}
+FWHM_NM = 3.0
+
+
+def _thin_meteor(step_nm: float = 1.0, lo_nm: float = 370.0, hi_nm: float = 880.0):
+    """Shape (flux density per unit frame weight) of a thin 4500 K meteor and its group energies."""
+    lines = atomic.load_line_list()
+    index, component = plasma.select_model_lines(lines, lo_nm - 10, hi_nm + 10)
+    main = lines.select(index[component == "main"])
+    energy = atomic.line_energy_rate(main, 4500.0, {s: COLUMNS[s] for s in set(main.species.tolist())})
+    energy = energy / energy.max()
+    wl = np.arange(lo_nm, hi_nm, step_nm) + step_nm / 2
+    edges = np.append(wl - step_nm / 2, wl[-1] + step_nm / 2)
+    sigma = FWHM_NM / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+    cdf = ndtr((edges[None, :] - main.wavelength_nm[:, None]) / sigma)
+    shape = (energy[:, None] * np.diff(cdf, axis=1)).sum(axis=0) / step_nm
+    truth = np.array([energy[main.group == g].sum() for g in plasma.GROUPS])
+    return wl, np.full(wl.size, step_nm), shape, truth / truth.sum()
+
+
+def _fireball_frames(seed: int = 3) -> tuple[FrameSpectra, np.ndarray]:
+    """Ten frames; frames 3-6 saturate every group line (their weight unknown, as the extraction
+    reports a lit frame it lost), frames 2 and 7 saturate only Na I."""
+    wl, bw, shape, truth = _thin_meteor()
+    weight = np.array([0.0, 0.3, 1.0, 3.0, 6.0, 8.0, 5.0, 1.5, 0.6, 0.0])
+    rng = np.random.default_rng(seed)
+    peak = shape.max()
+    var = np.tile((0.004 * peak) ** 2 + 0.002 * peak * np.clip(shape, 0, None), (weight.size, 1))
+    flux = weight[:, None] * shape[None, :] + rng.normal(0.0, np.sqrt(var))
+    mask = np.zeros(flux.shape, bool)
+    mask[[0, 9]] = True  # not lit
+    groups = pipeline.group_windows_nm(np.full(wl.size, FWHM_NM), wl, margin_fwhm=0.5)
+    for k in (3, 4, 5, 6):
+        for lo, hi in groups:
+            mask[k, (wl >= lo) & (wl <= hi)] = True
+    na_lo, na_hi = groups[0]
+    mask[[2, 7], :] |= (wl >= na_lo) & (wl <= na_hi)
+    frame_weight = weight.copy()
+    frame_weight[[3, 4, 5, 6]] = np.nan
+    flux = np.where(mask, np.nan, flux)
+    spectra = FrameSpectra(wavelength_nm=wl, bin_width_nm=bw, flux=flux, variance=var, mask=mask,
+                           time_s=(np.arange(weight.size) + 0.5) / 25.0, flags=("saturated",),
+                           frame_weight=frame_weight)
+    return spectra, truth
+
+
+def test_group_windows_cover_contract_lines():
+    # contract section 6 (wavelengths to 0.001 nm, as the contract rounds them): Na I
+    # 588.995/589.592, Mg I 516.732-518.360, Fe I multiplet 15 within 526-546 nm
+    wl = np.linspace(350.0, 900.0, 551)
+    (na_lo, na_hi), (mg_lo, mg_hi), (fe_lo, fe_hi) = pipeline.group_windows_nm(np.full(wl.size, 2.0), wl)
+    tol = 1e-3
+    assert na_lo <= 588.995 - 2.0 + tol and na_hi >= 589.592 + 2.0 - tol
+    assert mg_lo <= 516.732 - 2.0 + tol and mg_hi >= 518.360 + 2.0 - tol
+    assert 524.0 - tol <= fe_lo <= 526.0 - 2.0 + 2.0 and 546.0 - 2.0 <= fe_hi <= 548.0 + tol
+
+
+def test_unsaturated_frames_are_those_with_every_group():
+    spectra, _ = _fireball_frames()
+    fwhm = np.full(spectra.wavelength_nm.size, FWHM_NM)
+    # frames 1 and 8 keep all groups; 2 and 7 lost Na; 3-6 lost all; 0 and 9 are dark
+    assert pipeline.unsaturated_frames(spectra, fwhm).tolist() == [1, 8]
+
+
+def test_unsaturated_frames_empty_when_a_group_is_outside_the_grid():
+    spectra, _ = _fireball_frames()
+    red = spectra.wavelength_nm > 560.0  # a grid that starts red of Mg and Fe
+    cut = FrameSpectra(wavelength_nm=spectra.wavelength_nm[red], bin_width_nm=spectra.bin_width_nm[red],
+                       flux=spectra.flux[:, red], variance=spectra.variance[:, red],
+                       mask=spectra.mask[:, red], time_s=spectra.time_s, flags=(),
+                       frame_weight=spectra.frame_weight)
+    out = pipeline.unsaturated_frames(cut, np.full(red.sum(), FWHM_NM))
+    assert out.dtype.kind == "i" and out.size == 0
+
+
+def test_fireball_composition_from_unsaturated_frames():
+    spectra, truth = _fireball_frames()
+    fwhm = np.full(spectra.wavelength_nm.size, FWHM_NM)
+    whole = spectra.whole_flight()
+    fit = plasma.fit_plasma(whole, fwhm_nm=fwhm, speed_km_s=20.0)
+    # the whole-flight sum has lost the group lines of the bright frames
+    assert not fit or min(fit.group_coverage.values()) < 0.5
+    out = pipeline.fit_unsaturated_frames(spectra, fwhm_nm=fwhm, speed_km_s=20.0)
+    assert out is not None
+    summed, fit, attrs = out
+    assert attrs["frames"].tolist() == [1, 8]
+    # light share of the frames of known brightness: (0.3 + 0.6) / (0.3 + 1 + 1.5 + 0.6)
+    assert_allclose(attrs["light_share"], 0.9 / 3.4, rtol=1e-12)
+    g = np.array([fit.group_intensity[k] for k in plasma.GROUPS])
+    # the spectral shape is the same in every frame, so the subset's composition is the
+    # meteor's; 0.02 is the acceptance-scale tolerance at these frames' S/N (~100 per line)
+    assert_allclose(g / g.sum(), truth, atol=0.02)
+
+
+def test_fit_unsaturated_frames_none_without_qualifying_frames():
+    spectra, _ = _fireball_frames()
+    mask = spectra.mask.copy()
+    mask[[1, 8]] = True
+    blind = FrameSpectra(wavelength_nm=spectra.wavelength_nm, bin_width_nm=spectra.bin_width_nm,
+                         flux=spectra.flux, variance=spectra.variance, mask=mask, time_s=spectra.time_s,
+                         flags=(), frame_weight=spectra.frame_weight)
+    assert pipeline.fit_unsaturated_frames(blind, fwhm_nm=np.full(blind.wavelength_nm.size, FWHM_NM),
+                                           speed_km_s=None) is None
+
+
+@pytest.mark.skipif(not (SAMPLES / "20261114T031522Z_QM01").is_dir(), reason="sample events absent")
+def test_refine_geometry_false_keeps_station_values():
+    event = SAMPLES / "20261114T031522Z_QM01"
+    result = pipeline.process_event(event, refine_geometry=False)
+    assert result.status in ("ok", "partial")
+    assert "calibration_from_station" in result.flags
+    attrs = result.parts["calibration"]["attrs"]
+    # the sample station file's grating value, as written (sample_events/stations/QM01.toml)
+    station = pipeline.load_station(pipeline.find_station_file(pipeline.load_event(event)))
+    assert attrs["grooves_per_mm"] == pytest.approx(station.grating.grooves_per_mm, rel=0, abs=1e-9)

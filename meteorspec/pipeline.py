@@ -105,7 +105,7 @@ def spectrum_part(spectra: FrameSpectra, *, flux_unit: str) -> dict[str, object]
     whole = spectra.whole_flight()
     density = f"{flux_unit}/nm"
     per_frame_err = np.sqrt(np.where(np.isfinite(spectra.variance), spectra.variance, np.nan))
-    return {
+    part: dict[str, dict] = {
         "attrs": {"flags": list(spectra.flags), "optimal_extraction": bool(spectra.optimal),
                   "flux_kind": "spectral density; sum(flux * bin_width_nm) over a line is its energy"},
         "datasets": {
@@ -120,6 +120,13 @@ def spectrum_part(spectra: FrameSpectra, *, flux_unit: str) -> dict[str, object]
             "time_s": (spectra.time_s, "s"),
         },
     }
+    if spectra.frame_weight.size:  # NaN: a lit frame whose every bin saturated (its share is unknown)
+        part["datasets"]["frame_weight"] = (spectra.frame_weight, "1")
+    if whole.correlation.size:  # column d-1: correlation of bin j with bin j+d (shared pixels)
+        part["datasets"]["flux_correlation"] = (whole.correlation, "1")
+    if spectra.light_time_s.size:
+        part["datasets"]["light_time_s"] = (spectra.light_time_s, "s")
+    return part
 
 
 def process_event(event_path: str | Path, *, stations_dir: str | Path | None = None,

@@ -214,6 +214,30 @@ def sample_night(tmp_path_factory) -> SampleNight:
     return _SAMPLE_NIGHT["night"]
 
 
+@pytest.fixture(scope="session")
+def no_plasma_output(sample_night) -> Path:
+    """The saturated sample fireball processed again with the plasma fit forced to fail.
+
+    No sample event fails its fit any more (a saturated one falls back to its unsaturated
+    frames), yet show and the report must say why a composition is missing; the pipeline's
+    own failure path is taken by making both fits return their failed result. Written into
+    its own folder, so the shared outputs stay untouched.
+    """
+    if "no_plasma" not in _SAMPLE_NIGHT:
+        from meteorspec import pipeline
+        from meteorspec.plasma import PlasmaFit
+        from meteorspec.store import output_path, write_event
+
+        out = sample_night.out.parent / "no_plasma"
+        event = sample_night.root / "sample" / SAMPLE_SUBSET[0] / "event.toml"
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setattr(pipeline, "fit_plasma", lambda *a, **k: PlasmaFit.failed("forced by the test: no convergence"))
+            mp.setattr(pipeline, "fit_unsaturated_frames", lambda *a, **k: None)
+            result = pipeline.process_event(event, run_root=sample_night.root)
+        _SAMPLE_NIGHT["no_plasma"] = write_event(output_path(out, result.event_id), result)
+    return _SAMPLE_NIGHT["no_plasma"]
+
+
 # --------------------------------------------------------------------------- tests
 
 

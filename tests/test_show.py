@@ -9,7 +9,7 @@ from meteorspec.cli import main
 from meteorspec.report.html import STAGE_NAMES
 from meteorspec.show import summarise
 from meteorspec.store import read_event
-from test_batch import BLANK_ID, CORRUPT_ID, SAMPLE_SUBSET, sample_night  # noqa: F401 (fixture)
+from test_batch import BLANK_ID, CORRUPT_ID, SAMPLE_SUBSET, no_plasma_output, sample_night  # noqa: F401 (fixtures)
 
 
 def test_summary_of_a_complete_event(sample_night):
@@ -32,12 +32,12 @@ def test_summary_of_a_complete_event(sample_night):
     assert "has not run" not in text
 
 
-def test_summary_names_missing_stages_and_failures(sample_night, capsys):
+def test_summary_names_missing_stages_and_failures(sample_night, no_plasma_output, capsys):
     out = sample_night.out
     blank = summarise(out / f"{BLANK_ID}.h5")  # a sky without a meteor
     for stage in ("spectrum", "lines", "composition"):
         assert f"{stage:<8} not in file: {STAGE_NAMES[stage]} has not run (no meteor found in the video)" in blank
-    no_plasma = summarise(out / f"{SAMPLE_SUBSET[0]}.h5")  # a real event whose plasma fit failed
+    no_plasma = summarise(no_plasma_output)  # a real event whose plasma fit failed
     assert f"{STAGE_NAMES['composition']} has not run (the plasma fit failed" in no_plasma
     assert "spectrum not in file" not in no_plasma
     assert main(["show", str(out / f"{CORRUPT_ID}.h5")]) == 0

@@ -886,21 +886,37 @@ def _measure_bins(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: 
             shift, shift_err, snr = fit
             if snr < min_snr or not np.isfinite(shift_err):
                 continue
-            cross, cross_err = _cross_centroid(group, geometry, wl, half, order)
-            lam_meas = lab + shift
-            xm, ym = geometry.spectrum_pixel(x0, y0, lam_meas, order)
-            txm, tym = geometry.direction(x0, y0, lam_meas, order)
-            dm = float(geometry.dispersion_nm_per_px(x0, y0, lam_meas, order))
-            if not np.all(np.isfinite([xm, ym, txm, tym, dm])):
-                continue
-            eff_px = math.hypot(width_px, box_nm / dm / math.sqrt(12))
-            rows.append(dict(event=event, frame=group[0].position, x0_px=x0, y0_px=y0,
-                             x_px=float(xm - cross * tym), y_px=float(ym + cross * txm), lab_nm=lab,
-                             species=species, tangent_x=float(txm), tangent_y=float(tym),
-                             # floor: template mismatch of ~1/20 of the line width
-                             sigma_along_px=math.hypot(shift_err / dm, 0.05 * eff_px),
-                             sigma_cross_px=math.hypot(cross_err, 0.05 * width_px), snr=snr))
+            # floor: template mismatch of ~1/20 of the line width
+            row = _measured_row(group, geometry, wl, half, order, event=event, x0_px=x0, y0_px=y0, lab_nm=lab,
+                                shift_nm=shift, shift_err_nm=shift_err, species=species, snr=snr,
+                                width_px=width_px, box_nm=box_nm, floor=0.05)
+            if row is not None:
+                rows.append(row)
     return rows
+
+
+def _measured_row(group: list[_FrameCut], geometry: SpectralGeometry, wl: NDArray, half: float, order: int, *,
+                  event: str, x0_px: float, y0_px: float, lab_nm: float, shift_nm: float, shift_err_nm: float,
+                  species: str, snr: float, width_px: float, box_nm: float, floor: float) -> dict | None:
+    """One measured position on the sensor (``None`` where the geometry gives no finite pixel).
+
+    The feature sits at ``lab_nm + shift_nm`` along the predicted curve and at the light's
+    cross-dispersion centroid across it; its error along the curve is the fit's, plus a floor
+    of ``floor`` times the effective line width (streak box and cross width) for template mismatch.
+    """
+    cross, cross_err = _cross_centroid(group, geometry, wl, half, order)
+    lam_meas = lab_nm + shift_nm
+    xm, ym = geometry.spectrum_pixel(x0_px, y0_px, lam_meas, order)
+    txm, tym = geometry.direction(x0_px, y0_px, lam_meas, order)
+    dm = float(geometry.dispersion_nm_per_px(x0_px, y0_px, lam_meas, order))
+    if not np.all(np.isfinite([xm, ym, txm, tym, dm])):
+        return None
+    eff_px = math.hypot(width_px, box_nm / dm / math.sqrt(12))
+    return dict(event=event, frame=group[0].position, x0_px=x0_px, y0_px=y0_px,
+                x_px=float(xm - cross * tym), y_px=float(ym + cross * txm), lab_nm=lab_nm,
+                species=species, tangent_x=float(txm), tangent_y=float(tym),
+                sigma_along_px=math.hypot(shift_err_nm / dm, floor * eff_px),
+                sigma_cross_px=math.hypot(cross_err, 0.05 * width_px), snr=snr)
 
 
 def _window_edges(geometry: SpectralGeometry, x0_px: float, y0_px: float, *, wl_range_nm: tuple[float, float],
@@ -1020,20 +1036,12 @@ def _measure_windows(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_p
             shift, shift_err, snr = fit
             if snr < min_snr or not np.isfinite(shift_err):
                 continue
-            ref = _window_reference_nm(lo_w, hi_w)
-            cross, cross_err = _cross_centroid(group, geometry, wl, half, order)
-            lam_meas = ref + shift
-            xm, ym = geometry.spectrum_pixel(x0, y0, lam_meas, order)
-            txm, tym = geometry.direction(x0, y0, lam_meas, order)
-            dm = float(geometry.dispersion_nm_per_px(x0, y0, lam_meas, order))
-            if not np.all(np.isfinite([xm, ym, txm, tym, dm])):
-                continue
-            eff_px = math.hypot(width_px, box_nm / dm / math.sqrt(12))
-            rows.append(dict(event=event, frame=group[0].position, x0_px=x0, y0_px=y0,
-                             x_px=float(xm - cross * tym), y_px=float(ym + cross * txm), lab_nm=ref,
-                             species=f"blend {lo_w:.0f}-{hi_w:.0f}", tangent_x=float(txm), tangent_y=float(tym),
-                             sigma_along_px=math.hypot(shift_err / dm, window_floor * eff_px),
-                             sigma_cross_px=math.hypot(cross_err, 0.05 * width_px), snr=snr))
+            row = _measured_row(group, geometry, wl, half, order, event=event, x0_px=x0, y0_px=y0,
+                                lab_nm=_window_reference_nm(lo_w, hi_w), shift_nm=shift, shift_err_nm=shift_err,
+                                species=f"blend {lo_w:.0f}-{hi_w:.0f}", snr=snr, width_px=width_px,
+                                box_nm=box_nm, floor=window_floor)
+            if row is not None:
+                rows.append(row)
     return rows
 
 

@@ -18,8 +18,10 @@ All functions are vectorised and broadcast their array arguments.
 from __future__ import annotations
 
 import dataclasses
+from collections.abc import Mapping
 from dataclasses import dataclass
 from functools import cached_property
+from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -313,6 +315,22 @@ class SpectralGeometry:
     @classmethod
     def from_station(cls, station: Station) -> SpectralGeometry:
         return cls(LensModel.from_config(station.lens), GratingModel.from_config(station.grating))
+
+    @classmethod
+    def from_values(cls, values: Mapping[str, Any]) -> SpectralGeometry:
+        """From flat values named as in ``/calibration`` (``projection``, ``focal_px``, ``cx``, ``cy``,
+        ``k1``, ``k2``, ``grooves_per_mm``, ``dispersion_angle_deg``, ``tilt_deg``, ``tilt_azimuth_deg``;
+        distortion and tilt default to 0).
+
+        Raises
+        ------
+        KeyError, ValueError, TypeError
+            A value is missing or not a number.
+        """
+        return cls(LensModel(str(values["projection"]), float(values["focal_px"]), float(values["cx"]),
+                             float(values["cy"]), float(values.get("k1", 0.0)), float(values.get("k2", 0.0))),
+                   GratingModel(float(values["grooves_per_mm"]), float(values["dispersion_angle_deg"]),
+                                float(values.get("tilt_deg", 0.0)), float(values.get("tilt_azimuth_deg", 0.0))))
 
     def with_grating(self, **changes: float) -> SpectralGeometry:
         """A copy with some grating values replaced (e.g. ``grooves_per_mm=601.2``)."""

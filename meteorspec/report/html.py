@@ -196,7 +196,7 @@ def stacked_image(ev: Mapping[str, Any]) -> tuple[np.ndarray | None, str]:
 
 def predicted_spectrum(ev: Mapping[str, Any]) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
     """First-order positions (x, y, wavelength) for the brightest zeroth-order point of the track."""
-    from ..optics import GratingModel, LensModel, SpectralGeometry
+    from ..optics import SpectralGeometry
 
     track, cal = _group(ev, "track"), _group(ev, "calibration")
     if track is None or cal is None or not {"x", "y"} <= set(track["datasets"]):
@@ -209,11 +209,7 @@ def predicted_spectrum(ev: Mapping[str, Any]) -> tuple[np.ndarray, np.ndarray, n
     i = np.flatnonzero(ok)[np.argmax(flux[ok])]
     a = cal["attrs"]
     try:
-        geo = SpectralGeometry(
-            LensModel(str(a["projection"]), float(a["focal_px"]), float(a["cx"]), float(a["cy"]),
-                      float(a.get("k1", 0.0)), float(a.get("k2", 0.0))),
-            GratingModel(float(a["grooves_per_mm"]), float(a["dispersion_angle_deg"]),
-                         float(a.get("tilt_deg", 0.0)), float(a.get("tilt_azimuth_deg", 0.0))))
+        geo = SpectralGeometry.from_values(a)
     except (KeyError, ValueError, TypeError):
         return None
     orders = (_group(ev, "station") or {"attrs": {}})["attrs"].get("grating.orders", [1])

@@ -367,18 +367,14 @@ def estimate_frame_weight(per_frame: np.ndarray, mask: np.ndarray, *, lit: np.nd
 def _fwhm_from_geometry(ev: Mapping[str, Any], wl: np.ndarray) -> np.ndarray | None:
     """Instrument FWHM from ``/calibration`` and ``/track`` (the pipeline's recipe, simplified)."""
     from ..lines import instrument_fwhm_nm
-    from ..optics import GratingModel, LensModel, SpectralGeometry
+    from ..optics import SpectralGeometry
 
     cal, track = ev["groups"].get("calibration"), ev["groups"].get("track")
     if cal is None or track is None:
         return None
     a, t = cal["attrs"], track["datasets"]
     try:
-        geo = SpectralGeometry(
-            LensModel(str(a["projection"]), float(a["focal_px"]), float(a["cx"]), float(a["cy"]),
-                      float(a.get("k1", 0.0)), float(a.get("k2", 0.0))),
-            GratingModel(float(a["grooves_per_mm"]), float(a["dispersion_angle_deg"]),
-                         float(a.get("tilt_deg", 0.0)), float(a.get("tilt_azimuth_deg", 0.0))))
+        geo = SpectralGeometry.from_values(a)
         x, y, ts = (np.asarray(t[k], float) for k in ("x", "y", "time_s"))
     except (KeyError, ValueError, TypeError):
         return None

@@ -534,6 +534,9 @@ def main(argv=None):
     args = ap.parse_args(argv)
     specs = [] if args.no_samples else list(SAMPLE_SPECS.values())
     specs += list(random_specs(args.random, seed=args.seed))
+    # extraction is judged on the light that reaches the camera: rendered without an atmosphere,
+    # that is the truth's own energy (the atmosphere belongs to calibration, issue 4)
+    specs = [dataclasses.replace(s, atmosphere=False) for s in specs]
     if args.noise_free:
         specs = [dataclasses.replace(s, noise=False, flat_response=True) for s in specs]
     ratios, bad, worst = [], 0, (1.0, "none")

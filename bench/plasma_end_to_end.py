@@ -42,14 +42,13 @@ Measured against the simulator's truth (``truth/<event id>.json``):
   which the truth's per-exposure Na I group energy peaks, for events whose strongest group
   line has SNR >= 20 at the light-curve peak; target within one exposure (frame or field).
 
-Atmospheric extinction: the simulator renders no atmosphere, yet writes the station's
-``[pointing]``; with it the pipeline divides by an extinction that was never applied (on the
-bright sample event the correction tilts the spectrum by ~1.5x between 420 and 850 nm; before
-the plasma fit had its response factor this moved mg from 0.30 to 0.22). The bench therefore
-writes the station files of both modes without ``[pointing]`` (extinction stage skipped)
-unless ``--keep-pointing``. ``--samples`` runs the sample events as they are ("sample
-files": perturbed station files with ``[pointing]``) and in the chosen modes other than
-``perturbed``.
+Atmospheric extinction: the simulator renders the atmosphere when the station has
+``[pointing]`` (``EventSpec.atmosphere``), and the pipeline then divides it out. By default the
+random events are rendered without an atmosphere and their station files carry no ``[pointing]``
+(extinction stage skipped), so that only the composition chain is judged; ``--keep-pointing``
+renders the atmosphere and lets the pipeline correct it. ``--samples`` runs the sample events as
+they are (rendered through the atmosphere; station files with ``[pointing]``) in the chosen modes
+other than ``perturbed``.
 
 The SNR of an event is recovered from its spec by inverting
 ``simulate.peak_for_line_snr`` (bisection). No assertions; ``--out FILE`` writes one JSON
@@ -108,7 +107,7 @@ def line_snr(spec) -> float:
 def write_station_files(spec, events_dir: Path, *, keep_pointing: bool) -> None:
     """Station files of both modes: ``stations_true/`` (rendered grating values) and the
     simulator's perturbed ``stations/`` file, rewritten without ``[pointing]`` unless
-    ``keep_pointing`` (the simulator renders no atmosphere, see the module notes)."""
+    ``keep_pointing`` (then the event is rendered without an atmosphere, see the module notes)."""
     station = spec.true_station()
     if not keep_pointing:
         station = dataclasses.replace(station, pointing=None)
@@ -234,6 +233,8 @@ def run_random(args) -> dict[str, list[dict]]:
     with tempfile.TemporaryDirectory(prefix="ms_e2e_") as tmp:
         work = Path(tmp)
         for spec in specs:
+            if not args.keep_pointing:
+                spec = dataclasses.replace(spec, atmosphere=False)
             sim = simulate_event(spec, work / "events", truth_dir=work / "truth")
             write_station_files(spec, work / "events", keep_pointing=args.keep_pointing)
             snr = line_snr(spec)
@@ -275,7 +276,7 @@ def run_samples(args) -> dict[str, list[dict]]:
             else:
                 # the sample station files are perturbed: write the true ones next to a copy
                 with tempfile.TemporaryDirectory(prefix="ms_e2e_") as tmp:
-                    st = _true_sample_station(truth, event_dir, Path(tmp), keep_pointing=args.keep_pointing)
+                    st = _true_sample_station(truth, event_dir, Path(tmp), keep_pointing=True)  # rendered with it
                     result = pipeline.process_event(event_dir, stations_dir=st, refine_geometry=refine)
             r = measure(result, truth, snr=snr) | {"mode": label}
             rows[label].append(r)
@@ -307,8 +308,8 @@ def main(argv=None) -> int:
     ap.add_argument("--only", type=int, nargs="*", help="indices of the random set to run")
     ap.add_argument("--samples", action="store_true", help="the sample_events folder instead")
     ap.add_argument("--keep-pointing", action="store_true",
-                    help="keep [pointing] in the station files (the pipeline then corrects an "
-                         "extinction the simulator never rendered)")
+                    help="render the random events through the atmosphere and keep [pointing] in their "
+                         "station files (the pipeline corrects it)")
     ap.add_argument("--summarise", type=Path, metavar="JSONL",
                     help="print the summary of an earlier run's --out file instead of running")
     ap.add_argument("--out", type=Path, help="append one JSON line per event and mode")

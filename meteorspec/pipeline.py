@@ -21,7 +21,7 @@ from .classify import (LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify
                        light_curve_from_spectra, time_resolved_from_fits)
 from .config import Event, Station, find_station_file, load_event, load_station
 from .errors import InputError
-from .extinction import extinction_correction, pixel_altaz
+from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
 from .extract import FrameSpectra, Spectrum, extract_spectra
 from .lines import identify_lines, instrument_fwhm_nm
 from .optics import SpectralGeometry
@@ -250,7 +250,8 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         # frames outside the luminous span have no position and carry no meteor light;
         # give them the span's median altitude so they are not reported below the horizon
         altitude_deg = np.where(np.isfinite(altitude_deg), altitude_deg, np.nanmedian(altitude_deg))
-        spectra, flags = extinction_correction(spectra, altitude_deg)
+        # the station's elevation sets the Rayleigh pressure
+        spectra, flags = extinction_correction(spectra, altitude_deg, model=ExtinctionModel.for_station(station))
         _add_flags(result, flags)
     flux_unit = "adu" if station.response is None else "adu/response"
     result.parts["spectrum"] = spectrum_part(spectra, flux_unit=flux_unit)

@@ -23,7 +23,7 @@ from meteorspec.simulate import EventSpec, binned_overrides, simulate_event
 SPEC = EventSpec(station="QM01", station_id="QM91", overrides={**binned_overrides("QM01"), "camera.bit_depth": 12,
                                                                "camera.saturation_adu": 4095},
                  video_form="fits", fps=0.5, n_frames=16, meteor_start_s=0.1, meteor_duration_s=0.5,
-                 peak_energy_adu_s=0.0, n_stars=30, seed=4)
+                 peak_energy_adu_s=0.0, n_stars=30, seed=4, atmosphere=False)  # the response alone
 
 
 @pytest.fixture(scope="module")

@@ -14,6 +14,7 @@ from scipy.special import erf
 from numpy.testing import assert_allclose
 
 from meteorspec.config import find_station_file, load_event, load_station
+from meteorspec.extinction import ExtinctionModel, pixel_altaz, transmission
 from meteorspec.optics import PROJECTIONS, SpectralGeometry
 from meteorspec.simulate import (
     FIRST_ORDER_SHARE,
@@ -24,7 +25,8 @@ from meteorspec.simulate import (
     render_event,
     simulate_event,
 )
-from meteorspec.simulate.emission import build_emission
+from meteorspec.simulate.emission import WAVELENGTH_RANGE_NM, build_emission
+from meteorspec.simulate.scene import star_spectrum
 from meteorspec.video import iter_frames
 
 SMALL_QM01 = {"camera.width": 240, "camera.height": 160, "lens.focal_px": 300.0,
@@ -34,6 +36,11 @@ SMALL_QM03 = {"camera.width": 200, "camera.height": 120, "lens.focal_px": 260.0,
 # Everything but the three composition groups switched off (plus each group species' own
 # weaker lines, which stay: they belong to the same LTE species).
 ONLY_GROUPS = NuisanceStrengths(**{f.name: 0.0 for f in dataclasses.fields(NuisanceStrengths)})
+
+
+# A 16-bit linear camera: quantisation negligible, pixel sums are energies.
+LINEAR_16BIT = dict(SMALL_QM01, **{"camera.bit_depth": 16, "camera.saturation_adu": 65535.0,
+                                   "camera.black_level_adu": 0.0})
 
 
 def tiny(**kw) -> EventSpec:
@@ -136,12 +143,11 @@ def test_line_energy_is_conserved_on_the_sensor(tmp_path, group):
     # and a normalised Gaussian PSF conserve flux, so the box sum equals the truth energy of
     # the lines in it. Weak neighbours near the box edge count with the share of their
     # (Gaussian, 1.2 px) PSF inside the box; 1 % covers that approximation and the wings.
-    over = dict(SMALL_QM01, **{"camera.bit_depth": 16, "camera.saturation_adu": 65535.0,
-                                "camera.black_level_adu": 0.0})
+    # No atmosphere here (its attenuation is tested below).
     comp = {"na": 0.0, "mg": 0.0, "fe": 0.0, group: 1.0}
-    spec = tiny(overrides=over, video_form="fits", noise=False, flat_response=True, n_stars=0,
+    spec = tiny(overrides=LINEAR_16BIT, video_form="fits", noise=False, flat_response=True, n_stars=0,
                 nuisance=ONLY_GROUPS, speed_deg_s=0.0, direction_deg=0.0, n_frames=4,
-                meteor_duration_s=0.3, peak_energy_adu_s=5.0e6, **comp)
+                meteor_duration_s=0.3, peak_energy_adu_s=5.0e6, atmosphere=False, **comp)
     sim = simulate_event(spec, tmp_path, truth_dir=tmp_path / "truth")
     event = load_event(sim.event_dir)
     frames = list(iter_frames(event, load_station(sim.station_toml)))
@@ -167,6 +173,102 @@ def test_line_energy_is_conserved_on_the_sensor(tmp_path, group):
     total = truth["energy_total"]
     assert_allclose(energy.sum() + total["continuum"] + total["bands"], total["all"], rtol=1e-3)
     assert truth["first_order_share"] == FIRST_ORDER_SHARE
+
+
+def _box(img, x, y, half=6):
+    ix, iy = int(round(x)), int(round(y))
+    return img[iy - half:iy + half + 1, ix - half:ix + half + 1].sum(dtype=np.float64)
+
+
+def test_atmosphere_attenuates_by_the_transmission_at_the_meteor_altitude():
+    # A meteor held still on the optical axis of QM01 (pointing altitude 48 deg): by the
+    # definition of [pointing] (contract section 3) it is seen at 48 deg. Rendered noise-free
+    # with and without the atmosphere, every image point scales by T(lambda, 48 deg) of
+    # meteorspec.extinction (tested against Kasten & Young 1989 and Bucholtz 1995 in
+    # test_extinction.py); splat and PSF are linear, so the ratio of box sums is exact up to the
+    # spread of T over the lines in a box and float32 storage: 1e-3 (measured 1e-4 at Na D,
+    # 6e-4 at Mg b, whose lines span 1.6 nm where T changes by 0.2 % per nm).
+    base = tiny(overrides=LINEAR_16BIT, noise=False, flat_response=True, n_stars=0, nuisance=ONLY_GROUPS,
+                speed_deg_s=0.0, start_px=(119.5, 79.5), n_frames=4, meteor_duration_s=0.3,
+                na=0.5, mg=0.5, fe=0.0)
+    on, off = render_event(base), render_event(dataclasses.replace(base, atmosphere=False))
+    station = base.true_station()
+    model = ExtinctionModel.for_station(station)
+    assert station.pointing.altitude_deg == 48.0 and on.atmosphere == model and off.atmosphere is None
+    assert_allclose([t.altitude_deg for t in on.truths], 48.0, atol=1e-6)
+    geo = on.geometry
+    k = 2
+    for lam in (589.3, 517.3):
+        x, y = geo.spectrum_pixel(119.5, 79.5, lam)
+        ratio = _box(on.linear_clean[k], x, y) / _box(off.linear_clean[k], x, y)
+        assert_allclose(ratio, transmission(lam, 48.0, model=model), rtol=1e-3)
+    # the blue loses more: at airmass 1.35 the Mg/Na ratio drops by about 2-4 %
+    t_na, t_mg = (float(transmission(v, 48.0, model=model)) for v in (589.3, 517.3))
+    assert 0.95 < t_mg / t_na < 0.99
+    # zeroth order: the transmission averaged over the emitted (flat-response) spectrum
+    m = on.emission
+    want = np.sum(m.share * transmission(m.wavelength_nm, 48.0, model=model)) / np.sum(m.share)
+    assert_allclose(on.truths[k].zeroth_flux_adu / off.truths[k].zeroth_flux_adu, want, rtol=1e-9)
+    assert_allclose(_box(on.linear_clean[k], 119.5, 79.5) / _box(off.linear_clean[k], 119.5, 79.5), want, rtol=1e-3)
+
+
+def test_truth_records_the_atmosphere(tmp_path):
+    spec = tiny(n_frames=4, noise=False, n_stars=3)
+    truth = simulate_event(spec, tmp_path, truth_dir=tmp_path / "truth").truth
+    atm = truth["atmosphere"]
+    assert atm["applied"] and atm["pressure_hpa"] == pytest.approx(ExtinctionModel.for_station(
+        spec.true_station()).pressure_hpa)
+    fr = truth["frames"]
+    lit = np.array(fr["energy_fraction"]) > 0
+    alt = np.array(fr["altitude_deg"], float)
+    # altitude from the truth's own pixel through extinction.pixel_altaz (the pipeline's way)
+    geo = SpectralGeometry.from_station(spec.true_station())
+    a_pix = pixel_altaz(geo.lens, spec.true_station().pointing, np.array(fr["x_mid_px"], float)[lit],
+                        np.array(fr["y_mid_px"], float)[lit])[0]
+    assert_allclose(alt[lit], a_pix, atol=1e-4)
+    # Kasten & Young (1989) eq. 3, written out here
+    h = alt[lit]
+    ky = 1.0 / (np.sin(np.radians(h)) + 0.50572 * (h + 6.07995) ** -1.6364)
+    assert_allclose(np.array(fr["airmass"], float)[lit], ky, rtol=1e-6)
+    # energy above the atmosphere, energy_observed after it: less, and less in the blue
+    g = truth["groups"]
+    t_na = g["na"]["energy_observed"] / g["na"]["energy"]
+    t_mg = g["mg"]["energy_observed"] / g["mg"]["energy"]
+    assert 0.0 < t_mg < t_na < 1.0
+    assert len(truth["stars"]["altitude_deg"]) == 3
+    # switched off: no altitude, observed = emitted
+    plain = simulate_event(dataclasses.replace(spec, atmosphere=False), tmp_path / "b",
+                           truth_dir=tmp_path / "b" / "truth").truth
+    assert plain["atmosphere"] == {"applied": False}
+    assert all(v is None for v in plain["frames"]["altitude_deg"])
+    assert plain["groups"]["na"]["energy_observed"] == plain["groups"]["na"]["energy"]
+
+
+def test_stars_are_attenuated_at_their_own_altitude():
+    spec = tiny(noise=False, n_stars=6, peak_energy_adu_s=0.0, n_frames=2, flat_response=True)
+    on, off = render_event(spec), render_event(dataclasses.replace(spec, atmosphere=False))
+    st = on.stars
+    alt = pixel_altaz(on.geometry.lens, spec.true_station().pointing, st.x_px, st.y_px)[0]
+    assert_allclose(on.star_altitude_deg, alt)
+    assert np.ptp(alt) > 3.0  # stars spread over the field: the test sees different airmasses
+    lam = np.arange(*WAVELENGTH_RANGE_NM, max(on.emission.continuum_step_nm, 0.5))  # the render's star grid
+    model = ExtinctionModel.for_station(spec.true_station())
+    for i in range(len(st)):
+        sp = star_spectrum(st.temperature_k[i], lam)
+        want = np.sum(sp * transmission(lam, alt[i], model=model)) / np.sum(sp)
+        assert_allclose(on.star_zeroth_adu_s[i] / off.star_zeroth_adu_s[i], want, rtol=1e-9)
+
+
+def test_default_atmosphere_needs_pointing():
+    spec = tiny(noise=False, n_stars=0, n_frames=3)
+    station = dataclasses.replace(spec.true_station(), pointing=None)
+    assert spec.atmosphere_model(spec.true_station()) is not None
+    assert spec.atmosphere_model(station) is None  # default: on only with [pointing]
+    a = render_event(spec, station=station)
+    b = render_event(dataclasses.replace(spec, atmosphere=False))
+    assert a.atmosphere is None and np.array_equal(a.linear_clean, b.linear_clean)
+    with pytest.raises(ValueError, match="pointing"):
+        render_event(dataclasses.replace(spec, atmosphere=True), station=station)
 
 
 def test_zeroth_order_centroid_matches_truth():

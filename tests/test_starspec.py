@@ -28,7 +28,8 @@ from meteorspec.video import write_video
 # 16 exposures of 2 s, no meteor. Seed 4 puts a bright (16 000 ADU/s), isolated 10 373 K star at
 # (21.8, 124.8), near the left edge, its spectrum crossing the frame.
 CLIP = dict(station="QM01", fps=0.5, n_frames=16, meteor_start_s=0.1, meteor_duration_s=0.5,
-            peak_energy_adu_s=0.0, n_stars=30, seed=4, video_form="fits")
+            peak_energy_adu_s=0.0, n_stars=30, seed=4, video_form="fits",
+            atmosphere=False)  # the response alone; the extinction division has its own test
 TWELVE_BIT = {"camera.bit_depth": 12, "camera.saturation_adu": 4095}
 
 

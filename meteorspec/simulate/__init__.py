@@ -24,7 +24,12 @@ saturated/off-frame flags; per line species, lab
 wavelength, multiplet, group, component and whole-flight energy, per-frame
 energies of the groups and strongest lines (any line: energy x
 energy_fraction of the frame); N2 band and continuum totals; stars.
-Energies are linear ADU on the sensor in first order for a response of 1.
+Energies are linear ADU on the sensor in first order for a response of 1,
+above the atmosphere; with ``[pointing]`` in the true station the render
+attenuates the meteor and the stars by :func:`meteorspec.extinction.transmission`
+at their altitude (``EventSpec.atmosphere``), and the truth adds the atmosphere
+used, per-frame ``altitude_deg`` and ``airmass``, stars' ``altitude_deg`` and
+``energy_observed`` (after the atmosphere) beside ``energy``.
 """
 
 from .presets import SAMPLE_SPECS, binned_overrides, peak_for_line_snr, random_specs, write_samples

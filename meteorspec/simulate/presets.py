@@ -15,9 +15,10 @@ from pathlib import Path
 
 import numpy as np
 
+from ..extinction import camera_to_horizon
 from ..optics import PROJECTIONS, SpectralGeometry
 from .emission import build_emission
-from .render import FIRST_ORDER_SHARE, _response
+from .render import FIRST_ORDER_SHARE, _altitude_deg, _response, _transmission
 from .spec import EventSpec, NuisanceStrengths
 from .writer import SimulatedEvent, simulate_event
 
@@ -75,11 +76,12 @@ SAMPLE_SPECS: dict[str, EventSpec] = {
         meteor_start_s=0.1, meteor_duration_s=1.0, start_px=(40.0, 80.0), end_px=(200.0, 150.0),
         peak_energy_adu_s=4.0e9, light_curve="flare", flare_amplitude=1.5, peak_time_frac=0.5,
         na=0.15, mg=0.35, fe=0.50, speed_km_s=19.0, n_stars=30, sky_adu=30.0, seed=44),
-    # a faint, fast meteor on the wide-field camera (strongest group line SNR ~10 at peak), FITS cube
+    # a faint, fast meteor on the wide-field camera (strongest group line SNR ~10 at peak), FITS cube;
+    # 4.0e6 (3.0e6 before the render had an atmosphere) keeps that SNR through airmass ~1.5
     "faint_fast": _sample(
         "QM01", start_utc="2026-08-12T01:58:40.360Z", video_form="fits", fps=25.0, n_frames=13,
         meteor_start_s=0.06, meteor_duration_s=0.4, start_px=(120.0, 330.0), direction_deg=-20.0,
-        speed_deg_s=30.0, peak_energy_adu_s=3.0e6, peak_time_frac=0.5, na=0.30, mg=0.25, fe=0.45,
+        speed_deg_s=30.0, peak_energy_adu_s=4.0e6, peak_time_frac=0.5, na=0.30, mg=0.25, fe=0.45,
         speed_km_s=59.0, n_stars=20, sky_adu=4.0, seed=55),
 }
 
@@ -108,6 +110,8 @@ def peak_for_line_snr(spec: EventSpec, snr: float) -> float:
 
     Noise per pixel from sky, photon and read noise; the line's aperture is the
     motion trail in one frame plus 6 px, by 6 px across (an estimate, not a fit).
+    The line is seen through the atmosphere at ``start_px`` when the render applies one,
+    so the SNR is the one recorded.
     """
     station = spec.true_station()
     cam = station.camera
@@ -115,7 +119,14 @@ def peak_for_line_snr(spec: EventSpec, snr: float) -> float:
     model = build_emission(spec)
     resp = _response(spec, station, model.wavelength_nm)
     group = model.group != ""
+    atmosphere = spec.atmosphere_model(station)
+    if atmosphere is not None:
+        alt = _altitude_deg(geo.lens.pixel_to_direction(*spec.start_px), camera_to_horizon(station.pointing))
+        resp = resp * _transmission(model.wavelength_nm, alt, atmosphere)
     line_share = float(np.max(model.share[group] * resp[group]))
+    if not line_share > 0:
+        raise ValueError(f"peak_for_line_snr: no group line reaches the camera from start_px {spec.start_px} "
+                         "(below the horizon, or a composition without group lines)")
     gain = 1.0 if cam.gain_e_per_adu is None else cam.gain_e_per_adu
     rn = 1.5 if cam.read_noise_adu is None else cam.read_noise_adu
     var_px = spec.sky_adu / gain + rn**2

@@ -14,8 +14,18 @@ for the rendered image (up to light falling off the sensor).
 
 Energy units: the emitted energy of a component in an exposure is
 ``share * peak_energy_adu_s * int(rate dt)``. Its first-order image holds
-``FIRST_ORDER_SHARE * response(lambda)`` of that, in linear ADU; the zeroth
-order holds ``ZEROTH_ORDER_SHARE`` of the response-weighted total.
+``FIRST_ORDER_SHARE * T(lambda, h) * response(lambda)`` of that, in linear ADU; the
+zeroth order holds ``ZEROTH_ORDER_SHARE`` of the transmitted, response-weighted total.
+
+Atmosphere: when the true station has ``[pointing]`` (and ``spec.atmosphere`` is not
+False), ``T(lambda, h)`` is :func:`meteorspec.extinction.transmission` at the altitude
+``h`` of the meteor in each substep (of each star, for the stars), with
+:meth:`~meteorspec.extinction.ExtinctionModel.for_station`; otherwise ``T = 1``. The
+pipeline divides by the same functions. Sharing them is deliberate and safe: they are
+tested on their own against external references (Kasten & Young 1989 airmass, Bucholtz
+1995 Rayleigh depth; tests/test_extinction.py), so the simulator does not test them
+against themselves; without this the pipeline divided rendered events by an atmosphere
+that was never applied.
 """
 
 from __future__ import annotations
@@ -26,6 +36,7 @@ import numpy as np
 from scipy.ndimage import gaussian_filter
 
 from ..config import Camera, Station
+from ..extinction import ExtinctionModel, camera_to_horizon, pixel_altaz, transmission
 from ..optics import SpectralGeometry
 from ..video import FrameStack, encode
 from .emission import WAVELENGTH_RANGE_NM, EmissionModel, build_emission
@@ -86,6 +97,8 @@ class ExposureTruth:
     ``first_order_on_sensor`` is the share of the response-weighted first-order
     energy whose splat lands on the sensor (0 when the meteor is dark);
     ``saturated`` means a pixel lit by the meteor is at or above the clip level.
+    ``altitude_deg`` is the meteor's altitude at mid-exposure (NaN when no atmosphere is
+    rendered: no ``[pointing]``, or ``spec.atmosphere`` False).
     """
 
     index: int
@@ -100,6 +113,7 @@ class ExposureTruth:
     off_frame: bool
     first_order_on_sensor: float
     n_substeps: int
+    altitude_deg: float = float("nan")
 
 
 @dataclass(frozen=True, eq=False)
@@ -112,6 +126,13 @@ class Rendered:
         Encoded camera values (uint8 or uint16).
     linear_clean : ndarray of shape (n_frames, height, width), float32
         Noise-free linear signal (meteor + stars + sky) before encoding.
+    transmission : ndarray of shape (n_exposures, n_components)
+        Energy-weighted mean atmospheric transmission of each emission component over each
+        exposure (1.0 everywhere without an atmosphere; for a dark exposure, at its middle).
+    atmosphere : ExtinctionModel or None
+        The atmosphere applied (None: none).
+    star_altitude_deg : ndarray of shape (n_stars,)
+        NaN without an atmosphere.
     """
 
     stored: np.ndarray
@@ -126,6 +147,9 @@ class Rendered:
     light_curve: LightCurve
     station: Station
     geometry: SpectralGeometry
+    transmission: np.ndarray
+    atmosphere: ExtinctionModel | None
+    star_altitude_deg: np.ndarray
 
     def frame_stack(self) -> FrameStack:
         """The rendered video as the pipeline sees it after decoding (no file written)."""
@@ -222,6 +246,24 @@ def _substeps(traj: Trajectory, geo: SpectralGeometry, orders: tuple[int, ...], 
     return max(1, int(np.ceil(max(paths) / MAX_SUBSTEP_PX)))
 
 
+def _altitude_deg(direction: np.ndarray, to_enu: np.ndarray | None) -> np.ndarray:
+    """Altitude (deg) of camera-frame unit vectors ``direction[..., 3]``; NaN without a rotation."""
+    if to_enu is None:
+        return np.full(np.shape(direction)[:-1], np.nan)
+    up = np.asarray(direction, float) @ to_enu[2]  # ENU "up" component of R @ u
+    return np.degrees(np.arcsin(np.clip(up, -1.0, 1.0)))
+
+
+def _transmission(wavelength_nm: np.ndarray, altitude_deg: np.ndarray,
+                  atmosphere: ExtinctionModel | None) -> np.ndarray:
+    """``T`` of shape ``altitude.shape + wavelength.shape``; 1 without an atmosphere, 0 below the horizon."""
+    alt = np.asarray(altitude_deg, float)
+    if atmosphere is None:
+        return np.ones(alt.shape + np.shape(wavelength_nm))
+    t = transmission(np.asarray(wavelength_nm)[(None,) * alt.ndim], alt[..., None], model=atmosphere)
+    return np.nan_to_num(t, nan=0.0)  # extinction.transmission is NaN below the horizon: no light
+
+
 def render_event(spec: EventSpec, *, station: Station | None = None) -> Rendered:
     """Render all frames of ``spec`` (deterministic in ``spec.seed``).
 
@@ -244,15 +286,20 @@ def render_event(spec: EventSpec, *, station: Station | None = None) -> Rendered
     lc = make_light_curve(spec)
     model = build_emission(spec, continuum_step_nm=_continuum_step_nm(spec, geo))
     resp = _response(spec, station, model.wavelength_nm)
-    zeroth_per_energy = ZEROTH_ORDER_SHARE * float(np.sum(model.share * resp))
+    atmosphere = spec.atmosphere_model(station)
+    to_enu = None if atmosphere is None else camera_to_horizon(station.pointing)
 
     stars = make_stars(spec, geo, width, height)
     star_lam = np.arange(WAVELENGTH_RANGE_NM[0], WAVELENGTH_RANGE_NM[1], max(model.continuum_step_nm, 0.5))
     star_resp = _response(spec, station, star_lam)
     star_zeroth = np.zeros(len(stars))
     star_patches: list[_Patch | None] = []
+    star_alt = np.full(len(stars), np.nan)
+    if atmosphere is not None and len(stars):
+        star_alt = pixel_altaz(geo.lens, station.pointing, stars.x_px, stars.y_px)[0]
     for i in range(len(stars)):
-        sp = star_spectrum(stars.temperature_k[i], star_lam)
+        # each star seen through the air at its own altitude
+        sp = star_spectrum(stars.temperature_k[i], star_lam) * _transmission(star_lam, star_alt[i], atmosphere)
         star_zeroth[i] = ZEROTH_ORDER_SHARE * stars.energy_adu_s[i] * float(np.sum(sp * star_resp))
         px, py, pw = [np.array([stars.x_px[i]])], [np.array([stars.y_px[i]])], [np.array([star_zeroth[i]])]
         for m in orders:
@@ -282,12 +329,18 @@ def render_event(spec: EventSpec, *, station: Station | None = None) -> Rendered
     clean = np.zeros((spec.n_frames, height, width), dtype=np.float32)
     truths = []
     first_w = {m: order_share(m) * model.share * resp for m in orders}
+    zeroth_w = ZEROTH_ORDER_SHARE * model.share * resp
+    trans_table = np.ones((len(exps), model.wavelength_nm.size))
     for ex in exps:
         energy = float(lc.integral(ex.t_start_s, ex.t_end_s)) * spec.peak_energy_adu_s
         x_mid, y_mid = (float(v) for v in traj.pixel(ex.time_s))
+        alt_mid = float(_altitude_deg(traj.direction(ex.time_s), to_enu))
+        if atmosphere is not None:
+            trans_table[ex.index] = _transmission(model.wavelength_nm, alt_mid, atmosphere)
         xc = yc = float("nan")
         n_sub = 0
         on_sensor = 0.0
+        zeroth_flux = 0.0
         patch = None
         if energy > 0:
             n_sub = _substeps(traj, geo, orders, ex.t_start_s, ex.t_end_s)
@@ -298,11 +351,17 @@ def render_event(spec: EventSpec, *, station: Station | None = None) -> Rendered
             w = w[use]
             x0, y0 = traj.pixel(tm)
             xc, yc = float(np.sum(w * x0) / w.sum()), float(np.sum(w * y0) / w.sum())
-            pts_x, pts_y, pts_w = [x0], [y0], [w * zeroth_per_energy]
+            # (substep, component) transmission along the meteor's line of sight
+            trans = _transmission(model.wavelength_nm, _altitude_deg(traj.direction(tm), to_enu), atmosphere)
+            if atmosphere is not None:
+                trans_table[ex.index] = (w @ trans) / w.sum()
+            zeroth_sub = w * (trans @ zeroth_w)
+            zeroth_flux = float(zeroth_sub.sum())
+            pts_x, pts_y, pts_w = [x0], [y0], [zeroth_sub]
             wanted = deposited = 0.0
             for m in orders:
                 xs, ys = geo.spectrum_pixel(x0[:, None], y0[:, None], model.wavelength_nm[None, :], m)
-                weights = w[:, None] * first_w[m][None, :]
+                weights = w[:, None] * first_w[m][None, :] * trans
                 inside = np.isfinite(xs) & np.isfinite(ys) & (xs > -0.5) & (xs < width - 0.5) & \
                     (ys > -0.5) & (ys < height - 0.5)
                 wanted += float(weights.sum())
@@ -338,8 +397,9 @@ def render_event(spec: EventSpec, *, station: Station | None = None) -> Rendered
                    and -0.5 <= y_mid <= height - 0.5)
         truths.append(ExposureTruth(
             index=ex.index, time_s=ex.time_s, x_mid_px=x_mid, y_mid_px=y_mid, x_centroid_px=xc,
-            y_centroid_px=yc, emitted_energy_adu=energy, zeroth_flux_adu=energy * zeroth_per_energy,
-            saturated=saturated, off_frame=off, first_order_on_sensor=on_sensor, n_substeps=n_sub))
+            y_centroid_px=yc, emitted_energy_adu=energy, zeroth_flux_adu=zeroth_flux,
+            saturated=saturated, off_frame=off, first_order_on_sensor=on_sensor, n_substeps=n_sub,
+            altitude_deg=alt_mid))
 
     stored = np.empty(clean.shape, dtype=np.uint8 if cam.bit_depth <= 8 else np.uint16)
     for k in range(spec.n_frames):
@@ -350,4 +410,5 @@ def render_event(spec: EventSpec, *, station: Station | None = None) -> Rendered
         stored[k] = encode(frame, cam)
     return Rendered(stored=stored, linear_clean=clean, exposures=exps, truths=truths,
                     emission=model, response=resp, stars=stars, star_zeroth_adu_s=star_zeroth,
-                    trajectory=traj, light_curve=lc, station=station, geometry=geo)
+                    trajectory=traj, light_curve=lc, station=station, geometry=geo,
+                    transmission=trans_table, atmosphere=atmosphere, star_altitude_deg=star_alt)

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from ..config import Camera, Grating, Lens, Station, load_station
+from ..extinction import ExtinctionModel
 from ..resources import calibration_dir
 
 VIDEO_FORMS = ("avi", "fits", "png", "tiff", "fits-frames")
@@ -121,6 +122,12 @@ class EventSpec:
         Gaussian PSF sigma.
     delta_grooves_frac, delta_dispersion_deg, delta_tilt_deg : float
         Written station file = true values plus these (the render uses the true values).
+    atmosphere : bool, optional
+        Attenuate the light of the meteor and the stars by the atmosphere between them and
+        the camera (:func:`meteorspec.extinction.transmission` at their own altitude, with
+        :meth:`ExtinctionModel.for_station`). Default (None): on when the true station has
+        ``[pointing]`` (without it there is no altitude); True without ``[pointing]`` is an
+        error at render time.
     seed : int
     """
 
@@ -159,6 +166,7 @@ class EventSpec:
     delta_grooves_frac: float = 0.0
     delta_dispersion_deg: float = 0.0
     delta_tilt_deg: float = 0.0
+    atmosphere: bool | None = None
     seed: int = 0
 
     def __post_init__(self) -> None:
@@ -215,6 +223,22 @@ class EventSpec:
         grating = dataclasses.replace(base.grating, **changes["grating"])
         sid = base.id if self.station_id is None else self.station_id
         return dataclasses.replace(base, id=sid, camera=camera, lens=lens, grating=grating)
+
+    def atmosphere_model(self, station: Station) -> ExtinctionModel | None:
+        """The atmosphere the render applies at ``station`` (None: no attenuation).
+
+        Raises
+        ------
+        ValueError
+            ``atmosphere=True`` and the station has no ``[pointing]``.
+        """
+        if self.atmosphere is False:
+            return None
+        if station.pointing is None:
+            if self.atmosphere:
+                raise ValueError(f"EventSpec: atmosphere=True needs [pointing] in station {station.id}")
+            return None
+        return ExtinctionModel.for_station(station)
 
     def event_id(self, station_id: str) -> str:
         m = _UTC_RE.match(self.start_utc)

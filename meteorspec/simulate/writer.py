@@ -27,6 +27,7 @@ import numpy as np
 
 from .. import __version__
 from ..config import Grating, Station
+from ..extinction import airmass_kasten_young
 from ..video import write_video
 from .emission import EmissionModel
 from .render import FIRST_ORDER_SHARE, ZEROTH_ORDER_SHARE, Rendered, render_event
@@ -180,11 +181,14 @@ def build_truth(spec: EventSpec, rendered: Rendered, *, event_id: str, written: 
     lines = model.is_line
     idx = np.flatnonzero(lines)
     e_lines = energy[idx]
+    # the same after the atmosphere: what reaches the camera (equal to energy without one)
+    observed = FIRST_ORDER_SHARE * model.share * (emitted @ rendered.transmission)
     strong = (e_lines >= _PER_FRAME_LINE_SHARE * e_lines.max()) | (model.group[idx] != "")
     groups = {}
     for g in ("na", "mg", "fe"):
         m = model.group == g
         groups[g] = {"energy": _num(energy[m].sum()),
+                     "energy_observed": _num(observed[m].sum()),
                      "per_frame": [_num(energy[m].sum() * f) for f in frame_fraction],
                      "n_lines": int(m.sum()),
                      "lab_nm": [_num(v, 8) for v in model.wavelength_nm[m]]}
@@ -201,6 +205,15 @@ def build_truth(spec: EventSpec, rendered: Rendered, *, event_id: str, written: 
     cont = model.kind == "continuum"
     comp_energy = {c: _num(energy[model.component == c].sum()) for c in ("main", "hot", "air")}
     grating_true = station.grating
+    atm = rendered.atmosphere
+    atmosphere: dict[str, Any] = {"applied": atm is not None}
+    if atm is not None:
+        atmosphere.update(dataclasses.asdict(atm))
+        atmosphere["model"] = ("meteorspec.extinction.transmission: Kasten & Young (1989) airmass, "
+                               "Bucholtz (1995) Rayleigh depth, Angstrom aerosol, ozone; "
+                               "ExtinctionModel.for_station")
+    altitude = np.array([t.altitude_deg for t in truths], float)
+    airmass = airmass_kasten_young(altitude)
     return {
         "schema": TRUTH_SCHEMA,
         "software_version": __version__,
@@ -208,8 +221,10 @@ def build_truth(spec: EventSpec, rendered: Rendered, *, event_id: str, written: 
         "station": station.id,
         "note": ("Simulated event of an invented network. energy = linear ADU summed over the "
                  "first-order image for a response of 1.0 and no noise; the rendered first order "
-                 "holds energy * response(lambda), response = the written CSV normalised to max 1. "
-                 "Zeroth order holds zeroth_order_share / first_order_share times the "
+                 "holds energy * T(lambda, altitude) * response(lambda), response = the written CSV "
+                 "normalised to max 1, T = the atmosphere's transmission towards the meteor (1 when "
+                 "atmosphere.applied is false): energy is above the atmosphere, energy_observed after "
+                 "it. Zeroth order holds zeroth_order_share / first_order_share times the transmitted "
                  "response-weighted energy. Pixel (x, y) per contract section 1."),
         "first_order_share": FIRST_ORDER_SHARE,
         "zeroth_order_share": ZEROTH_ORDER_SHARE,
@@ -228,6 +243,7 @@ def build_truth(spec: EventSpec, rendered: Rendered, *, event_id: str, written: 
         "hot_fraction": _num(model.hot_fraction),
         "air_fraction": _num(model.air_fraction),
         "speed_km_s": spec.speed_km_s,
+        "atmosphere": atmosphere,
         "trajectory": {"u0": [_num(v, 10) for v in rendered.trajectory.u0],
                        "tangent": [_num(v, 10) for v in rendered.trajectory.e],
                        "omega_deg_s": _num(np.degrees(rendered.trajectory.omega_rad_s), 8),
@@ -246,9 +262,12 @@ def build_truth(spec: EventSpec, rendered: Rendered, *, event_id: str, written: 
             "off_frame": [t.off_frame for t in truths],
             "first_order_on_sensor": [_num(t.first_order_on_sensor, 4) for t in truths],
             "n_substeps": [t.n_substeps for t in truths],
+            "altitude_deg": [_num(v, 7) for v in altitude],
+            "airmass": [_num(v, 7) for v in airmass],
         },
         "groups": groups,
         "energy_total": {"all": _num(energy.sum()), "lines": _num(energy[lines].sum()),
+                         "all_observed": _num(observed.sum()), "lines_observed": _num(observed[lines].sum()),
                          "bands": _num(energy[bands].sum()), "continuum": _num(energy[cont].sum()),
                          **{f"component_{k}": v for k, v in comp_energy.items()}},
         "lines": {
@@ -258,12 +277,14 @@ def build_truth(spec: EventSpec, rendered: Rendered, *, event_id: str, written: 
             "group": model.group[idx].tolist(),
             "component": model.component[idx].tolist(),
             "energy": [_num(v, 5) for v in e_lines],
+            "energy_observed": [_num(v, 5) for v in observed[idx]],
         },
         "lines_per_frame": per_frame,
         "n2_bands": band_totals,
         "stars": {"x_px": [_num(v, 7) for v in rendered.stars.x_px],
                   "y_px": [_num(v, 7) for v in rendered.stars.y_px],
                   "temperature_k": [_num(v, 5) for v in rendered.stars.temperature_k],
+                  "altitude_deg": [_num(v, 7) for v in rendered.star_altitude_deg],
                   "zeroth_flux_adu_s": [_num(v, 5) for v in rendered.star_zeroth_adu_s]},
     }
 

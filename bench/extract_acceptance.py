@@ -144,27 +144,34 @@ def lsf_sigma_px2(r, spec, lam_nm):
     All exposures, no dispersion (kept for bench/bench_calibration.py; this
     script uses :func:`lsf_sigma_nm2`).
     """
-    geo = r.geometry
     s2 = spec.psf_sigma_px**2 + 1.0 / 6.0
     num = np.zeros(lam_nm.size)
     den = 0.0
     for ex, t in zip(r.exposures, r.truths):
         if not t.emitted_energy_adu > 0:
             continue
-        p = [np.array(r.trajectory.pixel(tt), dtype=float) for tt in (ex.t_start_s, ex.time_s, ex.t_end_s)]
-        xs, ys = (np.array(v) for v in zip(*[geo.spectrum_pixel(q[0], q[1], lam_nm) for q in p]))
-        x1, y1 = geo.spectrum_pixel(p[1][0], p[1][1], lam_nm + 0.01)
-        tx, ty = x1 - xs[1], y1 - ys[1]
-        nrm = np.hypot(tx, ty)
-        tx, ty = tx / nrm, ty / nrm
-        mx, my = xs[2] - xs[0], ys[2] - ys[0]
-        mt, mn = mx * tx + my * ty, -mx * ty + my * tx
-        s = mt * mn / (mn * mn + 12.0 * spec.psf_sigma_px**2)
+        _, mt, mn, s = _streak_shear(r, spec, ex, lam_nm)
         v = (mt - s * mn) ** 2 / 12.0 + s2 * (1 + s * s) + (1 + s * s) / 12.0
         ok = np.isfinite(v)
         num += np.where(ok, v, 0.0) * t.emitted_energy_adu
         den += t.emitted_energy_adu
     return num / den if den > 0 else np.full(lam_nm.size, s2)
+
+
+def _streak_shear(r, spec, ex, lam_nm):
+    """One exposure's motion streak against the spectrum at ``lam_nm``: the zeroth order's
+    start/middle/end pixels, the streak's components along (``mt``) and across (``mn``) the
+    dispersion in px, and the shear ``s`` that the extraction's tilted integration leaves."""
+    geo = r.geometry
+    p = [np.array(r.trajectory.pixel(tt), dtype=float) for tt in (ex.t_start_s, ex.time_s, ex.t_end_s)]
+    xs, ys = (np.array(v) for v in zip(*[geo.spectrum_pixel(q[0], q[1], lam_nm) for q in p]))
+    x1, y1 = geo.spectrum_pixel(p[1][0], p[1][1], lam_nm + 0.01)
+    tx, ty = x1 - xs[1], y1 - ys[1]
+    nrm = np.hypot(tx, ty)
+    tx, ty = tx / nrm, ty / nrm
+    mx, my = xs[2] - xs[0], ys[2] - ys[0]
+    mt, mn = mx * tx + my * ty, -mx * ty + my * tx
+    return p, mt, mn, mt * mn / (mn * mn + 12.0 * spec.psf_sigma_px**2)
 
 
 def lsf_parts_per_frame(r, spec, lam_nm):
@@ -186,15 +193,7 @@ def lsf_parts_per_frame(r, spec, lam_nm):
     for k, (ex, t) in enumerate(zip(r.exposures, r.truths)):
         if not t.emitted_energy_adu > 0:
             continue
-        p = [np.array(r.trajectory.pixel(tt), dtype=float) for tt in (ex.t_start_s, ex.time_s, ex.t_end_s)]
-        xs, ys = (np.array(v) for v in zip(*[geo.spectrum_pixel(q[0], q[1], lam_nm) for q in p]))
-        x1, y1 = geo.spectrum_pixel(p[1][0], p[1][1], lam_nm + 0.01)
-        tx, ty = x1 - xs[1], y1 - ys[1]
-        nrm = np.hypot(tx, ty)
-        tx, ty = tx / nrm, ty / nrm
-        mx, my = xs[2] - xs[0], ys[2] - ys[0]
-        mt, mn = mx * tx + my * ty, -mx * ty + my * tx
-        s = mt * mn / (mn * mn + 12.0 * spec.psf_sigma_px**2)
+        p, mt, mn, s = _streak_shear(r, spec, ex, lam_nm)
         disp = np.asarray(geo.dispersion_nm_per_px(p[1][0], p[1][1], lam_nm), dtype=float)
         g_var[k] = (s2 * (1 + s * s) + (1 + s * s) / 12.0) * disp**2
         drift[k] = (mt - s * mn) * disp

@@ -33,6 +33,11 @@ Run:  python bench/bench_calibration.py --n 30 --seed 4
       python bench/bench_calibration.py --allsky 8 --seed 7
       python bench/bench_calibration.py --n 30 --seed 4 --truth-track   (isolates calibration
       from the tracker: uses the simulator's zeroth-order positions)
+      ... --whole-spectrum off   (the feature method alone, as before meteorspec.calfit)
+      ... --only 5,8 --verbose   (a subset, with the whole-spectrum fit's diagnostics)
+
+calibrate_event gets the station response (its whole-spectrum fit needs it); ``tilt_err_deg``
+is listed per event.
 """
 
 from __future__ import annotations
@@ -209,7 +214,8 @@ def _whole_flight_corrected(fs, station, geometry, track, *, extinction: bool = 
     return spec
 
 
-def run_event(spec, work: Path, *, truth_track: bool) -> dict:
+def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fallback",
+              whole_spectrum_tilt: bool = True) -> dict:
     t0 = time.perf_counter()
     sim = simulate_event(spec, work / "events", truth_dir=work / "truth")
     event_dir = work / "events" / spec.event_id(spec.true_station().id)
@@ -242,7 +248,9 @@ def run_event(spec, work: Path, *, truth_track: bool) -> dict:
     else:
         track = find_track(stack, bg, geo, camera=station.camera, orders=station.grating.orders)
     t1 = time.perf_counter()
-    sol = calibrate_event(stack, bg, track, geo, camera=station.camera, event=event.id)
+    sol = calibrate_event(stack, bg, track, geo, camera=station.camera, event=event.id,
+                          whole_spectrum=whole_spectrum, response=station.response,
+                          whole_spectrum_tilt=whole_spectrum_tilt)
     t2 = time.perf_counter()
     out = {"event": event.id, "projection": station.lens.projection, "source": sol.source,
            "flags": list(sol.flags), "n_lines": sol.n_lines, "rms_nm": sol.rms_nm,
@@ -250,6 +258,7 @@ def run_event(spec, work: Path, *, truth_track: bool) -> dict:
     g_true = truth["geometry_true"]["grating"]
     out["grooves_err_pct"] = 100 * (sol.values["grooves_per_mm"] / g_true["grooves_per_mm"] - 1)
     out["angle_err_deg"] = sol.values["dispersion_angle_deg"] - g_true["dispersion_angle_deg"]
+    out["tilt_err_deg"] = sol.values["tilt_deg"] - g_true["tilt_deg"]
     # off-axis angle reached by the meteor
     u = geo.lens.pixel_to_direction(xt[lum], yt[lum])
     out["max_off_axis_deg"] = float(np.degrees(np.nanmax(np.arccos(np.clip(u[..., 2], -1, 1)))))
@@ -308,14 +317,29 @@ def main(argv=None) -> int:
     ap.add_argument("--max-off-axis", type=float, default=70.0,
                     help="events reaching farther off axis (deg) are left out of the figures (issue 4: 70)")
     ap.add_argument("--json", type=Path, default=None, help="write per-event rows here")
+    ap.add_argument("--whole-spectrum", choices=("fallback", "off", "always"), default="fallback",
+                    help="calibrate_event's whole-spectrum fit: where the feature method falls back (default), "
+                         "never, or instead of it")
+    ap.add_argument("--hold-tilt", action="store_true", help="the whole-spectrum fit holds the station's tilt")
+    ap.add_argument("--only", type=str, default=None, metavar="I,J,...",
+                    help="run only these event indices of the set (development subsets)")
+    ap.add_argument("--verbose", action="store_true", help="log the calibrator's whole-spectrum fit diagnostics")
     args = ap.parse_args(argv)
+    if args.verbose:
+        import logging
+        logging.basicConfig(level=logging.WARNING, format="%(name)s: %(message)s")
+        logging.getLogger("meteorspec.calibrate").setLevel(logging.DEBUG)
     rows = []
     with tempfile.TemporaryDirectory() as tmp:
         specs = (allsky_specs(args.allsky, args.seed, n_frames=args.frames) if args.allsky > 0
                  else perturbed_specs(args.n, args.seed))
+        if args.only is not None:
+            keep = {int(v) for v in args.only.split(",") if v.strip()}
+            specs = [sp for k, sp in enumerate(specs) if k in keep]
         for spec in specs:
             try:
-                row = run_event(spec, Path(tmp), truth_track=args.truth_track)
+                row = run_event(spec, Path(tmp), truth_track=args.truth_track, whole_spectrum=args.whole_spectrum,
+                                whole_spectrum_tilt=not args.hold_tilt)
             except Exception as exc:
                 row = {"event": spec.event_id(spec.true_station().id), "error": f"{exc.__class__.__name__}: {exc}"}
             rows.append(row)

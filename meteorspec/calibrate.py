@@ -50,6 +50,17 @@ Steps of :func:`calibrate_event`
    Outliers beyond 4 sigma are dropped and the fit repeated. Steps 4-5 run
    three times with a shrinking search range, sampling along the refined curve.
 
+6. **Whole spectrum** (where steps 4-5 fall back on a coarse spectrum, > 3.5 nm/px, and
+   the station response is given). :mod:`meteorspec.calfit` predicts every frame's whole
+   first-order spectrum along its curve from the NIST lines of each species (free
+   non-negative intensities shared by all frames), the N2 bands and a per-frame continuum,
+   and fits groove density, dispersion angle and tilt to all frames at once, from the best
+   three stretches of step 3. A solution is kept only if the line model explains the light
+   (chi-square drop over a continuum alone), no other start reaches a different solution
+   with a similar chi-square on the same pixels, and fits to each half of the track agree
+   with it (``max_halves_nm``); else ``calibration_ambiguous``. Flag of kept solutions:
+   ``calibration_whole_spectrum``.
+
 Too few features (``min_lines``) or a poor fit -> the station geometry, flagged
 ``calibration_from_station``.
 """
@@ -58,6 +69,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import logging
 import math
 import os
 import re
@@ -97,7 +109,7 @@ __all__ = [
 ]
 
 CALIBRATION_FLAGS = ("calibration_from_station", "calibration_few_lines", "calibration_fit_poor",
-                     "calibration_unresolved",
+                     "calibration_unresolved", "calibration_whole_spectrum", "calibration_ambiguous",
                      "uncalibrated_flux", "response_corrected", "response_partial")
 
 # Species of the templates and their LTE temperature: the main (~4500 K) and the hot
@@ -1211,7 +1223,9 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
                     psf_sigma_px: float | None = None, max_dispersion_nm_per_px: float | None = 6.0,
                     min_lines_tilt: int = 4, method: str = "both", window_px: float = 10.0,
                     min_snr_window: float | None = 4.0, windows_tilt_max_nm_per_px: float = 3.5,
-                    event: str = "") -> WavelengthSolution:
+                    whole_spectrum: str = "fallback", response: ResponseCurve | None = None,
+                    max_halves_nm: float = 1.5, whole_spectrum_tilt: bool = True,
+                    whole_spectrum_min_nm_per_px: float = 3.5, event: str = "") -> WavelengthSolution:
     """Refine the spectral geometry of one event from its own lines.
 
     Parameters
@@ -1279,6 +1293,34 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
         of the issue's figures; with the tilt held two refine (max 0.40 and 1.46 nm) and the
         others fall back flagged. On the random set (``--n 16 --seed 4``) the same six events
         meet the figures either way.
+    whole_spectrum : {"fallback", "off", "always"}
+        The forward-model fit of every frame's whole spectrum (:mod:`meteorspec.calfit`):
+        used where the feature method would fall back to the station values ("fallback",
+        default; only when ``response`` is given), never ("off"), or instead of the feature
+        method ("always"). Its solutions
+        carry the flag ``calibration_whole_spectrum``; their ``rms_nm`` is the RMS wavelength
+        difference (390-850 nm) between the fits to the two halves of the track and the fit to
+        all of it, their ``n_lines`` the number of model components with light.
+    response : ResponseCurve, optional
+        Station response; the whole-spectrum model multiplies its line weights by it. Without
+        it the blends' shapes assume a flat response (on the seeded bench that moved a
+        binned event's groove density by ~0.9 %, line median 4.4 nm instead of 0.3 nm).
+    whole_spectrum_tilt : bool
+        Whether the whole-spectrum fit frees the tilt (else held at the station's). Freed: on
+        ``bench_calibration.py --n 30 --seed 4 --truth-track`` two binned events (6.9 and
+        8.9 nm/px) refined with a free tilt and were flagged ambiguous with the station's.
+    whole_spectrum_min_nm_per_px : float
+        With ``"fallback"`` the whole-spectrum fit runs only above this dispersion (at 589 nm,
+        mid-track, station geometry). 3.5 nm/px: on the same bench, of the four events at
+        2.4-3.0 nm/px where the feature method fell back, the whole-spectrum fit rejected three
+        and accepted one 2.4 nm off (model mismatch of resolved lines, reduced chi-square 31),
+        while at 6.9-10.8 nm/px it refined 6 events (line medians 0.09-1.0 nm).
+    max_halves_nm : float
+        A whole-spectrum solution is kept only when the fits to the first and the second half
+        of the track each agree with it to within this (largest wavelength difference over
+        390-850 nm), and when no other start converges to a different solution (> this
+        apart) with a chi-square within ``_AMBIGUOUS_CHI2`` of the best; else the station
+        values, flagged ``calibration_ambiguous``.
     event : str
         Event id stored with the measurements.
 
@@ -1286,9 +1328,131 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
     -------
     WavelengthSolution
         ``source="event"`` when refined; otherwise the station values with the flag
-        ``calibration_from_station`` (and ``calibration_few_lines``, ``calibration_fit_poor`` or
-        ``calibration_unresolved``).
+        ``calibration_from_station`` (and ``calibration_few_lines``, ``calibration_fit_poor``,
+        ``calibration_unresolved`` or ``calibration_ambiguous``).
     """
+    if whole_spectrum not in ("fallback", "off", "always"):
+        raise ValueError(f"whole_spectrum must be 'fallback', 'off' or 'always', got {whole_spectrum!r}")
+    kwargs = dict(camera=camera, fit_lens=fit_lens, order=order, min_lines=min_lines, max_frames=max_frames,
+                  n_bins=n_bins, angle_range_deg=angle_range_deg, tilt_range_deg=tilt_range_deg,
+                  grooves_range_frac=grooves_range_frac, max_rms_nm=max_rms_nm, psf_sigma_px=psf_sigma_px,
+                  max_dispersion_nm_per_px=max_dispersion_nm_per_px, min_lines_tilt=min_lines_tilt,
+                  method=method, window_px=window_px, min_snr_window=min_snr_window,
+                  windows_tilt_max_nm_per_px=windows_tilt_max_nm_per_px, event=event)
+    if whole_spectrum == "always":
+        sol = None
+    else:
+        sol = _calibrate_features(frames, background, track, station_geometry, **kwargs)
+        if whole_spectrum == "off" or sol.source == "event" or response is None:
+            # without the response the blends' shapes are wrong enough to bias the stretch
+            return sol
+        if "calibration_unresolved" not in sol.flags:
+            # dispersion as the feature method measured it
+            x = np.asarray(track.x_px, float)
+            y = np.asarray(track.y_px, float)
+            ok = np.isfinite(x) & np.isfinite(y)
+            if not ok.any():
+                return sol
+            k = np.flatnonzero(ok)[ok.sum() // 2]
+            disp = float(station_geometry.dispersion_nm_per_px(x[k], y[k], 589.0, order))
+            if not (np.isfinite(disp) and disp > whole_spectrum_min_nm_per_px):
+                return sol
+    psf = psf_sigma_px
+    if psf is None:
+        psf = float(getattr(track, "psf_sigma_px", math.nan))
+        psf = psf if np.isfinite(psf) and psf > 0 else 1.5
+    cuts = _cuts(frames, background, track, max_frames=max_frames)
+    if camera is not None and cuts and cuts[0].residual.shape[1] != camera.width:
+        raise ValueError(f"frames are {cuts[0].residual.shape[1]} px wide, camera says {camera.width}")
+    new, flag = _whole_spectrum_solution(cuts, station_geometry, psf_px=psf, order=order, response=response,
+                                         angle_range_deg=angle_range_deg, grooves_range_frac=grooves_range_frac,
+                                         max_halves_nm=max_halves_nm, fit_tilt=whole_spectrum_tilt)
+    if new is not None:
+        return new
+    if sol is None:
+        return station_solution(station_geometry, flags=(flag,))
+    return station_solution(station_geometry, flags=tuple(f for f in sol.flags) + (flag,),
+                            measurements=sol.measurements)
+
+
+#: A start converging elsewhere with a chi-square within this many units of the reduced
+#: chi-square of the best makes a whole-spectrum solution ambiguous (Delta chi2 = 25: a 5 sigma
+#: preference for one parameter, common practice; scaled by the reduced chi-square since the
+#: model does not fit to the noise).
+_AMBIGUOUS_CHI2 = 25.0
+#: Least drop of chi-square that the line model must bring over a continuum alone (a 10 sigma
+#: detection of line structure, common practice for "significant"); noise alone gives ~n_comp.
+_MIN_LINE_CHI2 = 100.0
+_log = logging.getLogger(__name__)
+
+
+def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGeometry, *, psf_px: float,
+                             order: int, response: ResponseCurve | None, angle_range_deg: float,
+                             grooves_range_frac: float, max_halves_nm: float, fit_tilt: bool = True,
+                             n_starts: int = 3) -> tuple[WavelengthSolution | None, str]:
+    """The whole-spectrum fit (:mod:`meteorspec.calfit`) from the coarse search, validated."""
+    from .calfit import fit_spectrum_geometry, spectrum_chi2, wavelength_disagreement_nm
+
+    if len(cuts) < 2:
+        return None, "calibration_few_lines"
+    geo = _search_curve(station_geometry, cuts, angle_range_deg=angle_range_deg, tilt_range_deg=0.0,
+                        psf_px=psf_px, order=order)
+    cands = _search_grooves(geo, cuts, range_frac=grooves_range_frac, psf_px=psf_px, order=order)[:n_starts]
+    fit_tilt = fit_tilt and len(cuts) >= 3
+    fits = [fit_spectrum_geometry(cuts, c, psf_px=psf_px, prior=station_geometry, fit_tilt=fit_tilt, order=order,
+                                  rounds=1, max_nfev=30, response=response) for c in cands]
+    fits = [f for f in fits if f]
+    if not fits:
+        return None, "calibration_fit_poor"
+    fits.sort(key=lambda f: f.chi2)
+    best = fit_spectrum_geometry(cuts, fits[0].geometry, psf_px=psf_px, prior=station_geometry,
+                                 fit_tilt=fit_tilt, order=order, rounds=2, max_nfev=40, response=response)
+    if not best:
+        return None, "calibration_fit_poor"
+    scale = max(1.0, best.reduced_chi2)
+    _log.debug("whole-spectrum fit: chi2/n %.3f n %d line_chi2 %.0f errors %s; starts chi2 %s", best.reduced_chi2,
+               best.n_data, best.line_chi2, best.errors, [round(f.chi2 - best.chi2, 1) for f in fits])
+    if not best.line_chi2 > _MIN_LINE_CHI2 * scale:
+        return None, "calibration_few_lines"
+    # the other starts' solutions, judged on the same pixels as the best (its curves)
+    chi2 = spectrum_chi2(cuts, best.geometry, [best.geometry] + [f.geometry for f in fits], psf_px=psf_px,
+                         order=order, response=response)
+    for f, c in zip(fits, chi2[1:]):
+        apart = wavelength_disagreement_nm(best.geometry, f.geometry, cuts, order=order)
+        _log.debug("whole-spectrum fit: start at dchi2 %.1f is %.2f nm apart", c - chi2[0], apart)
+        if apart > max_halves_nm and c - chi2[0] < _AMBIGUOUS_CHI2 * scale:
+            return None, "calibration_ambiguous"
+    # the two halves of the track, each fitted on its own from the solution
+    half = len(cuts) // 2
+    diffs = []
+    if half >= 2:
+        for part in (cuts[:half], cuts[half:]):
+            # the tilt held at the solution's (a half alone constrains it less)
+            f = fit_spectrum_geometry(part, best.geometry, psf_px=psf_px, prior=best.geometry,
+                                      fit_tilt=False, order=order, rounds=1, max_nfev=20, response=response)
+            if not f:
+                return None, "calibration_ambiguous"
+            diffs.append(wavelength_disagreement_nm(best.geometry, f.geometry, cuts, order=order))
+        _log.debug("whole-spectrum fit: halves differ by %s nm", [round(d, 2) for d in diffs])
+        if max(diffs) > max_halves_nm:
+            return None, "calibration_ambiguous"
+    values = geometry_values(best.geometry)
+    errors = {k: math.nan for k in values}
+    errors.update(best.errors)
+    return WavelengthSolution(
+        geometry=best.geometry, source="event", values=values, errors=errors,
+        rms_nm=float(np.sqrt(np.mean(np.square(diffs)))) if diffs else math.nan,
+        n_lines=int(best.n_components), n_frames_used=int(best.n_frames), residuals=ResidualTable.empty(),
+        flags=("calibration_whole_spectrum",), measurements=LineMeasurements.empty()), ""
+
+
+def _calibrate_features(frames: Sequence, background: Any, track: Any, station_geometry: SpectralGeometry, *,
+                        camera: Camera | None, fit_lens: bool, order: int, min_lines: int, max_frames: int,
+                        n_bins: int, angle_range_deg: float, tilt_range_deg: float, grooves_range_frac: float,
+                        max_rms_nm: float, psf_sigma_px: float | None, max_dispersion_nm_per_px: float | None,
+                        min_lines_tilt: int, method: str, window_px: float, min_snr_window: float | None,
+                        windows_tilt_max_nm_per_px: float, event: str) -> WavelengthSolution:
+    """The feature and blend-window method of :func:`calibrate_event` (module notes, steps 1-5)."""
     psf = psf_sigma_px
     if psf is None:
         psf = float(getattr(track, "psf_sigma_px", math.nan))

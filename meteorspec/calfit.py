@@ -1,0 +1,428 @@
+"""Grating geometry from each frame's whole first-order spectrum (forward-model fit).
+
+Where isolated features blend (binned cameras, > 6 nm/px, or an all-sky lens at 4-5 nm/px
+with motion smear) the feature and blend-window positions of :mod:`meteorspec.calibrate` can
+settle on a wrong stretch with a normal-looking RMS. This module fits the geometry to the
+light itself instead: for a trial geometry every frame's spectrum along its curve is
+predicted as
+
+* the NIST lines (:mod:`meteorspec.atomic`) of each meteor species with LTE weights, one
+  free non-negative intensity per species (Fe I twice, at a cool and a warm temperature, so
+  that the shape of its blends is not fixed by one assumed temperature),
+* the N2 first-positive bands (the band samples of :mod:`meteorspec.plasma`) with free
+  non-negative intensities,
+* a smooth continuum (Legendre polynomial in the position along the curve, free sign),
+
+each line spread by the PSF convolved with the exposure's motion streak along the spectrum.
+The intensities are solved linearly (non-negative least squares) per frame for every trial
+geometry (variable projection); the geometry (groove density, dispersion angle, tilt
+components) is refined by :func:`scipy.optimize.least_squares` over all frames at once:
+the frames sit at different zeroth-order positions, so the changing dispersion and curve
+along the track constrain the geometry; and because blends are part of the model they do
+not pull a centroid.
+
+The data of a frame are fixed pixels: aperture sums across a band around the curve of a
+*reference* geometry, sampled every half pixel along it. For a trial geometry the
+wavelength of each sample is :meth:`SpectralGeometry.locate` of that pixel; a trial whose
+curve moves sideways by much less than the aperture half-width sees the same data. After a
+fit the data are resampled along the fitted curve and the fit repeated.
+
+The result carries the chi-square of the fit and the wavelength disagreement of two fits to
+the two halves of the track, which :mod:`meteorspec.calibrate` uses to tell a solution
+from a wrong one.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy import ndimage, optimize
+
+from . import atomic
+from .calibrate import (_PRIOR_SIGMA, _TEMPLATE_WEIGHT, _FrameCut, _line_list, _line_profile, _pack,
+                        _sample_curves, _unpack)
+from .optics import SpectralGeometry
+# the N2 band model is plasma.py's (no public name for its samples yet)
+from .plasma import _n2_samples
+
+__all__ = ["SpectrumFit", "fit_spectrum_geometry", "spectrum_chi2", "spectrum_components", "wavelength_disagreement_nm"]
+
+#: Temperatures of the two Fe I components (K): the main component of meteor spectra spans
+#: roughly 3500-5500 K (Borovicka 1994, Planet. Space Sci. 42, 145; from memory, rounded).
+_FE_TEMPERATURES_K = (3500.0, 6000.0)
+#: Hot-component species (~10 000 K, same source) and the rest at 4500 K.
+#: Floor of the cross-dispersion centroid error (px): sampling and PSF-shape effects left aside.
+_CROSS_FLOOR_PX = 0.05
+_HOT = ("Ca II", "Mg II", "Si II", "Fe II", "H I", "O I", "N I")
+
+
+@functools.lru_cache(maxsize=4)
+def spectrum_components(lo_nm: float = 340.0, hi_nm: float = 930.0) -> tuple[tuple[str, NDArray, NDArray], ...]:
+    """Line components of the emission model: ``(name, air wavelengths nm, relative weights)``.
+
+    One component per meteor species of the calibrator's template (LTE line energies at
+    4500 K, or 10 000 K for hot-component species, from the NIST line list), Fe I at two
+    temperatures, and one per N2 band parameter of :mod:`meteorspec.plasma`.
+    """
+    lines_all = _line_list()
+    comps = []
+    for species in _TEMPLATE_WEIGHT:
+        lines = lines_all.for_species(species).in_range(lo_nm, hi_nm)
+        lines = lines.select(lines.transition_type == "E1")
+        if len(lines) == 0:
+            continue
+        temps = _FE_TEMPERATURES_K if species == "Fe I" else ((10000.0,) if species in _HOT else (4500.0,))
+        for t in temps:
+            e = np.asarray(atomic.line_energy_rate(lines, t, 1.0), float)
+            keep = e > 1e-4 * e.max()
+            if keep.any():
+                w = e[keep] / e[keep].sum()
+                comps.append((f"{species} {t:.0f} K", np.asarray(lines.wavelength_nm[keep], float), w))
+    wl, weights, names = _n2_samples()
+    for j, name in enumerate(names):
+        sel = (weights[:, j] > 0) & (wl >= lo_nm) & (wl <= hi_nm)
+        if sel.any():
+            comps.append((name, np.asarray(wl[sel], float), weights[sel, j] / weights[sel, j].sum()))
+    return tuple(comps)
+
+
+@dataclass(frozen=True, eq=False)
+class _FrameData:
+    """One frame's aperture sums along a reference curve (fixed pixels)."""
+
+    cut: _FrameCut
+    x_px: NDArray          # sample pixels on the reference curve
+    y_px: NDArray
+    value: NDArray         # aperture sum per sample (ADU per px of arc)
+    error: NDArray         # its 1-sigma
+    step_px: float         # arc length between samples
+    sigma_px: float        # line-spread sigma along the spectrum (PSF)
+    box_px: float          # motion streak along the spectrum (full length)
+    segment: NDArray       # segment (0..n_seg-1) of each sample along the curve
+    cross_px: NDArray      # light centroid across the reference curve per segment (px)
+    cross_err_px: NDArray  # its 1-sigma
+    cross_weight: NDArray  # weights of the samples in the centroid (light, >= 0)
+
+
+def _prepare(cuts: list[_FrameCut], geo: SpectralGeometry, *, psf_px: float, order: int,
+             wl_range_nm: tuple[float, float], step_px: float = 0.5, n_segments: int = 3) -> list[_FrameData]:
+    """Aperture sums every ``step_px`` along ``geo``'s curve of every frame."""
+    half = max(2.0, math.ceil(2.5 * psf_px))
+    offs = np.arange(-half, half + 0.01, 1.0)
+    fine = np.linspace(wl_range_nm[0], wl_range_nm[1], 600)
+    out = []
+    for cut in cuts:
+        xs, ys = geo.spectrum_pixel(cut.x0_px, cut.y0_px, fine, order)
+        ok = np.isfinite(xs) & np.isfinite(ys)
+        if ok.sum() < 10:
+            continue
+        xs, ys, wl = xs[ok], ys[ok], fine[ok]
+        arc = np.concatenate([[0.0], np.cumsum(np.hypot(np.diff(xs), np.diff(ys)))])
+        s = np.arange(0.0, arc[-1], step_px)
+        if s.size < 20:
+            continue
+        lam = np.interp(s, arc, wl)
+        curves = tuple(np.asarray(v, float)[None, :] for v in (
+            np.interp(s, arc, xs), np.interp(s, arc, ys)) + tuple(geo.direction(cut.x0_px, cut.y0_px, lam, order)))
+        band = _sample_curves([cut], curves, offs)[0]
+        noise = _sample_curves([cut], curves, offs, sigma=True)[0]
+        good = np.all(np.isfinite(band), axis=0) & np.all(np.isfinite(noise), axis=0)
+        if good.sum() < 20:
+            continue
+        value = np.where(good, band.sum(axis=0), np.nan)
+        error = np.where(good, np.sqrt(np.sum(noise**2, axis=0)), np.nan)
+        tx, ty = geo.direction(cut.x0_px, cut.y0_px, 600.0, order)
+        box = abs(cut.streak_dx_px * float(tx) + cut.streak_dy_px * float(ty))
+        # light centroid across the curve in a few segments along it: where the curve lies
+        # sideways (the dispersion angle, and the tilt across the field)
+        seg = np.minimum((np.arange(s.size) * n_segments) // s.size, n_segments - 1)
+        wgt = np.where(good, np.clip(value, 0.0, None), 0.0)
+        bpos = np.where(np.isfinite(band), band, 0.0)
+        cross, cross_err = np.full(n_segments, np.nan), np.full(n_segments, np.nan)
+        for j in range(n_segments):
+            sel = (seg == j) & good
+            tot = float(np.sum(bpos[:, sel]))
+            if tot <= 0:
+                continue
+            c = float(np.sum(offs[:, None] * bpos[:, sel]) / tot)
+            # centroid noise (samples every half px are correlated: x2 on the variance)
+            var = 2.0 * float(np.sum(((offs[:, None] - c) * noise[:, sel]) ** 2)) / tot**2
+            snr = tot / math.sqrt(2.0 * float(np.sum(noise[:, sel] ** 2)))
+            if snr >= 5.0:
+                cross[j], cross_err[j] = c, math.sqrt(var + _CROSS_FLOOR_PX**2)
+        out.append(_FrameData(cut, curves[0][0], curves[1][0], value, error, step_px,
+                              math.sqrt(max(psf_px, 0.7) ** 2 + 1.0 / 12.0), box if np.isfinite(box) else 0.0,
+                              seg, cross, cross_err, wgt))
+    return out
+
+
+class _Model:
+    """Variable-projection residuals of a set of frames for trial geometries."""
+
+    def __init__(self, data: list[_FrameData], *, order: int, continuum_degree: int = 2,
+                 response: Callable[[NDArray], NDArray] | None = None):
+        self.data = data
+        self.order = order
+        comps = spectrum_components()
+        self.names = [c[0] for c in comps]
+        self.centres = np.concatenate([c[1] for c in comps])
+        self.weights = np.concatenate([c[2] for c in comps])
+        if response is not None:
+            # the camera sees the emitted lines times the station response: within a species
+            # that reweights lines far apart, and so where its blends have their centroids
+            r = np.asarray(response(self.centres), float)
+            self.weights = self.weights * np.where(np.isfinite(r) & (r > 0), r, 0.0)
+        self.comp = np.concatenate([np.full(c[1].size, j) for j, c in enumerate(comps)])
+        self.n_comp = len(comps)
+        self.degree = continuum_degree
+        self.kernels = []
+        for d in data:
+            nk = int(math.ceil((5.0 * d.sigma_px + 0.5 * d.box_px) / d.step_px))
+            k = _line_profile(np.arange(-nk, nk + 1) * d.step_px, d.sigma_px, d.box_px) * d.step_px
+            self.kernels.append((nk, k))
+        # each frame's total light: the scale of the shared line intensities in that frame
+        self.scale = np.array([max(float(np.nansum(d.value)) * d.step_px, 1e-9) for d in data])
+        self.x0 = [np.full(d.x_px.size, d.cut.x0_px) for d in data]
+        self.y0 = [np.full(d.x_px.size, d.cut.y0_px) for d in data]
+
+    def locate(self, geo: SpectralGeometry) -> tuple[list[NDArray], list[NDArray]]:
+        lam, off = geo.locate(np.concatenate(self.x0), np.concatenate(self.y0),
+                              np.concatenate([d.x_px for d in self.data]),
+                              np.concatenate([d.y_px for d in self.data]), order=self.order)
+        cut = np.cumsum([d.x_px.size for d in self.data])[:-1]
+        return np.split(lam, cut), np.split(off, cut)
+
+    def lines(self, k: int, lam: NDArray) -> NDArray | None:
+        """(n_samples, n_comp) line columns of frame ``k`` for sample wavelengths ``lam``."""
+        n = lam.size
+        idx = np.arange(n, dtype=float)
+        ok = np.isfinite(lam)
+        if ok.sum() < 20 or np.any(np.diff(lam[ok]) <= 0):
+            return None
+        nk, kern = self.kernels[k]
+        # each line's position in sample units along the curve (wavelength rises along it)
+        pos = np.interp(self.centres, lam[ok], idx[ok], left=-1e9, right=1e9) + nk
+        n_ext = n + 2 * nk
+        i = np.floor(pos).astype(int)
+        f = pos - i
+        use = (i >= 0) & (i < n_ext - 1)
+        flat = self.comp[use] * n_ext + i[use]
+        w = self.weights[use]
+        dep = (np.bincount(flat, w * (1 - f[use]), minlength=self.n_comp * n_ext)
+               + np.bincount(flat + 1, w * f[use], minlength=self.n_comp * n_ext))
+        dep = dep[: self.n_comp * n_ext].reshape(self.n_comp, n_ext)
+        return ndimage.convolve1d(dep, kern, axis=1, mode="constant")[:, nk: nk + n].T
+
+    def solve(self, geo: SpectralGeometry, *, lines: bool = True) -> tuple[NDArray, NDArray, list[NDArray]]:
+        """Normalised residuals of all samples, of the cross positions, and the fitted intensities.
+
+        The line intensities are shared by all frames, each frame's columns scaled by its
+        own total light (a geometry-independent sum of its samples), so that a frame's
+        spectrum cannot bend its own lines into place; the continuum is free per frame and
+        projected out exactly (it enters linearly with free sign).
+        """
+        lams, offs = self.locate(geo)
+        a_rows, b_rows, projs = [], [], []
+        cross_r = []
+        for k, (d, lam, off) in enumerate(zip(self.data, lams, offs)):
+            good = np.isfinite(d.value) & np.isfinite(lam)
+            t = self.lines(k, lam)
+            if t is None or good.sum() < 20:
+                a_rows.append(np.zeros((d.value.size, self.n_comp)))
+                b_rows.append(np.full(d.value.size, 30.0))
+                projs.append(None)
+            else:
+                aw = np.where(good[:, None], t * self.scale[k] / d.error[:, None], 0.0)
+                bw = np.where(good, d.value / d.error, 0.0)
+                u = np.linspace(-1.0, 1.0, lam.size)
+                cont = np.polynomial.legendre.legvander(u, self.degree) / np.where(good, d.error, np.inf)[:, None]
+                q, _ = np.linalg.qr(cont)
+                aw = aw - q @ (q.T @ aw)
+                bw = bw - q @ (q.T @ bw)
+                a_rows.append(aw)
+                b_rows.append(bw)
+                projs.append(q)
+            for j in range(d.cross_px.size):
+                if not np.isfinite(d.cross_px[j]):
+                    continue
+                sel = (d.segment == j) & np.isfinite(off)
+                w = d.cross_weight[sel]
+                if w.sum() <= 0:
+                    cross_r.append(30.0)
+                    continue
+                o = float(np.sum(w * off[sel]) / w.sum())
+                cross_r.append((o + d.cross_px[j]) / d.cross_err_px[j])
+        a = np.vstack(a_rows)
+        b = np.concatenate(b_rows)
+        live = np.any(a != 0, axis=0) & lines
+        coef = np.zeros(self.n_comp)
+        if live.any():
+            coef[live], _ = optimize.nnls(a[:, live], b, maxiter=50 * self.n_comp)
+        return b - a @ coef, np.asarray(cross_r, float), [coef]
+
+    def residuals(self, geo: SpectralGeometry) -> NDArray:
+        r, rc, _ = self.solve(geo)
+        return np.concatenate([r, rc])
+
+
+@dataclass(frozen=True, eq=False)
+class SpectrumFit:
+    """Result of :func:`fit_spectrum_geometry`.
+
+    Attributes
+    ----------
+    geometry : SpectralGeometry
+    chi2 : float
+        Sum of squared normalised residuals over all frame samples (robust loss not applied).
+    n_data : int
+        Number of samples fitted.
+    errors : dict
+        1-sigma of ``grooves_per_mm``, ``dispersion_angle_deg`` (Gauss-Newton covariance,
+        scaled by the reduced chi-square when that exceeds 1).
+    n_frames : int
+    success : bool
+    n_components : int
+        Model components (species, N2 bands) with light.
+    line_chi2 : float
+        Drop of the chi-square of the spectra when the lines are added to the continuum
+        alone: how much the line model explains (its square root is the significance).
+    """
+
+    geometry: SpectralGeometry
+    chi2: float
+    n_data: int
+    errors: dict[str, float]
+    n_frames: int
+    success: bool
+    n_components: int = 0
+    line_chi2: float = 0.0
+
+    def __bool__(self) -> bool:
+        return self.success
+
+    @property
+    def reduced_chi2(self) -> float:
+        return self.chi2 / max(self.n_data, 1)
+
+
+def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf_px: float,
+                          prior: SpectralGeometry | None = None, fit_tilt: bool = True, order: int = 1,
+                          wl_range_nm: tuple[float, float] = (370.0, 890.0), rounds: int = 2,
+                          reference: SpectralGeometry | None = None, max_nfev: int = 60,
+                          response: Callable[[NDArray], NDArray] | None = None) -> SpectrumFit:
+    """Fit groove density, dispersion angle and tilt to the frames' whole spectra.
+
+    Parameters
+    ----------
+    cuts : list of _FrameCut
+        Frames (background residuals and zeroth-order positions) from :mod:`meteorspec.calibrate`.
+    start : SpectralGeometry
+        Starting geometry (from the coarse search).
+    psf_px : float
+        PSF sigma in px.
+    prior : SpectralGeometry, optional
+        Values of the weak prior (``calibrate._PRIOR_SIGMA``); default ``start``.
+    fit_tilt : bool
+        Fit the tilt components (else held at the prior's).
+    wl_range_nm : tuple
+        Wavelengths of the reference curve sampled.
+    rounds : int
+        Fits, each on data resampled along the previous fit's curve.
+    reference : SpectralGeometry, optional
+        Curve the first round's data are sampled along (default ``start``).
+    max_nfev : int
+        Evaluations per round of :func:`scipy.optimize.least_squares`.
+    response : callable, optional
+        Station response (relative, of wavelength in nm); the line weights are multiplied
+        by it. Without it the blends' shapes assume a flat response.
+
+    Returns
+    -------
+    SpectrumFit
+        Falsy when there is nothing to fit or the fit fails.
+    """
+    prior = start if prior is None else prior
+    pp = _pack(prior, False)
+    ps = np.array([pp[0] * _PRIOR_SIGMA["grooves_frac"], _PRIOR_SIGMA["dispersion_angle_deg"],
+                   _PRIOR_SIGMA["tilt_deg"], _PRIOR_SIGMA["tilt_deg"]])
+    p = _pack(start, False)
+    if not fit_tilt:
+        p[2:4] = pp[2:4]
+    free = np.array([True, True, fit_tilt, fit_tilt])
+    ref = start if reference is None else reference
+    geo = _unpack(p, start, False)
+    fail = SpectrumFit(start, math.nan, 0, {}, 0, False)
+    res = None
+    model = None
+    for _ in range(max(1, rounds)):
+        data = _prepare(cuts, ref, psf_px=psf_px, order=order, wl_range_nm=wl_range_nm)
+        if len(data) == 0:
+            return fail
+        model = _Model(data, order=order, response=response)
+
+        def fun(q: NDArray, _model=model) -> NDArray:
+            full = p.copy()
+            full[free] = q
+            r = _model.residuals(_unpack(full, start, False))
+            return np.concatenate([r, (full[free] - pp[free]) / ps[free]])
+
+        res = optimize.least_squares(fun, p[free], x_scale=ps[free] * 0.02, diff_step=1e-5, loss="soft_l1",
+                                     f_scale=3.0, max_nfev=max_nfev)
+        p[free] = res.x
+        geo = _unpack(p, start, False)
+        ref = geo
+    r_s, r_c, coefs = model.solve(geo)
+    line_chi2 = float(np.sum(model.solve(geo, lines=False)[0] ** 2) - np.sum(r_s**2))
+    r = np.concatenate([r_s, r_c])
+    n_data = int(np.count_nonzero(r))
+    chi2 = float(np.sum(r**2))
+    errors = {"grooves_per_mm": math.nan, "dispersion_angle_deg": math.nan}
+    try:
+        jac = res.jac
+        cov = np.linalg.inv(jac.T @ jac) * max(1.0, chi2 / max(n_data - jac.shape[1], 1))
+        err = np.sqrt(np.clip(np.diag(cov), 0, None))
+        errors = {"grooves_per_mm": float(err[0]), "dispersion_angle_deg": float(err[1])}
+    except np.linalg.LinAlgError:
+        pass
+    # status 0 (evaluation budget used up) still returns the best point found
+    ok = bool(res.status >= 0) and bool(np.all(np.isfinite(p)))
+    return SpectrumFit(geo, chi2, n_data, errors, len(model.data), ok, int(np.count_nonzero(coefs[0] > 0)),
+                       line_chi2)
+
+
+def spectrum_chi2(cuts: list[_FrameCut], reference: SpectralGeometry, geometries: list[SpectralGeometry], *,
+                  psf_px: float, order: int = 1, wl_range_nm: tuple[float, float] = (370.0, 890.0),
+                  response: Callable[[NDArray], NDArray] | None = None) -> NDArray:
+    """Chi-square of each geometry on the same data (sampled along ``reference``'s curves).
+
+    Fits with different reference curves see different pixels; comparing solutions needs one.
+    """
+    data = _prepare(cuts, reference, psf_px=psf_px, order=order, wl_range_nm=wl_range_nm)
+    if not data:
+        return np.full(len(geometries), np.nan)
+    model = _Model(data, order=order, response=response)
+    return np.array([float(np.sum(model.residuals(g) ** 2)) for g in geometries])
+
+
+def wavelength_disagreement_nm(a: SpectralGeometry, b: SpectralGeometry, cuts: list[_FrameCut], *,
+                               order: int = 1, wl_range_nm: tuple[float, float] = (390.0, 850.0)) -> float:
+    """Largest difference (nm) of the wavelengths two geometries give to the pixels of ``a``'s curves."""
+    wl = np.linspace(wl_range_nm[0], wl_range_nm[1], 24)
+    worst = 0.0
+    for cut in cuts:
+        xs, ys = a.spectrum_pixel(cut.x0_px, cut.y0_px, wl, order)
+        ok = np.isfinite(xs) & np.isfinite(ys)
+        if not ok.any():
+            continue
+        lam, _ = b.locate(np.full(ok.sum(), cut.x0_px), np.full(ok.sum(), cut.y0_px), xs[ok], ys[ok], order=order)
+        d = np.abs(lam - wl[ok])
+        if np.isfinite(d).any():
+            worst = max(worst, float(np.nanmax(d)))
+    return worst
+
+

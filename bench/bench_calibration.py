@@ -54,15 +54,15 @@ from types import SimpleNamespace
 
 import numpy as np
 
-from meteorspec.background import estimate_background
+from meteorspec.background import estimate_background, refine_background
 from meteorspec.calibrate import apply_response, calibrate_event
 from meteorspec.config import load_event, load_station
-from meteorspec.extinction import extinction_correction, pixel_altaz
+from meteorspec.extinction import ExtinctionModel, extinction_correction, pixel_altaz
 from meteorspec.extract import extract_spectra
 from meteorspec.optics import SpectralGeometry
+from meteorspec.pipeline import locate_meteor
 from meteorspec.simulate import (FIRST_ORDER_SHARE, EventSpec, NuisanceStrengths, peak_for_line_snr, random_specs,
                                  render_event, simulate_event)
-from meteorspec.track import find_track
 from meteorspec.video import read_stack
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
@@ -209,7 +209,7 @@ def _whole_flight_corrected(fs, station, geometry, track, *, extinction: bool = 
         alt, _ = pixel_altaz(geometry.lens, station.pointing, track.x_px, track.y_px)
         # frames without a position carry no meteor light (the pipeline's rule)
         alt = np.where(np.isfinite(alt), alt, np.nanmedian(alt))
-        fs, _ = extinction_correction(fs, alt)
+        fs, _ = extinction_correction(fs, alt, model=ExtinctionModel.for_station(station))
     spec, _ = apply_response(fs.whole_flight(), station.response)
     return spec
 
@@ -225,7 +225,7 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
     stack = read_stack(event, station)
     geo = SpectralGeometry.from_station(station)
     true_geo = _true_geometry(geo, truth)
-    bg = estimate_background(stack, camera=station.camera, seed=0)
+    rendered = render_event(spec)  # the truth's emission model, exposures and trajectory (nothing written)
     fr = truth["frames"]
     xt, yt = np.array(fr["x_mid_px"], float), np.array(fr["y_mid_px"], float)
     lum = np.array(fr["energy_fraction"], float) > 0
@@ -233,7 +233,7 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
         track = SimpleNamespace(x_px=np.where(lum, xt, np.nan), y_px=np.where(lum, yt, np.nan),
                                 flux_adu=np.array(fr["energy_fraction"], float), psf_sigma_px=truth["psf_sigma_px"],
                                 time_s=np.array(fr["time_s"], float), luminous=lum,
-                                exposure_s=float(stack.exposure_s))
+                                exposure_s=float(stack.exposure_s), trajectory=rendered.trajectory)
         tt = track.time_s
 
         def position(t, _x=track.x_px, _y=track.y_px):
@@ -245,8 +245,14 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
             return (xp - xm) / (2 * h), (yp - ym) / (2 * h)
 
         track.position, track.velocity_px_s = position, velocity_px_s
+        # as meteorspec.pipeline.locate_meteor: the background re-estimated with the meteor masked
+        # (the first estimate keeps faint lines such as O I 777 below its clip: 5-14 % of them,
+        # bench/flux_ratio.py)
+        bg = estimate_background(stack, camera=station.camera, seed=0)
+        bg = refine_background(stack, bg, track, geo, camera=station.camera,
+                               orders=[o for o in station.grating.orders if o != 0])
     else:
-        track = find_track(stack, bg, geo, camera=station.camera, orders=station.grating.orders)
+        bg, track = locate_meteor(stack, station)
     t1 = time.perf_counter()
     sol = calibrate_event(stack, bg, track, geo, camera=station.camera, event=event.id,
                           whole_spectrum=whole_spectrum, response=station.response,
@@ -275,7 +281,6 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
         # windows hold the whole line-spread function (+-3 sigma of the PSF and motion smear,
         # at least the nominal window), so that its shape (box-like for long streaks, not
         # Gaussian) does not matter: both spectra count the same components
-        rendered = render_event(spec)  # the truth's emission model and exposures (nothing written)
         wins = []
         for lo, hi in RATIO_WINDOWS_NM.values():
             c = 0.5 * (lo + hi)

@@ -157,7 +157,9 @@ def measure(result, truth: dict, *, snr: float) -> dict:
         na_frames = np.asarray(truth["groups"]["na"]["per_frame"], float)
         dt = float(np.median(np.diff(t_frames)))
         t_true = float(t_frames[int(np.argmax(na_frames))]) if na_frames.max() > 0 else math.nan
-        out |= {"na_peak_s": t_na, "na_peak_true_s": t_true, "na_peak_err_frames": (t_na - t_true) / dt}
+        sigma_na = float(timeline.get("peak_time_err_s:Na I", math.nan))
+        out |= {"na_peak_s": t_na, "na_peak_true_s": t_true, "na_peak_err_frames": (t_na - t_true) / dt,
+                "na_peak_sigma_frames": sigma_na / dt}
         if "instrument_fwhm_nm" in plasma.get("datasets", {}):
             fw = np.asarray(plasma["datasets"]["instrument_fwhm_nm"][0], float)
             wl = np.asarray(plasma["datasets"]["wavelength_nm"][0], float)
@@ -190,9 +192,25 @@ def summarise(rows: list[dict], label: str) -> None:
     print(f"  Na peak within one exposure (SNR >= 20): {n_peak}/{len(bright)}"
           f" ({len(bright) - len(peak)} without a peak time)")
     clear = [r for r in peak if "na_peak_saturated" not in r["flags"]]
+    pulls = [abs(r["na_peak_err_frames"]) / r["na_peak_sigma_frames"] for r in peak
+             if r.get("na_peak_sigma_frames", 0) > 0]
+    if pulls:
+        print(f"    |error| / reported sigma: median {np.median(pulls):.2f}, "
+              f"{sum(p <= 2.0 for p in pulls)}/{len(pulls)} within 2 sigma")
     print(f"    of which Na D unsaturated at the peak: {sum(abs(r['na_peak_err_frames']) <= 1.0 for r in clear)}"
           f"/{len(clear)}; flagged na_peak_saturated: "
           f"{sum(abs(r['na_peak_err_frames']) <= 1.0 for r in peak if r not in clear)}/{len(peak) - len(clear)}")
+    for label, lo, hi in (("FWHM(517) <= 20 nm", 0.0, 20.0), ("FWHM(517) > 20 nm", 20.0, np.inf)):
+        sub = [r for r in bright if lo < r.get("fwhm_517_nm", np.inf) <= hi]
+        ok = sum(abs(r.get("na_peak_err_frames", math.nan)) <= 1.0 for r in sub)
+        print(f"    {label}: {ok}/{len(sub)} within one exposure")
+    missing = [r for r in bright if not math.isfinite(r.get("na_peak_err_frames", math.nan))]
+    reasons: dict[str, int] = {}
+    for r in missing:
+        why = [f for f in r["flags"] if f.startswith("na_peak_") and f != "na_peak_saturated"] or (
+            ["no composition"] if r["fit"] is None else ["other"])
+        reasons[why[0]] = reasons.get(why[0], 0) + 1
+    print("    without a Na peak time: " + ", ".join(f"{k} {v}" for k, v in sorted(reasons.items())))
     print(f"  targets: composition {'met' if comp_ok else 'NOT met'}, class {'met' if cls_ok else 'NOT met'},"
           f" Na peak {'met' if peak_ok else 'NOT met'}")
     for label, lo, hi in (("FWHM(517) <= 20 nm (Mg I b resolved from Fe I 15)", 0.0, 20.0),
@@ -221,7 +239,8 @@ def print_row(r: dict, mode: str, seconds: float) -> None:
     print(f"  {mode:12s} {r['event']:34s} snr {r['snr']:6.0f} v {r['speed_km_s']:4.0f}  truth "
           f"{t[0]:.3f}/{t[1]:.3f}/{t[2]:.3f} fit {f[0]:.3f}/{f[1]:.3f}/{f[2]:.3f} max|d| {max(r['err']):.3f}"
           f"  class {r['class_true']}->{r['class_fit']} ({r['boundary_sigma']:.1f} sig)"
-          f"  Na peak {r['na_peak_err_frames']:+.2f} fr  {seconds:.0f} s")
+          f"  Na peak {r['na_peak_err_frames']:+.2f} +- {r.get('na_peak_sigma_frames', math.nan):.2f} fr"
+          f"  {seconds:.0f} s")
 
 
 def run_random(args) -> dict[str, list[dict]]:

@@ -47,8 +47,7 @@ from . import atomic
 from .calibrate import (_PRIOR_SIGMA, _TEMPLATE_WEIGHT, _FrameCut, _line_list, _line_profile, _pack,
                         _sample_curves, _unpack)
 from .optics import SpectralGeometry
-# the N2 band model is plasma.py's (no public name for its samples yet)
-from .plasma import _n2_samples
+from .plasma import n2_band_samples
 
 __all__ = ["SpectrumFit", "fit_spectrum_geometry", "spectrum_chi2", "spectrum_components", "wavelength_disagreement_nm"]
 
@@ -83,7 +82,7 @@ def spectrum_components(lo_nm: float = 340.0, hi_nm: float = 930.0) -> tuple[tup
             if keep.any():
                 w = e[keep] / e[keep].sum()
                 comps.append((f"{species} {t:.0f} K", np.asarray(lines.wavelength_nm[keep], float), w))
-    wl, weights, names = _n2_samples()
+    wl, weights, names = n2_band_samples()
     for j, name in enumerate(names):
         sel = (weights[:, j] > 0) & (wl >= lo_nm) & (wl <= hi_nm)
         if sel.any():

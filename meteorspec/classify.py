@@ -286,6 +286,8 @@ class TimeResolved:
         Keys ``"Na I"``, ``"Mg I"``, ``"Fe I"``, ``"O I 777"`` (NaN where not measured).
     peak_time_s : dict of str to float
         Time of the maximum of each light curve (NaN if it has no significant point).
+    peak_time_err_s : dict of str to float
+        1-sigma of each peak time (fit covariance of the light-curve top).
     na_peak_lead_s : float
         Na peak time minus the mean of the Mg and Fe peak times; negative = Na peaks early.
     na_peak_lead_fraction : float
@@ -310,6 +312,7 @@ class TimeResolved:
     na_peak_lead_fraction: float
     duration_s: float
     flags: tuple[str, ...] = ()
+    peak_time_err_s: dict[str, float] = field(default_factory=dict)
 
 
 # --------------------------------------------------------------------------------------------
@@ -954,6 +957,14 @@ def boundary_distance_sigma(intensity: dict[str, float] | ArrayLike, covariance:
 def _peak_time(time_s: NDArray, flux: NDArray, err: NDArray, *, min_snr: float = 3.0,
                top_fraction: float = 0.4, exclude: NDArray | None = None,
                strict: bool = False) -> float:
+    """Time of the light-curve maximum (see :func:`_peak_time_err`)."""
+    return _peak_time_err(time_s, flux, err, min_snr=min_snr, top_fraction=top_fraction,
+                          exclude=exclude, strict=strict)[0]
+
+
+def _peak_time_err(time_s: NDArray, flux: NDArray, err: NDArray, *, min_snr: float = 3.0,
+                   top_fraction: float = 0.4, exclude: NDArray | None = None,
+                   strict: bool = False) -> tuple[float, float]:
     """Time of the light-curve maximum from a split-Gaussian fit to the curve's top.
 
     A 1-2-1 smoothing (normalised over the usable frames) picks the peak frame, so one noisy
@@ -968,12 +979,16 @@ def _peak_time(time_s: NDArray, flux: NDArray, err: NDArray, *, min_snr: float =
     the rise and the fall, as one measures a saturated light curve from its unsaturated
     parts. ``t0`` is kept if the fit converges inside the window; otherwise the peak frame's
     time, or NaN with ``strict``.
+
+    Returns ``(t0, error)``: the 1-sigma of ``t0`` from the fit covariance (scaled by the
+    reduced chi^2 when above 1), at least the spread of a uniform position within one
+    sampling interval when the fit is not used (``dt / sqrt(12)``, common practice).
     """
     good = np.isfinite(flux) & np.isfinite(err) & (err > 0)
     if exclude is not None:
         good &= ~np.asarray(exclude, dtype=bool)
     if not np.any(good & (flux > min_snr * np.where(good, err, np.inf))):
-        return math.nan
+        return math.nan, math.nan
     f = np.where(good, flux, 0.0)
     kernel = [0.25, 0.5, 0.25]
     num = np.convolve(np.pad(f, 1), kernel, mode="valid")
@@ -996,7 +1011,8 @@ def _peak_time(time_s: NDArray, flux: NDArray, err: NDArray, *, min_snr: float =
     lo, hi = max(0, min(int(top.min()), k - 3)), min(len(f) - 1, max(int(top.max()), k + 3))
     sel = np.arange(lo, hi + 1)[good[lo:hi + 1]]
     t0 = float(time_s[k])
-    fallback = math.nan if strict else t0
+    step = float(np.median(np.diff(time_s))) if len(time_s) > 1 else math.nan
+    fallback = (math.nan, math.nan) if strict else (t0, step / math.sqrt(12.0))
     if sel.size < 5:  # four parameters need more points
         return fallback
     t, y, w = time_s[sel] - t0, flux[sel], 1.0 / err[sel]
@@ -1016,13 +1032,22 @@ def _peak_time(time_s: NDArray, flux: NDArray, err: NDArray, *, min_snr: float =
     centre = float(fit.x[1])
     if not (fit.success and t[0] < centre < t[-1]):
         return fallback
-    return t0 + centre
+    dof = max(sel.size - 4, 1)
+    chi2_red = float(np.sum(fit.fun**2)) / dof
+    try:
+        cov = np.linalg.pinv(fit.jac.T @ fit.jac) * max(1.0, chi2_red)
+        centre_err = float(math.sqrt(max(cov[1, 1], 0.0)))
+    except np.linalg.LinAlgError:  # pragma: no cover - defensive
+        centre_err = math.nan
+    return t0 + centre, centre_err
 
 
 def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayLike],
                   errors: dict[str, ArrayLike], *, o777_per_frame: ArrayLike | None = None,
                   o777_err: ArrayLike | None = None, min_snr: float = 3.0,
-                  unmeasured: dict[str, ArrayLike] | None = None) -> TimeResolved:
+                  unmeasured: dict[str, ArrayLike] | None = None,
+                  window_curves: dict[str, tuple[ArrayLike, ArrayLike, ArrayLike]] | None = None,
+                  ) -> TimeResolved:
     """Per-frame composition, light curves and how early Na peaks.
 
     Parameters
@@ -1045,6 +1070,16 @@ def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayL
         a model rather than on the group's own lines (saturated or masked there). They keep
         their values in the composition; the group's peak time is fitted without them when
         the frames around them allow it, and with them otherwise.
+    window_curves : dict, optional
+        Group -> ``(flux, err, saturated)`` arrays of shape (n_frames,) from
+        :func:`window_light_curves`: the monochromatic light curves then reported, and the
+        peak times taken from them (all three groups alike, so that the differential-ablation
+        measure compares like with like). A peak inside a run of ``saturated`` frames (NaN
+        flux) is bridged from the rise and the fall when the run is at most three frames
+        long (flag ``"<group>_peak_bridged_saturated"``); a longer run cannot give the time
+        within a frame: NaN and ``"<group>_peak_unbounded_saturated"``. A curve whose
+        maximum is its first or last measured frame (cut by the record): NaN and
+        ``"<group>_peak_outside_record"``.
 
     Returns
     -------
@@ -1063,9 +1098,9 @@ def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayL
     t_peak(Fe)), and ``na_peak_lead_fraction`` divides it by the luminous duration. Peak
     times come from a 1-2-1 smoothed maximum refined by a split-Gaussian fit (different rise
     and fall widths) to the curve's top (frames above 40 % of the maximum; sub-frame).
-    Flags: ``"o777_missing"``, ``"na_peak_unreliable"`` (Na never above ``min_snr``),
-    ``"peak_at_edge"`` (a group peaks in the first or last luminous frame, so the meteor may
-    have been cut), ``"no_luminous_frames"``.
+    Flags: ``"o777_missing"``, ``"na_peak_unreliable"`` (Na never above ``min_snr``, when no
+    window-curve reason applies), ``"peak_at_edge"`` (a group peaks in the first or last
+    luminous frame, so the meteor may have been cut), ``"no_luminous_frames"``.
     """
     t = np.asarray(time_s, dtype=float)
     if t.ndim != 1 or t.size == 0:
@@ -1113,16 +1148,31 @@ def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayL
     for key, m in skip.items():
         if m.shape != t.shape:
             raise ValueError(f"unmeasured[{key!r}] must have shape {t.shape}")
-    peaks = {}
+    peaks, peak_errs = {}, {}
+    window = {}
+    if window_curves is not None:
+        for g, (wf, we, wsat) in window_curves.items():
+            arrays = (np.asarray(wf, dtype=float), np.asarray(we, dtype=float),
+                      np.asarray(wsat, dtype=bool))
+            if any(a.shape != t.shape for a in arrays):
+                raise ValueError(f"window_curves[{g!r}] arrays must have shape {t.shape}")
+            window[names[g]] = arrays
+            curves[names[g]], curve_errs[names[g]] = arrays[0], arrays[1]
     for k in curves:
-        peaks[k] = math.nan
+        peaks[k], peak_errs[k] = math.nan, math.nan
+        if k in window:
+            peaks[k], peak_errs[k], status = _window_peak(t, curves[k], curve_errs[k], window[k][2],
+                                                          min_snr=min_snr)
+            if status:
+                flags.append(f"{next(g for g, n in names.items() if n == k)}_peak_{status}")
+            continue
         if k in skip and skip[k].any():
             # bridged over the unmeasured frames; when the rise and fall around them do not
             # pin the top (too few usable frames), the model-based values are used instead
-            peaks[k] = _peak_time(t, curves[k], curve_errs[k], min_snr=min_snr, exclude=skip[k],
-                                  strict=True)
+            peaks[k], peak_errs[k] = _peak_time_err(t, curves[k], curve_errs[k], min_snr=min_snr,
+                                                    exclude=skip[k], strict=True)
         if not np.isfinite(peaks[k]):
-            peaks[k] = _peak_time(t, curves[k], curve_errs[k], min_snr=min_snr)
+            peaks[k], peak_errs[k] = _peak_time_err(t, curves[k], curve_errs[k], min_snr=min_snr)
 
     if np.any(luminous):
         idx = np.flatnonzero(luminous)
@@ -1138,7 +1188,7 @@ def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayL
         duration = math.nan
         flags.append("no_luminous_frames")
     others = [peaks[k] for k in ("Mg I", "Fe I") if np.isfinite(peaks[k])]
-    if not np.isfinite(peaks["Na I"]):
+    if not np.isfinite(peaks["Na I"]) and not any(f.startswith("na_peak_") for f in flags):
         flags.append("na_peak_unreliable")
     lead = peaks["Na I"] - float(np.mean(others)) if others else math.nan
     lead_fraction = lead / duration if duration > 0 else math.nan
@@ -1146,13 +1196,172 @@ def time_resolved(time_s: ArrayLike, group_intensity_per_frame: dict[str, ArrayL
                         na_err=ferr[:, 0], mg_err=ferr[:, 1], fe_err=ferr[:, 2],
                         light_curves=curves, light_curve_errs=curve_errs, peak_time_s=peaks,
                         na_peak_lead_s=float(lead), na_peak_lead_fraction=float(lead_fraction),
-                        duration_s=duration, flags=tuple(flags))
+                        duration_s=duration, flags=tuple(flags), peak_time_err_s=peak_errs)
+
+
+def _window_peak(t: NDArray, flux: NDArray, err: NDArray, saturated: NDArray, *,
+                 min_snr: float, max_gap: int = 3) -> tuple[float, float, str]:
+    """Peak time, its 1-sigma and a status of a window light curve (saturated frames NaN).
+
+    Status ``""``: the curve's own top. ``"bridged_saturated"``: the top lies in a run of at
+    most ``max_gap`` saturated frames with usable frames on both sides, bridged from the
+    rise and the fall (split Gaussian; error at least the spread of a uniform position over
+    the run). ``"unbounded_saturated"``: the top lies in a longer run, or at its open end,
+    so no time within a frame can be given (NaN). ``"outside_record"``: the curve is still
+    rising (or already falling) at the first or last measured frame, e.g. the spectrum
+    leaves the sensor (NaN).
+    """
+    good = np.isfinite(flux) & np.isfinite(err) & (err > 0)
+    if not np.any(good & (flux > min_snr * np.where(good, err, np.inf))):
+        return math.nan, math.nan, ""
+    dt = float(np.median(np.diff(t))) if t.size > 1 else math.nan
+    k = int(np.argmax(np.where(good, flux, -np.inf)))
+    status = ""
+    if saturated.any():
+        # saturated runs next to the brightest usable frame, or whose neighbours are near
+        # its level (saturation means bright: such a run holds the top)
+        idx = np.arange(t.size)
+        runs = np.split(np.flatnonzero(saturated), np.flatnonzero(np.diff(np.flatnonzero(saturated)) > 1) + 1)
+        holding = []
+        for run in runs:
+            nb = np.array([run[0] - 1, run[-1] + 1])
+            nb = nb[(nb >= 0) & (nb < t.size)]
+            nb_good = nb[good[nb]]
+            if abs(run[0] - k) <= 1 or abs(run[-1] - k) <= 1 or (
+                    nb_good.size and np.max(flux[nb_good]) >= 0.5 * flux[k]):
+                holding.append((run, nb_good))
+        if holding:
+            run, nb_good = max(holding, key=lambda r: np.max(flux[r[1]]) if r[1].size else 0.0)
+            both = np.any(good & (idx < run[0])) and np.any(good & (idx > run[-1]))
+            if run.size > max_gap or not both or nb_good.size < 2:
+                return math.nan, math.nan, "unbounded_saturated"
+            peak, peak_err = _peak_time_err(t, flux, err, min_snr=min_snr, exclude=saturated,
+                                            strict=True)
+            if not np.isfinite(peak):
+                return math.nan, math.nan, "unbounded_saturated"
+            return peak, max(peak_err, run.size * dt / math.sqrt(12.0)), "bridged_saturated"
+    peak, peak_err = _peak_time_err(t, flux, err, min_snr=min_snr, exclude=saturated)
+    used = np.flatnonzero(good)
+    if np.isfinite(peak) and (peak < t[used[0]] + 0.5 * dt or peak > t[used[-1]] - 0.5 * dt):
+        # a maximum at the first or last measured frame is a curve cut by the record
+        return math.nan, math.nan, "outside_record"
+    return peak, peak_err, status
+
+
+def window_light_curves(frame_spectra: Any, templates: dict[str, tuple[ArrayLike, ArrayLike]], *,
+                        fwhm_nm: ArrayLike, window_fwhm: float = 1.5, core_fraction: float = 0.3,
+                        free_rest: bool = True) -> dict[str, tuple[NDArray, NDArray, NDArray]]:
+    """Monochromatic light curve of each composition group from the per-frame spectra.
+
+    Parameters
+    ----------
+    frame_spectra : FrameSpectra-like
+        ``wavelength_nm``, ``bin_width_nm``, ``flux``, ``variance``, ``mask`` (True = bad).
+    templates : dict
+        Group -> ``(profile, rest)`` on the same grid
+        (:func:`meteorspec.plasma.group_templates`): the group's line profile for unit
+        energy and the rest of the whole-flight model.
+    fwhm_nm : array_like
+        Instrument FWHM per bin (sets the window).
+    window_fwhm : float
+        The window runs from ``window_fwhm`` instrument FWHM below the group's bluest
+        profile bin above 2 % of its peak to as far above its reddest.
+    core_fraction : float
+        Bins where the profile exceeds this share of its peak are the core: a frame with a
+        masked (saturated) core bin is not measured (NaN, ``saturated`` True).
+    free_rest : bool
+        True (default): the rest template's amplitude is fitted per frame. False: it is
+        scaled to the frame by the flux outside the window (fewer parameters, but on the
+        simulated binned-camera events the Na peak times were no better: Mg/Fe and N2
+        change their share of a frame's light along the flight).
+
+    Returns
+    -------
+    dict
+        Group -> ``(flux, err, saturated)`` of shape (n_frames,): the group's energy per frame
+        (data flux units x nm, through the response factor of the template), its 1-sigma and
+        the saturated frames.
+
+    Notes
+    -----
+    Per frame, a weighted linear least-squares fit over the window's usable bins of
+    ``a profile + b rest + c0 + c1 x`` (x the wavelength across the window): the group's
+    amplitude ``a`` over the rest of the spectrum scaled to the frame and a linear local
+    continuum (the meteor continuum and N2 bands change from frame to frame). No plasma
+    model is fitted per frame, so it works at any resolution and brightness; blends with
+    other lines inside the profile are what the template separates, as well as the data
+    allow (the error says how well). Error: the parameter covariance ``(A^T W A)^-1``.
+    """
+    wl = np.asarray(frame_spectra.wavelength_nm, dtype=float)
+    flux = np.atleast_2d(np.asarray(frame_spectra.flux, dtype=float))
+    variance = np.atleast_2d(np.asarray(frame_spectra.variance, dtype=float))
+    mask = np.atleast_2d(np.asarray(frame_spectra.mask, dtype=bool))
+    fw = np.broadcast_to(np.asarray(fwhm_nm, dtype=float), wl.shape)
+    if not (flux.shape == variance.shape == mask.shape and flux.shape[-1] == wl.size):
+        raise ValueError(f"frame spectra shapes disagree: flux {flux.shape}, variance "
+                         f"{variance.shape}, mask {mask.shape}, wavelength {wl.shape}")
+    n = flux.shape[0]
+    bad = mask | ~np.isfinite(flux) | ~np.isfinite(variance) | ~(variance > 0)
+    # a frame without meteor light (weight 0) is masked in full but is not saturated
+    weight = np.asarray(getattr(frame_spectra, "frame_weight", np.ones(n)), dtype=float)
+    lit = ~(weight == 0) if weight.shape == (n,) else np.ones(n, bool)
+    out = {}
+    for g, (profile, rest) in templates.items():
+        profile = np.asarray(profile, dtype=float)
+        rest = np.asarray(rest, dtype=float)
+        if profile.shape != wl.shape or rest.shape != wl.shape:
+            raise ValueError(f"template of {g!r} does not match the wavelength grid")
+        peak = float(np.max(profile)) if profile.size else 0.0
+        if not peak > 0:
+            continue
+        on = np.flatnonzero(profile > 0.02 * peak)
+        lo = wl[on[0]] - window_fwhm * fw[on[0]]
+        hi = wl[on[-1]] + window_fwhm * fw[on[-1]]
+        win = (wl >= lo) & (wl <= hi)
+        core = profile > core_fraction * peak
+        x = (wl - 0.5 * (lo + hi)) / max(0.5 * (hi - lo), 1e-9)
+        basis = np.stack([profile, rest, np.ones_like(wl), x], axis=1)
+        a = np.full(n, np.nan)
+        a_err = np.full(n, np.nan)
+        saturated = np.zeros(n, bool)
+        for i in range(n):
+            if np.any(core & mask[i]):
+                # the wings alone were tried: the peak times of the simulated events they
+                # gave were off by up to 15 frames (profile shape and partly saturated bins)
+                saturated[i] = bool(lit[i])
+                continue
+            use = win & ~bad[i]
+            if np.any(core & bad[i]) or use.sum() < basis.shape[1] + 2:
+                continue
+            w = 1.0 / np.sqrt(variance[i, use])
+            y = flux[i, use]
+            cols = basis[use]
+            if not free_rest:
+                outside = ~win & ~bad[i]
+                total = float(np.sum(rest[outside]))
+                if not total > 0:
+                    continue
+                y = y - float(np.sum(flux[i, outside])) / total * rest[use]
+                cols = cols[:, [0, 2, 3]]
+            design = cols * w[:, None]
+            keep = np.any(design != 0.0, axis=0)  # a rest template that is zero in the window
+            design = design[:, keep]
+            try:
+                cov = np.linalg.inv(design.T @ design)
+            except np.linalg.LinAlgError:
+                continue
+            coef = cov @ (design.T @ (y * w))
+            a[i] = coef[0]
+            a_err[i] = math.sqrt(max(cov[0, 0], 0.0))
+        out[g] = (a, a_err, saturated)
+    return out
 
 
 def time_resolved_from_fits(time_s: ArrayLike, fits: list[Any], *,
                             o777_per_frame: ArrayLike | None = None,
                             o777_err: ArrayLike | None = None,
-                            min_snr: float = 3.0, min_coverage: float = 0.5) -> TimeResolved:
+                            min_snr: float = 3.0, min_coverage: float = 0.5,
+                            window_curves: dict | None = None) -> TimeResolved:
     """:func:`time_resolved` from a list of per-frame plasma fits.
 
     Parameters
@@ -1168,6 +1377,8 @@ def time_resolved_from_fits(time_s: ArrayLike, fits: list[Any], *,
         A frame whose fit saw less than this share of a group's model light on usable bins
         (``group_coverage``; saturated group lines) counts as ``unmeasured`` for that group's
         peak time.
+    window_curves : dict, optional
+        As in :func:`time_resolved` (monochromatic light curves for the peak times).
     """
     t = np.asarray(time_s, dtype=float)
     if len(fits) != t.size:
@@ -1184,7 +1395,7 @@ def time_resolved_from_fits(time_s: ArrayLike, fits: list[Any], *,
             err[g][i] = float(fit.group_intensity_err[g])
             unmeasured[g][i] = bool(coverage.get(g, 1.0) < min_coverage)
     return time_resolved(t, flux, err, o777_per_frame=o777_per_frame, o777_err=o777_err,
-                         min_snr=min_snr, unmeasured=unmeasured)
+                         min_snr=min_snr, unmeasured=unmeasured, window_curves=window_curves)
 
 
 def light_curve_from_spectra(frame_spectra: Any, *, center_nm: float, half_width_nm: float,

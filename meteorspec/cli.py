@@ -198,7 +198,8 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
             print(f"{event.id}: no meteor ({track.reason})")
             continue
         solution = calibrate_event(stack, background, track, SpectralGeometry.from_station(station),
-                                   camera=station.camera, order=recorded_orders(station)[0], event=event.id)
+                                   camera=station.camera, order=recorded_orders(station)[0], event=event.id,
+                                   response=station.response)
         print(f"{event.id}: {solution.source}, {solution.n_lines} lines, rms {solution.rms_nm:.3f} nm")
         by_station.setdefault(station.id, (station, []))[1].append(solution)
     if not by_station:

@@ -18,14 +18,14 @@ from .atomic import load_line_list
 from .background import Background, bin_frames, estimate_background, refine_background
 from .calibrate import apply_response, calibrate_event, station_solution
 from .classify import (LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify, composition_from_groups,
-                       light_curve_from_spectra, time_resolved_from_fits)
+                       light_curve_from_spectra, time_resolved_from_fits, window_light_curves)
 from .config import Event, Station, find_station_file, load_event, load_station
 from .errors import InputError
 from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
 from .extract import FrameSpectra, Spectrum, extract_spectra
 from .lines import identify_lines, instrument_fwhm_nm
 from .optics import SpectralGeometry
-from .plasma import PlasmaFit, fit_plasma, fit_plasma_per_frame
+from .plasma import PlasmaFit, fit_plasma, fit_plasma_per_frame, group_templates
 from .result import STAGES, EventResult, FrameTimes, InputRecord
 from .track import Track, find_track, remeasure_light_curve
 from .wavesol import WavelengthSolution
@@ -235,7 +235,7 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
 
     if refine_geometry:
         solution = calibrate_event(stack, background, track, station_geometry, camera=camera, order=order,
-                                   event=event.id)
+                                   event=event.id, response=station.response)
     else:
         solution = station_solution(station_geometry)
     result.parts["calibration"] = calibration_part(solution)
@@ -258,12 +258,16 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
 
     whole = spectra.whole_flight()
     fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order)
-    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s)
+    # the response the spectra were divided by: the plasma model skews blurred lines as it did
+    response_nm = None if station.response is None else (station.response.wavelength_nm,
+                                                          station.response.response)
+    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s, response_nm=response_nm)
     subset_attrs: dict[str, object] = {}
     if not fit or min(fit.group_coverage.values(), default=0.0) < 0.5:
         # saturated (or off-sensor) group lines in the brightest frames: the whole-flight sum
         # cannot hold them, so measure the composition on the frames that record every group
-        fallback = fit_unsaturated_frames(spectra, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s)
+        fallback = fit_unsaturated_frames(spectra, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s,
+                                          response_nm=response_nm)
         # the whole-flight fit may still measure a group from the unsaturated wings of its
         # lines; keep whichever composition is the more precise
         if fallback is not None and (not fit or _composition_error(fallback[1]) <= _composition_error(fit)):
@@ -279,6 +283,9 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         return
     result.parts["plasma"] = plasma_part(fit, whole, flux_unit=flux_unit)
     result.parts["plasma"]["datasets"]["instrument_fwhm_nm"] = (np.asarray(fwhm_nm, float), "nm")
+    if response_nm is not None:  # the review refits with the same response-aware line model
+        result.parts["plasma"]["datasets"]["response_wavelength_nm"] = (np.asarray(response_nm[0], float), "nm")
+        result.parts["plasma"]["datasets"]["response"] = (np.asarray(response_nm[1], float), "1")
     for group, share in fit.group_coverage.items():
         if share < 0.5:  # the group rests mostly on the model of other lines
             result.add_flag(f"group_poorly_covered:{group}")
@@ -295,7 +302,11 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         o777, o777_err = light_curve_from_spectra(spectra, center_nm=centre_nm, half_width_nm=half_width_nm)
     except ValueError:  # the spectrum does not sample the O I 777 band
         o777 = o777_err = None
-    timeline = time_resolved_from_fits(spectra.time_s, frame_fits, o777_per_frame=o777, o777_err=o777_err)
+    # monochromatic group light curves (line profile over the rest, per frame) give the peak times
+    window = window_light_curves(spectra, group_templates(fit, spectra.wavelength_nm, spectra.bin_width_nm,
+                                                          fwhm_nm=fwhm_nm), fwhm_nm=fwhm_nm)
+    timeline = time_resolved_from_fits(spectra.time_s, frame_fits, o777_per_frame=o777, o777_err=o777_err,
+                                       window_curves=window)
     if na_peak_saturated(spectra, fwhm_nm, timeline.peak_time_s.get("Na I", np.nan)):
         timeline = dataclasses.replace(timeline, flags=tuple(timeline.flags) + ("na_peak_saturated",))
     _add_flags(result, timeline.flags)
@@ -390,7 +401,8 @@ def unsaturated_frames(spectra: FrameSpectra, fwhm_nm: np.ndarray) -> np.ndarray
 
 
 def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_km_s: float | None,
-                           min_share: float = 0.0) -> tuple[Spectrum, PlasmaFit, dict] | None:
+                           min_share: float = 0.0, response_nm: tuple | None = None,
+                           ) -> tuple[Spectrum, PlasmaFit, dict] | None:
     """Plasma fit of the sum of the frames that record every group unsaturated.
 
     Used when the whole-flight spectrum has lost a group's lines (saturated or off the
@@ -422,7 +434,7 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
         correlation=(spectra.correlation[frames] if np.ndim(spectra.correlation) == 3
                      and spectra.correlation.shape[0] == spectra.n_frames else spectra.correlation))
     whole = subset.whole_flight()
-    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=speed_km_s)
+    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=speed_km_s, response_nm=response_nm)
     if not fit or min(fit.group_coverage.values(), default=0.0) < 0.5:
         return None
     attrs = {"frames": frames, "time_s": spectra.time_s[frames], "light_share": share,
@@ -518,4 +530,6 @@ def composition_part(composition: Composition, timeline: TimeResolved) -> dict[s
                                 "(Vojacek et al. 2019)"}
     for name, t in timeline.peak_time_s.items():
         timeline_attrs[f"peak_time_s:{name}"] = t
+    for name, t in timeline.peak_time_err_s.items():
+        timeline_attrs[f"peak_time_err_s:{name}"] = t
     return {"attrs": attrs, "datasets": datasets, "groups": {"timeline": {"attrs": timeline_attrs}}}

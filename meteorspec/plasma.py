@@ -39,7 +39,8 @@ The observed flux density (data units per nm) in bin ``k`` is
   multiplets gets its own amplitude ``a_j`` (energy, data units x nm), the rest of a species
   one common amplitude; shares ``s_ij`` within an amplitude are optically thin LTE at 10 000 K.
 * N2 first-positive bands: see :data:`N2_BAND_HEADS_NM`; two non-negative amplitudes per
-  Delta-v sequence (its blue and red end, linear in between).
+  Delta-v sequence (its blue and red end, linear in between), or at coarse resolution one
+  amplitude for the system with fixed head ratios (:data:`N2_HEAD_STRENGTHS`).
 * Continuum: Legendre polynomial in wavelength over the fitted range.
 * Response factor: all lines and bands are multiplied by ``1 + sum_k r_k P_k(x)`` (Legendre,
   degree ``response_degree``, default 2), the smooth error of the response curve and of the
@@ -74,12 +75,15 @@ __all__ = [
     "HOT_SPECIES",
     "MAIN_SPECIES",
     "N2_BAND_HEADS_NM",
+    "N2_HEAD_STRENGTHS",
+    "N2_TIE_FWHM_NM",
     "PlasmaFit",
     "doppler_fwhm_nm",
     "element_column_density",
     "emergent_line_radiance",
     "fit_plasma",
     "fit_plasma_per_frame",
+    "group_templates",
     "growth_ratio",
     "select_model_lines",
     "synthetic_spectrum",
@@ -109,6 +113,22 @@ N2_BAND_HEADS_NM: dict[int, tuple[float, ...]] = {
 _N2_TAIL_NM = 2.5
 _N2_EXTENT_NM = 10.0
 _N2_STEP_NM = 0.5
+# Relative strengths of the band heads above (same order: increasing wavelength within each
+# Delta-v sequence), used when the bands are tied into one system (``fit_plasma(n2_tied=...)``). From
+# memory, approximate (a vibrational distribution typical of meteor spectra: Delta-v = 3 and
+# 2 strongest); NOT from a published band-intensity table. The demo simulator draws its bands
+# from the same memory, so simulator benchmarks of the tied model are a best case.
+N2_HEAD_STRENGTHS: dict[int, tuple[float, ...]] = {
+    1: (0.3, 0.4, 0.5, 0.5),
+    2: (0.4, 0.6, 0.8, 1.0, 0.9),
+    3: (0.4, 0.5, 0.6, 0.7, 0.8, 0.8, 0.7, 0.6, 0.4),
+    4: (0.25, 0.3, 0.3, 0.3, 0.3, 0.25),
+}
+N2_TIE_FWHM_NM = 15.0
+"""Above this instrument FWHM at Na I D the N2 bands are tied by default: the Delta-v = 4
+sequence (585-613 nm) and Na I D (589 nm) then have nearly the same blurred shape, and two
+free amplitudes for that sequence take the Na light (on simulated 21-40 nm FWHM events the
+median |na - truth| fell from 0.19 to 0.04 when tied)."""
 
 # Standard atomic weights (IUPAC, from memory), for the thermal Doppler width only: a 1 %
 # error in the mass changes the width by 0.5 %.
@@ -394,7 +414,8 @@ class _Profiles:
     """
 
     def __init__(self, centre_nm: NDArray, sigma_nm: NDArray, lo_nm: NDArray, hi_nm: NDArray,
-                 *, contiguous: bool):
+                 *, contiguous: bool, line_weight: NDArray | None = None,
+                 bin_weight: NDArray | None = None):
         n_bins, n = lo_nm.size, centre_nm.size
         self.shape = (n_bins, n)
         first = np.searchsorted(hi_nm, centre_nm - 7.0 * sigma_nm)
@@ -409,6 +430,9 @@ class _Profiles:
         self.indptr = np.concatenate([[0], np.cumsum(count)])
         self.sigma = sigma_nm
         self.inv_width = 1.0 / (hi_nm - lo_nm)[kc] if n_bins else np.zeros(kc.shape)
+        if line_weight is not None and bin_weight is not None and n_bins:
+            # entry (bin k, line i) times line_weight[i] / bin_weight[k]: see _Model (response)
+            self.inv_width = self.inv_width * (line_weight[:, None] / bin_weight[kc])
         inv_sigma = 1.0 / sigma_nm[:, None]
         if contiguous and n_bins:
             # adjacent bins share an edge: one ndtr per edge instead of two per bin
@@ -461,12 +485,23 @@ class _Profiles:
         return self._derivatives
 
 
-def _n2_samples() -> tuple[NDArray, NDArray, list[str]]:
-    """Sample wavelengths and (n_samples, n_params) weights of the N2 band model."""
+def n2_band_samples(tied: bool = False) -> tuple[NDArray, NDArray, list[str]]:
+    """Sample wavelengths and (n_samples, n_params) weights of the N2 band model.
+
+    ``tied``: one amplitude for the whole system, heads in the ratios of
+    :data:`N2_HEAD_STRENGTHS`; otherwise two per Delta-v sequence (blue and red end).
+    """
     offsets = np.arange(0.0, _N2_EXTENT_NM, _N2_STEP_NM)
     shape = np.exp(-offsets / _N2_TAIL_NM)
     shape /= shape.sum()
     wl, cols, names = [], [], []
+    if tied:
+        total = sum(sum(v) for v in N2_HEAD_STRENGTHS.values())
+        for dv, heads in N2_BAND_HEADS_NM.items():
+            for head, strength in zip(heads, N2_HEAD_STRENGTHS[dv]):
+                wl.append(head - offsets)
+                cols.append((strength / total * shape)[:, None])
+        return np.concatenate(wl), np.concatenate(cols), ["n2_system"]
     n_params = 2 * len(N2_BAND_HEADS_NM)
     for j, (dv, heads) in enumerate(N2_BAND_HEADS_NM.items()):
         names += [f"n2_dv{dv}_blue", f"n2_dv{dv}_red"]
@@ -544,7 +579,8 @@ class _Model:
     def __init__(self, wl: NDArray, bw: NDArray, fwhm_fn: Callable, lines: LineList,
                  component: NDArray, *, self_absorption: bool, continuum_degree: int,
                  air_multiplets: int = _AIR_MULTIPLETS, group_freedom_dex: float | None = None,
-                 response_degree: int = 0):
+                 response_degree: int = 0, n2_tied: bool = False,
+                 response_table: tuple[NDArray, NDArray] | None = None):
         self.wl, self.bw = wl, bw
         self.lo, self.hi = wl - bw / 2, wl + bw / 2
         self.fwhm_fn = fwhm_fn
@@ -575,7 +611,7 @@ class _Model:
         for j, name in enumerate(self.air_names):
             m = air_keys == name
             self.air_share[m, j] = air_thin[m] / air_thin[m].sum()
-        self.n2_wl, self.n2_weight, self.n2_names = _n2_samples()
+        self.n2_wl, self.n2_weight, self.n2_names = n2_band_samples(bool(n2_tied))
         keep = (self.n2_wl > self.lo[0] - 20) & (self.n2_wl < self.hi[-1] + 20)
         self.n2_wl, self.n2_weight = self.n2_wl[keep], self.n2_weight[keep]
         used = self.n2_weight.sum(axis=0) > 0.05
@@ -637,6 +673,19 @@ class _Model:
         self._sigma_all = (np.broadcast_to(np.asarray(fwhm_fn(self._centre_all), dtype=float),
                                            self._centre_all.shape) * _SIGMA_PER_FWHM
                            if self._centre_all.size else np.zeros(0))
+        # The data were divided bin by bin by the response R the light was recorded with: a
+        # line's light reaches bin k as R(line) x profile, then is divided by R(bin k). Where
+        # R changes across a blurred line (coarse dispersion, blue end) its divided profile is
+        # skewed; the model does the same (None: R flat, the plain profile).
+        self._r_line = self._r_bin = None
+        if response_table is not None:
+            r_wl, r_val = (np.asarray(a, dtype=float) for a in response_table)
+            ok = np.isfinite(r_wl) & np.isfinite(r_val)
+            if ok.sum() >= 2 and np.max(r_val[ok]) > 0:
+                r_wl, r_val = r_wl[ok], r_val[ok] / np.max(r_val[ok])
+                floor = 1e-4  # a response this low leaves no usable bin: keeps the ratio finite
+                self._r_line = np.maximum(np.interp(self._centre_all, r_wl, r_val), floor)
+                self._r_bin = np.maximum(np.interp(wl, r_wl, r_val), floor)
         n_lin = len(self.air_names) + len(self.n2_names)
         self._lin_weight = np.zeros((len(self.air) + self.n2_wl.size, n_lin))
         self._lin_weight[:len(self.air), :len(self.air_names)] = self.air_share
@@ -740,7 +789,8 @@ class _Model:
         centre = self._centre_all
         moved = centre + shift + stretch * (centre - self.mid_nm)
         prof = _Profiles(moved, self._sigma_all * width, self.lo, self.hi,
-                         contiguous=self._contiguous)
+                         contiguous=self._contiguous, line_weight=self._r_line,
+                         bin_weight=self._r_bin)
         p_all = prof.matrix()
         n_metal, n_air = len(self.metal), len(self.air)
         p_metal = prof.columns(0, n_metal).tocsr()  # row-major products are faster
@@ -1203,12 +1253,28 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
     energy, _, tau = model.line_state()
     p_metal = model.profiles()[0]
     coverage = {}
-    for g in GROUPS:
+    factor_lines = model.response_factor(model.metal.wavelength_nm)
+    thin1, _ = model._unit_lines(t_main=10.0 ** model.value("log_t"),
+                                 t_hot=10.0 ** model.value("log_t_hot"))
+    g_cov = g_cov.copy()
+    group_q = q[n_metal + n_air:]
+    for k, g in enumerate(GROUPS):
         e_g = np.where(model.metal.group == g, energy, 0.0)
         # what the bins see carries the response factor: compare with the same
-        total = float(np.sum(e_g * model.response_factor(model.metal.wavelength_nm)))
+        total = float(np.sum(e_g * factor_lines))
         seen = float(np.sum((p_metal @ e_g)[problem.good] * model.bw[problem.good]))
         coverage[g] = seen / total if total > 0 else float("nan")
+        if not group_q[k] > 1e-3 * max(float(np.max(np.abs(group_q))), 1e-300):
+            # A group fitted to (almost) nothing sits at its bound, where the covariance gives
+            # it no error; the data bound it by the error of a free amplitude of its own line
+            # profile (thin LTE ratios) on the usable bins: infinite where they are masked.
+            w = np.where((model.group_of_line == g), thin1, 0.0)
+            seen_w = float(np.sum(w * factor_lines))
+            info = 0.0  # no group line in the fitted range: not measured at all
+            if seen_w > 0:
+                unit = np.asarray(p_metal @ (w / seen_w), dtype=float)[problem.good]
+                info = float(np.sum((unit * problem.weight) ** 2))
+            g_cov[k, k] = max(g_cov[k, k], (max(1.0, chi2_red) / info) if info > 0 else np.inf)
     # lines in increasing wavelength: metal then air, sorted
     order = np.argsort(np.concatenate([model.metal.wavelength_nm, model.air.wavelength_nm]),
                        kind="stable")
@@ -1268,6 +1334,8 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
                continuum_degree: int = 3, min_relative: float = 1e-3,
                fit_shift: bool = True, fit_width: bool = True,
                group_freedom_dex: float | None = 0.3, response_degree: int = 2,
+               n2_tied: bool | None = None,
+               response_nm: tuple[ArrayLike, ArrayLike] | None = None,
                max_nfev: int = 300) -> PlasmaFit:
     """Fit the two-temperature LTE model to a (whole-flight) spectrum.
 
@@ -1316,6 +1384,18 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
         Line and group intensities are reported *as observed* (times the factor at their
         wavelength), so the factor frees the temperature without moving intensities the data
         fix. 0 disables it.
+    n2_tied : bool or None
+        True: the N2 first-positive bands are one system with fixed head ratios
+        (:data:`N2_HEAD_STRENGTHS`, one amplitude); False: two free amplitudes per Delta-v
+        sequence. None (default): tied when the instrument FWHM at 589.3 nm exceeds
+        :data:`N2_TIE_FWHM_NM`, where Na I D and the Delta-v = 4 sequence are not separable
+        otherwise.
+    response_nm : (wavelength_nm, response) arrays, optional
+        The response curve the spectrum was divided by (station file, contract section 3).
+        Each line is recorded with the response at its own wavelength and its blurred light
+        then divided by the response at each bin; the model does the same, which matters
+        where the response changes across a line (at 21-40 nm FWHM the blue wing of a line at
+        450 nm is lifted by half). None: the plain profile.
     max_nfev : int
         Limit of model evaluations of the optimiser.
 
@@ -1361,10 +1441,15 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     if not np.any(component == "main"):
         return PlasmaFit.failed(f"no main-component lines between {lo_nm:.0f} and {hi_nm:.0f} nm",
                                 wl.size)
+    if n2_tied is None:
+        n2_tied = bool(fwhm_fn(np.array([589.3]))[0] > N2_TIE_FWHM_NM)
     config = dict(main_species=tuple(main_species), hot_species=tuple(hot_species),
                   air_species=tuple(air_species), continuum_degree=int(continuum_degree),
                   self_absorption=bool(self_absorption), min_relative=float(min_relative),
-                  line_index=index, component=component, response_degree=int(response_degree))
+                  line_index=index, component=component, response_degree=int(response_degree),
+                  n2_tied=bool(n2_tied),
+                  response_table=(None if response_nm is None else
+                                  tuple(np.asarray(a, dtype=float).copy() for a in response_nm)))
     lines = line_list.select(index)
     metal = component != "air"
     line_index = np.concatenate([index[metal], index[~metal]])
@@ -1372,7 +1457,8 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     def build() -> _Model:
         model = _Model(wl, bw, fwhm_fn, lines, component, self_absorption=self_absorption,
                        continuum_degree=continuum_degree, group_freedom_dex=group_freedom_dex,
-                       response_degree=response_degree)
+                       response_degree=response_degree, n2_tied=bool(n2_tied),
+                       response_table=config["response_table"])
         model.params["shift_nm"].free = bool(fit_shift)
         model.params["stretch"].free = bool(fit_shift)
         model.params["width_scale"].free = bool(fit_width)
@@ -1414,6 +1500,69 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
             return PlasmaFit.failed(f"optimiser failed: {result.message}", wl.size)
     return _finish(model, problem, result, line_index=line_index, n_bins=wl.size, config=config,
                    column_known=bool(self_absorption))
+
+
+def group_templates(whole_flight_fit: PlasmaFit, wavelength_nm: ArrayLike, bin_width_nm: ArrayLike,
+                    *, fwhm_nm: float | ArrayLike | Callable,
+                    line_list: LineList | None = None) -> dict[str, tuple[NDArray, NDArray]]:
+    """Shape of each composition group's lines and of everything else, from a whole-flight fit.
+
+    For monochromatic light curves (:func:`meteorspec.classify.window_light_curves`): per
+    frame, a group's light is the amplitude of its own line profile over the rest of the
+    spectrum, without the per-frame plasma model.
+
+    Parameters
+    ----------
+    whole_flight_fit : PlasmaFit
+        A successful :func:`fit_plasma` result on this grid.
+    wavelength_nm, bin_width_nm : array_like of shape (n_bins,)
+    fwhm_nm : float, array or callable
+        As for :func:`fit_plasma`.
+    line_list : LineList, optional
+        The list the fit used (default: project line list).
+
+    Returns
+    -------
+    dict
+        ``"na"``, ``"mg"``, ``"fe"`` -> ``(profile, rest)``: ``profile`` (n_bins,) is the group's
+        lines on the grid for a unit summed energy (relative strengths from the fit, or from
+        the thin LTE model at the fitted temperature when the fit gave the group no light),
+        through the fit's shift, width and response factor; ``rest`` (n_bins,) is the fit's
+        model flux without the group's lines. A group with no line in the model is left out.
+    """
+    if not whole_flight_fit:
+        raise ValueError(f"whole-flight fit failed ({whole_flight_fit.reason})")
+    wl = np.asarray(wavelength_nm, dtype=float)
+    bw = np.broadcast_to(np.asarray(bin_width_nm, dtype=float), wl.shape).astype(float)
+    if whole_flight_fit.model_flux.shape != wl.shape:
+        raise ValueError("whole-flight fit was made on another wavelength grid")
+    cfg = whole_flight_fit.config
+    line_list = _default_lines() if line_list is None else line_list
+    model = _Model(wl, bw, _fwhm_function(fwhm_nm, wl), line_list.select(cfg["line_index"]),
+                   cfg["component"], self_absorption=cfg["self_absorption"],
+                   continuum_degree=cfg["continuum_degree"],
+                   response_degree=cfg.get("response_degree", 0),
+                   n2_tied=cfg.get("n2_tied", False), response_table=cfg.get("response_table"))
+    for name, q in model.params.items():
+        q.value = whole_flight_fit.parameters[name]
+    p_metal = model.profiles()[0]
+    energy = model.line_state()[0]
+    thin1, _ = model._unit_lines(10.0 ** model.value("log_t"), 10.0 ** model.value("log_t_hot"))
+    out = {}
+    for g in GROUPS:
+        member = model.group_of_line == g
+        if not np.any(member):
+            continue
+        e_g = np.where(member, energy, 0.0)
+        weight = e_g if e_g.sum() > 0 else np.where(member, thin1, 0.0)
+        if not weight.sum() > 0:
+            continue
+        # unit energy as observed (through the response factor), like group_intensity
+        seen = float(np.sum(weight * model.response_factor(model.metal.wavelength_nm)))
+        profile = np.asarray(p_metal @ (weight / seen), dtype=float)
+        rest = whole_flight_fit.model_flux - np.asarray(p_metal @ e_g, dtype=float)
+        out[g] = (profile, rest)
+    return out
 
 
 def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
@@ -1480,7 +1629,8 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
     model = _Model(wl, bw.astype(float), fwhm_fn, lines, cfg["component"],
                    self_absorption=cfg["self_absorption"],
                    continuum_degree=cfg["continuum_degree"],
-                   response_degree=cfg.get("response_degree", 0))
+                   response_degree=cfg.get("response_degree", 0),
+                   n2_tied=cfg.get("n2_tied", False), response_table=cfg.get("response_table"))
     wf_params = whole_flight_fit.parameters
     metal = cfg["component"] != "air"
     line_index = np.concatenate([cfg["line_index"][metal], cfg["line_index"][~metal]])

@@ -227,6 +227,9 @@ class EventView:
         (see :func:`estimate_frame_weight`).
     fwhm_nm : ndarray of shape (n_wl,)
         Instrument FWHM on the stored grid.
+    response_nm : (ndarray, ndarray) or None
+        The station response the spectra were divided by (``/plasma/response_wavelength_nm``,
+        ``/plasma/response``): the plasma fit models blurred lines divided by it bin by bin.
     """
 
     path: str
@@ -247,6 +250,7 @@ class EventView:
     speed_err_km_s: float | None
     notes: tuple[str, ...] = ()
     software_version: str = ""   # of the automatic run under review
+    response_nm: tuple[np.ndarray, np.ndarray] | None = None
 
     @property
     def n_frames(self) -> int:
@@ -322,6 +326,9 @@ class EventView:
         speed = comp.get("speed_km_s")
         speed = float(speed) if speed is not None and np.isfinite(float(speed)) else None
         lines = lines_columns(ev) or {}
+        rw = np.asarray(plasma["datasets"].get("response_wavelength_nm", []), float)
+        rv = np.asarray(plasma["datasets"].get("response", []), float)
+        response_nm = (rw, rv) if rw.ndim == 1 and rw.size >= 2 and rv.shape == rw.shape else None
         return cls(path=str(path), event_id=str(ev["attrs"].get("event_id", "")), wavelength_nm=wl,
                    bin_width_nm=bw, per_frame=pf, per_frame_err=pfe, per_frame_mask=pfm, time_s=time_s,
                    frame_weight=weight, fwhm_nm=fwhm,
@@ -329,7 +336,7 @@ class EventView:
                    flux_err=np.asarray(d.get("flux_err", np.full(wl.size, np.nan)), float),
                    lines={k: np.asarray(v) for k, v in lines.items()}, composition=comp, speed_km_s=speed,
                    speed_err_km_s=speed_err_km_s if speed is not None else None, notes=tuple(notes),
-                   software_version=str(ev["attrs"].get("software_version", "")))
+                   software_version=str(ev["attrs"].get("software_version", "")), response_nm=response_nm)
 
 
 def estimate_frame_weight(per_frame: np.ndarray, mask: np.ndarray, *, lit: np.ndarray | None = None,
@@ -595,8 +602,8 @@ def rederive(view: EventView, corrections: Corrections, *, line_list: LineList |
             notes.append(f"rejected lines belong to the {', '.join(groups)} group(s): that group's intensity "
                          "now sums its remaining lines only")
         line_list = line_list.select(~drop)
-    fit = fit_plasma(spectrum, fwhm_nm=fwhm, line_list=line_list, speed_km_s=view.speed_km_s,
-                     **dict(plasma_options or {}))
+    options = {"response_nm": view.response_nm} | dict(plasma_options or {})
+    fit = fit_plasma(spectrum, fwhm_nm=fwhm, line_list=line_list, speed_km_s=view.speed_km_s, **options)
     table = identify_lines(spectrum, fwhm_nm=fwhm, line_list=line_list, plasma_fit=fit if fit else None)
     composition = None
     if fit:

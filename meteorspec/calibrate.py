@@ -88,6 +88,7 @@ from . import atomic
 from .config import Camera, ResponseCurve, Station
 from .errors import InputError
 from .optics import SpectralGeometry
+from .startrace import StarTraces, trace_offsets_px
 from .wavesol import (GRATING_PARAMETERS, LENS_PARAMETERS, LineMeasurements, ResidualTable,
                       WavelengthSolution, geometry_values)
 
@@ -186,6 +187,11 @@ class GeometryFit:
         Measurements kept (not rejected as outliers).
     success : bool
     message : str
+    trace_px : ndarray
+        Residuals of the stars' ridge points (:mod:`meteorspec.startrace`), measured minus
+        model across the spectrum in px (empty without star traces).
+    trace_used : ndarray of bool
+        Ridge points kept.
     """
 
     geometry: SpectralGeometry
@@ -196,6 +202,8 @@ class GeometryFit:
     used: NDArray[np.bool_]
     success: bool
     message: str = ""
+    trace_px: NDArray[np.float64] = dataclasses.field(default_factory=lambda: np.zeros(0))
+    trace_used: NDArray[np.bool_] = dataclasses.field(default_factory=lambda: np.zeros(0, bool))
 
     def __bool__(self) -> bool:
         return self.success
@@ -236,7 +244,7 @@ def _model_residuals(geo: SpectralGeometry, m: LineMeasurements) -> tuple[NDArra
 
 def fit_geometry(measurements: LineMeasurements, start: SpectralGeometry, *, fit_lens: bool = False,
                  fit_tilt: bool = True, prior: SpectralGeometry | None = None, reject_sigma: float = 4.0,
-                 max_rounds: int = 4) -> GeometryFit:
+                 max_rounds: int = 4, traces: StarTraces | None = None, order: int = 1) -> GeometryFit:
     """Least-squares grating (and lens) values from measured feature positions.
 
     Parameters
@@ -256,6 +264,13 @@ def fit_geometry(measurements: LineMeasurements, start: SpectralGeometry, *, fit
         Measurements with a normalised residual beyond this are dropped (then refit).
     max_rounds : int
         Rounds of fit + rejection.
+    traces : StarTraces, optional
+        Ridge points of stars' first-order spectra (:func:`meteorspec.startrace.measure_star_traces`):
+        each adds its distance from the model's curve across the spectrum over its 1-sigma
+        (no wavelength: they hold the dispersion angle, tilt and lens, not the groove density).
+        Rejected as outliers on their own robust scale.
+    order : int
+        The order the traces were measured in.
 
     Returns
     -------
@@ -289,41 +304,54 @@ def fit_geometry(measurements: LineMeasurements, start: SpectralGeometry, *, fit
     sc = np.asarray(measurements.sigma_cross_px, float)
     use_cross = np.isfinite(sc)
     keep = np.ones(n, bool)
+    traces = StarTraces.empty() if traces is None else traces
+    st = np.asarray(traces.sigma_px, float)
+    keep_t = np.isfinite(st) & (st > 0)
 
-    def fun(p: NDArray, sel: NDArray) -> NDArray:
+    def trace_norm(geo: SpectralGeometry) -> NDArray:
+        return trace_offsets_px(geo, traces, order=order) / np.where(keep_t, st, 1.0)
+
+    def fun(p: NDArray, sel: NDArray, sel_t: NDArray) -> NDArray:
         geo = _unpack(p, start, fit_lens)
         along, cross = _model_residuals(geo, measurements)
         ra = along[sel] / sa[sel]
         rc = np.where(use_cross[sel], cross[sel] / np.where(use_cross[sel], sc[sel], 1.0), 0.0)
-        r = np.concatenate([ra, rc, (p - pp) / ps])
+        rt = trace_norm(geo)[sel_t] if sel_t.any() else np.zeros(0)
+        r = np.concatenate([ra, rc, rt, (p - pp) / ps])
         return np.where(np.isfinite(r), r, 1e3)  # light off the sensor: a large, finite penalty
+
+    def robust_keep(norm: NDArray, current: NDArray) -> NDArray:
+        # robust scale of the normalised residuals: reject relative to what the data show
+        scale = max(1.0, 1.4826 * float(np.median(norm[current]))) if current.any() else 1.0
+        return np.isfinite(norm) & (norm <= reject_sigma * scale)
 
     p = p0
     res = None
     for _round in range(max_rounds):
-        sel = keep.copy()
+        sel, sel_t = keep.copy(), keep_t.copy()
         if sel.sum() < 2:
             return empty
-        res = optimize.least_squares(fun, p, args=(sel,), x_scale=ps, loss="soft_l1", f_scale=3.0,
+        res = optimize.least_squares(fun, p, args=(sel, sel_t), x_scale=ps, loss="soft_l1", f_scale=3.0,
                                      diff_step=1e-6, max_nfev=200)
         p = res.x
         geo = _unpack(p, start, fit_lens)
         along, cross = _model_residuals(geo, measurements)
-        norm = np.hypot(along / sa, np.where(use_cross, cross / np.where(use_cross, sc, 1.0), 0.0))
-        # robust scale of the normalised residuals: reject relative to what the data show
-        scale = max(1.0, 1.4826 * float(np.median(norm[keep]))) if keep.any() else 1.0
-        new_keep = np.isfinite(norm) & (norm <= reject_sigma * scale)
-        if np.array_equal(new_keep, keep):
+        new_keep = robust_keep(np.hypot(along / sa, np.where(use_cross, cross / np.where(use_cross, sc, 1.0), 0.0)),
+                               keep)
+        # the stars' ridges on their own scale: their errors are not the lines' errors
+        new_keep_t = robust_keep(np.abs(trace_norm(geo)), keep_t) & keep_t if keep_t.any() else keep_t
+        if np.array_equal(new_keep, keep) and np.array_equal(new_keep_t, keep_t):
             break
-        keep = new_keep
+        keep, keep_t = new_keep, new_keep_t
     # final plain least squares on the kept set, for the covariance
-    res = optimize.least_squares(fun, p, args=(keep,), x_scale=ps, diff_step=1e-6, max_nfev=200)
+    res = optimize.least_squares(fun, p, args=(keep, keep_t), x_scale=ps, diff_step=1e-6, max_nfev=200)
     p = res.x
     geo = _unpack(p, start, fit_lens)
     along, cross = _model_residuals(geo, measurements)
-    n_data = int(keep.sum() + (use_cross & keep).sum())
+    n_rows = int(2 * keep.sum() + keep_t.sum())  # residual rows of data (before the prior rows)
+    n_data = int(keep.sum() + (use_cross & keep).sum() + keep_t.sum())
     dof = max(n_data - p.size, 1)
-    chi2 = float(np.sum(res.fun[: n_data] ** 2))
+    chi2 = float(np.sum(res.fun[:n_rows] ** 2))
     jac = res.jac
     try:
         cov = np.linalg.inv(jac.T @ jac) * max(1.0, chi2 / dof)
@@ -348,7 +376,8 @@ def fit_geometry(measurements: LineMeasurements, start: SpectralGeometry, *, fit
     disp = geo.dispersion_nm_per_px(measurements.x0_px, measurements.y0_px, measurements.lab_nm)
     along_nm = -along * disp  # measured minus lab, in nm
     ok = bool(res.success) and bool(np.all(np.isfinite(p)))
-    return GeometryFit(geo, values, errors, along_nm, cross, keep, ok, str(res.message))
+    trace_px = trace_offsets_px(geo, traces, order=order)  # measured minus model
+    return GeometryFit(geo, values, errors, along_nm, cross, keep, ok, str(res.message), trace_px, keep_t)
 
 
 # --------------------------------------------------------------------------- band sampling
@@ -1697,12 +1726,16 @@ class NightCalibration:
         Per event: ``n``, ``rms_nm``, ``median_nm`` of its residuals under the night geometry.
     path : Path or None
         The refined station file written (None if not written).
+    stars : dict of str to float
+        Star ridges used: ``points``, ``stars``, ``kept`` and ``rms_px`` (their residual across
+        the spectrum under the night geometry; ``rms_px_station`` under the station's values).
     """
 
     solution: WavelengthSolution
     station_values: dict[str, float]
     per_event: dict[str, dict[str, float]]
     path: Path | None = None
+    stars: dict[str, float] = dataclasses.field(default_factory=dict)
 
     def report(self) -> str:
         """Plain-text residual report."""
@@ -1715,13 +1748,18 @@ class NightCalibration:
         out.append(f"{'event':40s} {'n':>4s} {'rms_nm':>8s} {'median_nm':>10s}")
         for ev, d in self.per_event.items():
             out.append(f"{ev:40s} {int(d['n']):4d} {d['rms_nm']:8.3f} {d['median_nm']:10.3f}")
+        if self.stars.get("points"):
+            st = self.stars
+            out.append(f"star ridges: {int(st['kept'])} of {int(st['points'])} points from {int(st['stars'])} stars, "
+                       f"rms across {st['rms_px']:.3f} px (station values: {st['rms_px_station']:.3f} px)")
         if self.path is not None:
             out.append(f"written: {self.path}")
         return "\n".join(out)
 
 
 def calibrate_night(solutions: Iterable[WavelengthSolution], station: Station, *, fit_lens: bool = True,
-                    write: bool = True, date: str | None = None, out_dir: str | Path | None = None) -> NightCalibration:
+                    write: bool = True, date: str | None = None, out_dir: str | Path | None = None,
+                    traces: StarTraces | None = None, order: int = 1) -> NightCalibration:
     """Fit one station geometry to the line positions of many events and write it beside the old file.
 
     Parameters
@@ -1740,6 +1778,12 @@ def calibrate_night(solutions: Iterable[WavelengthSolution], station: Station, *
         ``YYYYMMDD`` for the file name; default today (UTC).
     out_dir : path, optional
         Folder for the new file; default the station file's folder.
+    traces : StarTraces, optional
+        Ridges of the stars' first-order spectra in the events' backgrounds
+        (:func:`meteorspec.startrace.measure_star_traces`): they add the dispersion angle, tilt
+        and lens at field positions no meteor crossed.
+    order : int
+        The recorded order (of the lines and the traces).
 
     Returns
     -------
@@ -1757,9 +1801,16 @@ def calibrate_night(solutions: Iterable[WavelengthSolution], station: Station, *
         raise ValueError(f"{station.path}: no event with measured lines to refine the station from")
     m = LineMeasurements.concat(meas)
     start = SpectralGeometry.from_station(station)
-    fit = fit_geometry(m, start, fit_lens=fit_lens, prior=start)
+    fit = fit_geometry(m, start, fit_lens=fit_lens, prior=start, traces=traces, order=order)
     if not fit:
         raise ValueError(f"{station.path}: night geometry fit failed ({fit.message})")
+    stars: dict[str, float] = {}
+    if traces is not None and len(traces):
+        kept = fit.trace_px[fit.trace_used]
+        before = trace_offsets_px(start, traces, order=order)[fit.trace_used]
+        stars = {"points": float(len(traces)), "stars": float(traces.n_stars), "kept": float(kept.size),
+                 "rms_px": float(np.sqrt(np.mean(kept**2))) if kept.size else math.nan,
+                 "rms_px_station": float(np.sqrt(np.nanmean(before**2))) if before.size else math.nan}
     sol = _solution_from_fit(fit, m, "night")
     per_event = {}
     for ev in dict.fromkeys(m.event.tolist()):
@@ -1771,7 +1822,7 @@ def calibrate_night(solutions: Iterable[WavelengthSolution], station: Station, *
     path = None
     if write:
         path = write_refined_station(station, sol, date=date, out_dir=out_dir)
-    return NightCalibration(sol, geometry_values(start), per_event, path)
+    return NightCalibration(sol, geometry_values(start), per_event, path, stars)
 
 
 def _write_new_file(path: Path, text: str, *, overwrite: bool = False) -> None:

@@ -182,9 +182,11 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     from .errors import InputError
     from .optics import SpectralGeometry
     from .pipeline import locate_meteor, recorded_orders
+    from .startrace import StarTraces, measure_star_traces
     from .video import read_stack
 
     by_station: dict[str, tuple] = {}
+    ridges: dict[str, list] = {}
     for toml, root in find_events(args.events):
         try:
             event = load_event(toml)
@@ -194,6 +196,14 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
             print(f"skipped: {exc}")
             continue
         background, track = locate_meteor(stack, station)
+        if not args.no_stars:
+            # the stars are there whether or not a meteor was found
+            traces = measure_star_traces(background.level_adu, background.noise_adu,
+                                         SpectralGeometry.from_station(station), n_frames=len(background.frames_used),
+                                         sky_adu=background.sky_adu, order=recorded_orders(station)[0], event=event.id)
+            ridges.setdefault(station.id, []).append(traces)
+            if len(traces):
+                print(f"{event.id}: {traces.n_stars} star ridges ({len(traces)} points)")
         if not track:
             print(f"{event.id}: no meteor ({track.reason})")
             continue
@@ -209,7 +219,8 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     for station, solutions in by_station.values():
         try:
             night = calibrate_night(solutions, station, fit_lens=not args.fix_lens, date=args.date,
-                                    out_dir=args.out_dir)
+                                    out_dir=args.out_dir, traces=StarTraces.concat(ridges.get(station.id, [])),
+                                    order=recorded_orders(station)[0])
         except ValueError as exc:
             print(f"{station.id}: not refined: {exc}")
             status = 1
@@ -351,6 +362,8 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--date", help="YYYYMMDD for the new file name (default: today, UTC)")
     c.add_argument("--fix-lens", action="store_true", help="keep focal_px and k1 at the station values")
     c.add_argument("--out-dir", help="folder for <id>.refined-<date>.toml (default: beside the station file)")
+    c.add_argument("--no-stars", action="store_true",
+                   help="leave out the ridges of the stars' first-order spectra in the events' backgrounds")
     c.set_defaults(func=_cmd_calibrate)
 
     s = sub.add_parser("simulate", help="write synthetic events from the forward model")

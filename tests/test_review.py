@@ -81,7 +81,7 @@ def _stored(frames: FrameSpectra, *, shift_nm: float, stretch: float = 1.0) -> F
                    flux=frames.flux / stretch, variance=frames.variance / stretch ** 2)
 
 
-def write_synthetic_event(path: Path, frames: FrameSpectra) -> Path:
+def write_synthetic_event(path: Path, frames: FrameSpectra, *, extra_plasma: dict | None = None) -> Path:
     """The automatic run on ``frames``: whole flight, plasma fit, lines, class, as the pipeline stores them."""
     whole = frames.whole_flight()
     fwhm = np.full(whole.wavelength_nm.size, FWHM_NM)
@@ -92,7 +92,8 @@ def write_synthetic_event(path: Path, frames: FrameSpectra) -> Path:
     result = EventResult(event_id=EVENT_ID, station="TR01", start_utc="2026-11-14T03:15:22.120Z",
                          software_version=software_version(), status="ok")
     result.parts["spectrum"] = spectrum_part(frames, flux_unit="adu")
-    result.parts["plasma"] = {"attrs": {"success": True}, "datasets": {"instrument_fwhm_nm": (fwhm, "nm")}}
+    result.parts["plasma"] = {"attrs": {"success": True},
+                              "datasets": {"instrument_fwhm_nm": (fwhm, "nm")} | dict(extra_plasma or {})}
     result.parts["lines"] = {"table": (table.to_records(), "adu nm")}
     result.parts["composition"] = {"attrs": {
         "na": comp.na, "mg": comp.mg, "fe": comp.fe, "na_err": comp.na_err, "mg_err": comp.mg_err,
@@ -488,3 +489,31 @@ def test_reviewers_at_the_same_time_lose_nothing(copy):
     entries = read_reviews(copy)
     assert sorted(names) == [e["name"] for e in entries] == [f"{k:04d}" for k in range(1, 7)]
     assert sorted(e["attrs"]["reviewer"] for e in entries) == [f"reviewer {i}" for i in range(6)]
+
+
+
+def test_refit_uses_the_response_the_automatic_run_stored(tmp_path, monkeypatch):
+    # the pipeline keeps the response the spectra were divided by in /plasma; the review's
+    # refit must model blurred lines with it, or it disagrees with the automatic run
+    resp_wl = np.array([400.0, 550.0, 700.0])
+    resp = np.array([0.5, 1.0, 0.8])
+    path = write_synthetic_event(tmp_path / f"{EVENT_ID}.h5", _stored(_true_frames(), shift_nm=SHIFT_NM),
+                                 extra_plasma={"response_wavelength_nm": (resp_wl, "nm"), "response": (resp, "1")})
+    view = open_event(path)
+    assert view.response_nm is not None
+    assert_allclose(view.response_nm[0], resp_wl)
+    assert_allclose(view.response_nm[1], resp)
+    seen = {}
+    import meteorspec.plasma as plasma_module
+    real = plasma_module.fit_plasma
+
+    def spy(*args, **kwargs):
+        seen.update(kwargs)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(plasma_module, "fit_plasma", spy)
+    rederive(view, Corrections(), plasma_options=FAST)
+    assert_allclose(seen["response_nm"][1], resp)
+    # a file without the curve (older runs) refits without it
+    assert open_event(write_synthetic_event(tmp_path / "old" / f"{EVENT_ID}.h5",
+                                            _stored(_true_frames(), shift_nm=SHIFT_NM))).response_nm is None

@@ -25,7 +25,7 @@ from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
 from .extract import FrameSpectra, Spectrum, extract_spectra
 from .lines import identify_lines, instrument_fwhm_nm
 from .optics import SpectralGeometry
-from .plasma import PlasmaFit, fit_plasma, fit_plasma_per_frame, group_templates
+from .plasma import PlasmaFit, effective_response, fit_plasma, fit_plasma_per_frame, group_templates
 from .result import STAGES, EventResult, FrameTimes, InputRecord
 from .track import Track, find_track, remeasure_light_curve
 from .wavesol import WavelengthSolution
@@ -258,16 +258,21 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
 
     whole = spectra.whole_flight()
     fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order)
-    # the response the spectra were divided by: the plasma model skews blurred lines as it did
-    response_nm = None if station.response is None else (station.response.wavelength_nm,
-                                                          station.response.response)
+    # the curve the spectra were divided by (response x light-weighted mean transmission):
+    # the plasma model skews blurred lines as the divisions did
+    station_response = None if station.response is None else (station.response.wavelength_nm,
+                                                               station.response.response)
+    frame_altitude_deg = altitude_deg if station.pointing is not None else None
+    response_nm = effective_response(spectra, response_nm=station_response, altitude_deg=frame_altitude_deg,
+                                     extinction=ExtinctionModel.for_station(station))
     fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s, response_nm=response_nm)
     subset_attrs: dict[str, object] = {}
     if not fit or min(fit.group_coverage.values(), default=0.0) < 0.5:
         # saturated (or off-sensor) group lines in the brightest frames: the whole-flight sum
         # cannot hold them, so measure the composition on the frames that record every group
         fallback = fit_unsaturated_frames(spectra, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s,
-                                          response_nm=response_nm)
+                                          response_nm=station_response, altitude_deg=frame_altitude_deg,
+                                          extinction=ExtinctionModel.for_station(station))
         # the whole-flight fit may still measure a group from the unsaturated wings of its
         # lines; keep whichever composition is the more precise
         if fallback is not None and (not fit or _composition_error(fallback[1]) <= _composition_error(fit)):
@@ -402,6 +407,7 @@ def unsaturated_frames(spectra: FrameSpectra, fwhm_nm: np.ndarray) -> np.ndarray
 
 def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_km_s: float | None,
                            min_share: float = 0.0, response_nm: tuple | None = None,
+                           altitude_deg: np.ndarray | None = None, extinction: ExtinctionModel | None = None,
                            ) -> tuple[Spectrum, PlasmaFit, dict] | None:
     """Plasma fit of the sum of the frames that record every group unsaturated.
 
@@ -434,6 +440,11 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
         correlation=(spectra.correlation[frames] if np.ndim(spectra.correlation) == 3
                      and spectra.correlation.shape[0] == spectra.n_frames else spectra.correlation))
     whole = subset.whole_flight()
+    # response_nm: the station response; with the frames' altitudes the subset's own
+    # light-weighted transmission joins it (see plasma.effective_response)
+    response_nm = effective_response(subset, response_nm=response_nm, extinction=extinction,
+                                     altitude_deg=None if altitude_deg is None
+                                     else np.asarray(altitude_deg, dtype=float)[frames])
     fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=speed_km_s, response_nm=response_nm)
     if not fit or min(fit.group_coverage.values(), default=0.0) < 0.5:
         return None

@@ -386,14 +386,10 @@ def test_n2_system_is_tied_at_coarse_resolution(bright_fit):
     assert len([n for n in fit.parameters if n.startswith("n2_")]) == 2 * len(plasma.N2_BAND_HEADS_NM)
 
 
-def test_response_skew_of_blurred_lines_is_modelled(line_list):
-    # A camera records each line with the response R at the line's own wavelength; dividing
-    # the blurred spectrum by R at each bin (contract section 3) skews a 30 nm wide line
-    # where R changes across it. Independent render of exactly that (R rising linearly from
-    # 0.1 at 360 nm to 1 at 600 nm, flat beyond: the blue fall of a silicon sensor behind
-    # glass, common practice), 5 nm bins, S/N 300. With the response the fit must give the
-    # composition to the issue-5 target (0.03); the plain profile is worse (this was the
-    # largest bias on the simulated 21-40 nm FWHM cameras).
+def _coarse_scene(line_list):
+    """A 30 nm FWHM camera with 5 nm bins over 360-880 nm, a response rising from 0.1 at 360 nm to
+    1 at 600 nm (the blue fall of a silicon sensor behind glass, common practice), and the metal
+    lines of a 4600 K main and a 10 000 K hot component (their emergent line energies)."""
     lo, hi, fwhm, step = 360.0, 880.0, 30.0, 5.0
     wl = np.arange(lo, hi, step) + step / 2
     bw = np.full(wl.size, step)
@@ -408,6 +404,18 @@ def test_response_skew_of_blurred_lines_is_modelled(line_list):
         sel = metal.select(m)
         energy[m] = 1e4 * plasma.emergent_line_radiance(
             sel, t, {sp: COLUMNS[sp] for sp in set(sel.species.tolist())})
+    return fwhm, step, wl, bw, r_wl, r_val, metal, energy
+
+
+def test_response_skew_of_blurred_lines_is_modelled(line_list):
+    # A camera records each line with the response R at the line's own wavelength; dividing
+    # the blurred spectrum by R at each bin (contract section 3) skews a 30 nm wide line
+    # where R changes across it. Independent render of exactly that (R rising linearly from
+    # 0.1 at 360 nm to 1 at 600 nm, flat beyond: the blue fall of a silicon sensor behind
+    # glass, common practice), 5 nm bins, S/N 300. With the response the fit must give the
+    # composition to the issue-5 target (0.03); the plain profile is worse (this was the
+    # largest bias on the simulated 21-40 nm FWHM cameras).
+    fwhm, step, wl, bw, r_wl, r_val, metal, energy = _coarse_scene(line_list)
     recorded = energy * np.interp(metal.wavelength_nm, r_wl, r_val)
     flux = (_render(wl, bw, metal.wavelength_nm, recorded, fwhm, step_nm=0.05)
             / np.interp(wl, r_wl, r_val))
@@ -444,20 +452,7 @@ def test_transmission_of_each_frame_folds_into_one_curve(line_list):
     from meteorspec.extinction import ExtinctionModel, extinction_correction
     from meteorspec.extract import FrameSpectra
 
-    lo, hi, fwhm, step = 360.0, 880.0, 30.0, 5.0
-    wl = np.arange(lo, hi, step) + step / 2
-    bw = np.full(wl.size, step)
-    r_wl = np.array([300.0, 360.0, 600.0, 950.0])
-    r_val = np.array([0.1, 0.1, 1.0, 1.0])
-    index, component = plasma.select_model_lines(line_list, lo - 100, hi + 100)
-    metal = line_list.select(index[component != "air"])
-    hot = np.isin(metal.species, plasma.HOT_SPECIES)
-    energy = np.zeros(len(metal))
-    for is_hot, t in ((False, 4600.0), (True, 10000.0)):
-        m = hot == is_hot
-        sel = metal.select(m)
-        energy[m] = 1e4 * plasma.emergent_line_radiance(
-            sel, t, {sp: COLUMNS[sp] for sp in set(sel.species.tolist())})
+    fwhm, step, wl, bw, r_wl, r_val, metal, energy = _coarse_scene(line_list)
     ext = ExtinctionModel()
     altitude = np.array([35.0, 28.0, 22.0, 17.0, 13.0, 10.0])
     light = np.array([0.2, 0.5, 0.9, 1.0, 0.7, 0.3])

@@ -215,7 +215,8 @@ def _whole_flight_corrected(fs, station, geometry, track, *, extinction: bool = 
 
 
 def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fallback",
-              whole_spectrum_tilt: bool = True) -> dict:
+              whole_spectrum_tilt: bool = True, tilt_sigma_deg: float | None = None,
+              max_tilt_err_deg: float | None = None) -> dict:
     t0 = time.perf_counter()
     sim = simulate_event(spec, work / "events", truth_dir=work / "truth")
     event_dir = work / "events" / spec.event_id(spec.true_station().id)
@@ -256,7 +257,8 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
     t1 = time.perf_counter()
     sol = calibrate_event(stack, bg, track, geo, camera=station.camera, event=event.id,
                           whole_spectrum=whole_spectrum, response=station.response,
-                          whole_spectrum_tilt=whole_spectrum_tilt)
+                          whole_spectrum_tilt=whole_spectrum_tilt, whole_spectrum_tilt_sigma_deg=tilt_sigma_deg,
+                          **({} if max_tilt_err_deg is None else {"whole_spectrum_max_tilt_err_deg": max_tilt_err_deg}))
     t2 = time.perf_counter()
     out = {"event": event.id, "projection": station.lens.projection, "source": sol.source,
            "flags": list(sol.flags), "n_lines": sol.n_lines, "rms_nm": sol.rms_nm,
@@ -265,6 +267,13 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
     out["grooves_err_pct"] = 100 * (sol.values["grooves_per_mm"] / g_true["grooves_per_mm"] - 1)
     out["angle_err_deg"] = sol.values["dispersion_angle_deg"] - g_true["dispersion_angle_deg"]
     out["tilt_err_deg"] = sol.values["tilt_deg"] - g_true["tilt_deg"]
+    # the tilt as a vector (tilt_deg along tilt_azimuth_deg): a small tilt's azimuth matters too
+
+    def _tilt_vec(t, a):
+        return np.array([t * math.cos(math.radians(a)), t * math.sin(math.radians(a))])
+
+    out["tilt_vec_err_deg"] = float(np.hypot(*(_tilt_vec(sol.values["tilt_deg"], sol.values["tilt_azimuth_deg"])
+                                               - _tilt_vec(g_true["tilt_deg"], g_true["tilt_azimuth_deg"]))))
     # off-axis angle reached by the meteor
     u = geo.lens.pixel_to_direction(xt[lum], yt[lum])
     out["max_off_axis_deg"] = float(np.degrees(np.nanmax(np.arccos(np.clip(u[..., 2], -1, 1)))))
@@ -326,6 +335,12 @@ def main(argv=None) -> int:
                     help="calibrate_event's whole-spectrum fit: where the feature method falls back (default), "
                          "never, or instead of it")
     ap.add_argument("--hold-tilt", action="store_true", help="the whole-spectrum fit holds the station's tilt")
+    ap.add_argument("--tilt-sigma", type=float, default=None, metavar="DEG",
+                    help="1-sigma of the whole-spectrum fit's tilt prior about the station value "
+                         "(default: calibrate_event's)")
+    ap.add_argument("--max-tilt-err", type=float, default=None, metavar="DEG",
+                    help="the whole-spectrum fit frees the tilt only where it fixes it to this (1-sigma); "
+                         "'inf' always frees it (as before); default: calibrate_event's")
     ap.add_argument("--only", type=str, default=None, metavar="I,J,...",
                     help="run only these event indices of the set (development subsets)")
     ap.add_argument("--verbose", action="store_true", help="log the calibrator's whole-spectrum fit diagnostics")
@@ -344,7 +359,8 @@ def main(argv=None) -> int:
         for spec in specs:
             try:
                 row = run_event(spec, Path(tmp), truth_track=args.truth_track, whole_spectrum=args.whole_spectrum,
-                                whole_spectrum_tilt=not args.hold_tilt)
+                                whole_spectrum_tilt=not args.hold_tilt, tilt_sigma_deg=args.tilt_sigma,
+                                max_tilt_err_deg=args.max_tilt_err)
             except Exception as exc:
                 row = {"event": spec.event_id(spec.true_station().id), "error": f"{exc.__class__.__name__}: {exc}"}
             rows.append(row)

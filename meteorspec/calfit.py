@@ -290,6 +290,8 @@ class SpectrumFit:
     line_chi2 : float
         Drop of the chi-square of the spectra when the lines are added to the continuum
         alone: how much the line model explains (its square root is the significance).
+    tilt_err_deg : float
+        Larger 1-sigma of the two tilt components (prior included; NaN when the tilt was held).
     """
 
     geometry: SpectralGeometry
@@ -300,6 +302,7 @@ class SpectrumFit:
     success: bool
     n_components: int = 0
     line_chi2: float = 0.0
+    tilt_err_deg: float = math.nan
 
     def __bool__(self) -> bool:
         return self.success
@@ -313,7 +316,8 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
                           prior: SpectralGeometry | None = None, fit_tilt: bool = True, order: int = 1,
                           wl_range_nm: tuple[float, float] = (370.0, 890.0), rounds: int = 2,
                           reference: SpectralGeometry | None = None, max_nfev: int = 60,
-                          response: Callable[[NDArray], NDArray] | None = None) -> SpectrumFit:
+                          response: Callable[[NDArray], NDArray] | None = None,
+                          tilt_sigma_deg: float | None = None) -> SpectrumFit:
     """Fit groove density, dispersion angle and tilt to the frames' whole spectra.
 
     Parameters
@@ -339,6 +343,9 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
     response : callable, optional
         Station response (relative, of wavelength in nm); the line weights are multiplied
         by it. Without it the blends' shapes assume a flat response.
+    tilt_sigma_deg : float, optional
+        1-sigma of the prior on each tilt component about the prior's (default
+        ``calibrate._PRIOR_SIGMA["tilt_deg"]``).
 
     Returns
     -------
@@ -347,8 +354,13 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
     """
     prior = start if prior is None else prior
     pp = _pack(prior, False)
-    ps = np.array([pp[0] * _PRIOR_SIGMA["grooves_frac"], _PRIOR_SIGMA["dispersion_angle_deg"],
-                   _PRIOR_SIGMA["tilt_deg"], _PRIOR_SIGMA["tilt_deg"]])
+    ts = _PRIOR_SIGMA["tilt_deg"] if tilt_sigma_deg is None else float(tilt_sigma_deg)
+    if not ts > 0:
+        raise ValueError(f"tilt_sigma_deg must be > 0, got {tilt_sigma_deg!r}")
+    ps = np.array([pp[0] * _PRIOR_SIGMA["grooves_frac"], _PRIOR_SIGMA["dispersion_angle_deg"], ts, ts])
+    # step scales of the optimiser: independent of the prior's width
+    xs = np.array([pp[0] * _PRIOR_SIGMA["grooves_frac"], _PRIOR_SIGMA["dispersion_angle_deg"],
+                   _PRIOR_SIGMA["tilt_deg"], _PRIOR_SIGMA["tilt_deg"]]) * 0.02
     p = _pack(start, False)
     if not fit_tilt:
         p[2:4] = pp[2:4]
@@ -370,7 +382,7 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
             r = _model.residuals(_unpack(full, start, False))
             return np.concatenate([r, (full[free] - pp[free]) / ps[free]])
 
-        res = optimize.least_squares(fun, p[free], x_scale=ps[free] * 0.02, diff_step=1e-5, loss="soft_l1",
+        res = optimize.least_squares(fun, p[free], x_scale=xs[free], diff_step=1e-5, loss="soft_l1",
                                      f_scale=3.0, max_nfev=max_nfev)
         p[free] = res.x
         geo = _unpack(p, start, False)
@@ -381,17 +393,20 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
     n_data = int(np.count_nonzero(r))
     chi2 = float(np.sum(r**2))
     errors = {"grooves_per_mm": math.nan, "dispersion_angle_deg": math.nan}
+    tilt_err = math.nan
     try:
         jac = res.jac
         cov = np.linalg.inv(jac.T @ jac) * max(1.0, chi2 / max(n_data - jac.shape[1], 1))
         err = np.sqrt(np.clip(np.diag(cov), 0, None))
         errors = {"grooves_per_mm": float(err[0]), "dispersion_angle_deg": float(err[1])}
+        if fit_tilt:
+            tilt_err = float(max(err[2], err[3]))
     except np.linalg.LinAlgError:
         pass
     # status 0 (evaluation budget used up) still returns the best point found
     ok = bool(res.status >= 0) and bool(np.all(np.isfinite(p)))
     return SpectrumFit(geo, chi2, n_data, errors, len(model.data), ok, int(np.count_nonzero(coefs[0] > 0)),
-                       line_chi2)
+                       line_chi2, tilt_err)
 
 
 def spectrum_chi2(cuts: list[_FrameCut], reference: SpectralGeometry, geometries: list[SpectralGeometry], *,

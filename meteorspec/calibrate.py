@@ -55,11 +55,15 @@ Steps of :func:`calibrate_event`
    first-order spectrum along its curve from the NIST lines of each species (free
    non-negative intensities shared by all frames), the N2 bands and a per-frame continuum,
    and fits groove density, dispersion angle and tilt to all frames at once, from the best
-   three stretches of step 3. A solution is kept only if the line model explains the light
+   three stretches of step 3 (the tilt is held at the station's where the spectra fix it
+   worse than 0.36 deg). A solution is kept only if the line model explains the light
    (chi-square drop over a continuum alone), no other start reaches a different solution
    with a similar chi-square on the same pixels, and fits to each half of the track agree
    with it (``max_halves_nm``); else ``calibration_ambiguous``. Flag of kept solutions:
-   ``calibration_whole_spectrum``.
+   ``calibration_whole_spectrum``. Such a solution measures no single line; for the night
+   fit (:func:`calibrate_night`) it states where its geometry puts a few wavelengths in a few
+   frame bins (:func:`model_measurements`, species ``"model <nm>"``), with errors from the
+   agreement of the halves of the track, inflated so that one event weighs like four numbers.
 
 Too few features (``min_lines``) or a poor fit -> the station geometry, flagged
 ``calibration_from_station``.
@@ -105,6 +109,7 @@ __all__ = [
     "feature_centroids",
     "fit_geometry",
     "measure_lines",
+    "model_measurements",
     "station_solution",
     "write_refined_station",
 ]
@@ -131,6 +136,15 @@ _TEMPLATE_WEIGHT = {
 # issue, so that the data decide; it only keeps poorly constrained terms finite).
 _PRIOR_SIGMA = {"grooves_frac": 0.06, "dispersion_angle_deg": 8.0, "tilt_deg": 3.0,
                 "focal_frac": 0.05, "k1": 0.1}
+#: The whole-spectrum fit frees the tilt only where the spectra fix it to this (1-sigma of
+#: either component, deg, from the free fit's covariance); else it is held at the station's.
+#: Set on the seeded bench (``bench_calibration.py --truth-track``, seeds 4 and 5), midway in
+#: the gap between two groups: on the all-sky QM02 lens (600 grooves/mm) the free fits gave
+#: 0.12-0.19 deg (one 0.31) and freeing was right (held: line max 0.9 -> 2.8 nm; held at 0.31
+#: deg: accepted 1.7 nm off instead of flagged ambiguous); on the narrow 300 grooves/mm QM04
+#: camera 0.42-0.96 deg, where a free tilt ran 2.6-4.7 deg off and dragged the groove density
+#: (up to -1.2 %; held: three of four events met all four figures instead of one).
+_MAX_TILT_ERR_DEG = 0.36
 
 
 # --------------------------------------------------------------------------- templates
@@ -1254,7 +1268,8 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
                     min_snr_window: float | None = 4.0, windows_tilt_max_nm_per_px: float = 3.5,
                     whole_spectrum: str = "fallback", response: ResponseCurve | None = None,
                     max_halves_nm: float = 1.5, whole_spectrum_tilt: bool = True,
-                    whole_spectrum_min_nm_per_px: float = 3.5, event: str = "") -> WavelengthSolution:
+                    whole_spectrum_min_nm_per_px: float = 3.5, whole_spectrum_tilt_sigma_deg: float | None = None,
+                    whole_spectrum_max_tilt_err_deg: float = _MAX_TILT_ERR_DEG, event: str = "") -> WavelengthSolution:
     """Refine the spectral geometry of one event from its own lines.
 
     Parameters
@@ -1338,6 +1353,16 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
         Whether the whole-spectrum fit frees the tilt (else held at the station's). Freed: on
         ``bench_calibration.py --n 30 --seed 4 --truth-track`` two binned events (6.9 and
         8.9 nm/px) refined with a free tilt and were flagged ambiguous with the station's.
+        Freed only where the spectra fix it (``whole_spectrum_max_tilt_err_deg``); else held.
+    whole_spectrum_max_tilt_err_deg : float
+        Largest 1-sigma of a tilt component of the free-tilt whole-spectrum fit for which the
+        tilt stays free; above it the fit is redone with the station's tilt (``inf``: always
+        free). Default ``_MAX_TILT_ERR_DEG`` (see there for how it was set).
+    whole_spectrum_tilt_sigma_deg : float, optional
+        1-sigma of the whole-spectrum fit's prior on each tilt component about the station's
+        (default ``_PRIOR_SIGMA["tilt_deg"]``, 3 deg; with 1 deg no more events met all four
+        figures on ``bench_calibration.py --n 20 --seed 5 --truth-track`` events 0, 3, 5, 11, 12,
+        14, 15, 16).
     whole_spectrum_min_nm_per_px : float
         With ``"fallback"`` the whole-spectrum fit runs only above this dispersion (at 589 nm,
         mid-track, station geometry). 3.5 nm/px: on the same bench, of the four events at
@@ -1395,7 +1420,9 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
         raise ValueError(f"frames are {cuts[0].residual.shape[1]} px wide, camera says {camera.width}")
     new, flag = _whole_spectrum_solution(cuts, station_geometry, psf_px=psf, order=order, response=response,
                                          angle_range_deg=angle_range_deg, grooves_range_frac=grooves_range_frac,
-                                         max_halves_nm=max_halves_nm, fit_tilt=whole_spectrum_tilt)
+                                         max_halves_nm=max_halves_nm, fit_tilt=whole_spectrum_tilt,
+                                         tilt_sigma_deg=whole_spectrum_tilt_sigma_deg, event=event,
+                                         max_tilt_err_deg=whole_spectrum_max_tilt_err_deg)
     if new is not None:
         return new
     if sol is None:
@@ -1418,7 +1445,8 @@ _log = logging.getLogger(__name__)
 def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGeometry, *, psf_px: float,
                              order: int, response: ResponseCurve | None, angle_range_deg: float,
                              grooves_range_frac: float, max_halves_nm: float, fit_tilt: bool = True,
-                             n_starts: int = 3) -> tuple[WavelengthSolution | None, str]:
+                             n_starts: int = 3, tilt_sigma_deg: float | None = None, event: str = "",
+                             max_tilt_err_deg: float = math.inf) -> tuple[WavelengthSolution | None, str]:
     """The whole-spectrum fit (:mod:`meteorspec.calfit`) from the coarse search, validated."""
     from .calfit import fit_spectrum_geometry, spectrum_chi2, wavelength_disagreement_nm
 
@@ -1429,18 +1457,28 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
     cands = _search_grooves(geo, cuts, range_frac=grooves_range_frac, psf_px=psf_px, order=order)[:n_starts]
     fit_tilt = fit_tilt and len(cuts) >= 3
     fits = [fit_spectrum_geometry(cuts, c, psf_px=psf_px, prior=station_geometry, fit_tilt=fit_tilt, order=order,
-                                  rounds=1, max_nfev=30, response=response) for c in cands]
+                                  rounds=1, max_nfev=30, response=response, tilt_sigma_deg=tilt_sigma_deg)
+            for c in cands]
     fits = [f for f in fits if f]
     if not fits:
         return None, "calibration_fit_poor"
     fits.sort(key=lambda f: f.chi2)
     best = fit_spectrum_geometry(cuts, fits[0].geometry, psf_px=psf_px, prior=station_geometry,
-                                 fit_tilt=fit_tilt, order=order, rounds=2, max_nfev=40, response=response)
+                                 fit_tilt=fit_tilt, order=order, rounds=2, max_nfev=40, response=response,
+                                 tilt_sigma_deg=tilt_sigma_deg)
     if not best:
         return None, "calibration_fit_poor"
+    if fit_tilt and not best.tilt_err_deg <= max_tilt_err_deg:
+        # the spectra hardly see the tilt: freed it absorbs model mismatch and drags the stretch
+        _log.debug("whole-spectrum fit: tilt error %.2f deg: tilt held at the station's", best.tilt_err_deg)
+        return _whole_spectrum_solution(cuts, station_geometry, psf_px=psf_px, order=order, response=response,
+                                        angle_range_deg=angle_range_deg, grooves_range_frac=grooves_range_frac,
+                                        max_halves_nm=max_halves_nm, fit_tilt=False, n_starts=n_starts,
+                                        tilt_sigma_deg=tilt_sigma_deg, event=event)
     scale = max(1.0, best.reduced_chi2)
-    _log.debug("whole-spectrum fit: chi2/n %.3f n %d line_chi2 %.0f errors %s; starts chi2 %s", best.reduced_chi2,
-               best.n_data, best.line_chi2, best.errors, [round(f.chi2 - best.chi2, 1) for f in fits])
+    _log.debug("whole-spectrum fit: chi2/n %.3f n %d line_chi2 %.0f errors %s tilt err %.3f; starts chi2 %s",
+               best.reduced_chi2, best.n_data, best.line_chi2, best.errors, best.tilt_err_deg,
+               [round(f.chi2 - best.chi2, 1) for f in fits])
     if not best.line_chi2 > _MIN_LINE_CHI2 * scale:
         return None, "calibration_few_lines"
     # the other starts' solutions, judged on the same pixels as the best (its curves)
@@ -1468,11 +1506,74 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
     values = geometry_values(best.geometry)
     errors = {k: math.nan for k in values}
     errors.update(best.errors)
+    rms = float(np.sqrt(np.mean(np.square(diffs)))) if diffs else math.nan
     return WavelengthSolution(
-        geometry=best.geometry, source="event", values=values, errors=errors,
-        rms_nm=float(np.sqrt(np.mean(np.square(diffs)))) if diffs else math.nan,
+        geometry=best.geometry, source="event", values=values, errors=errors, rms_nm=rms,
         n_lines=int(best.n_components), n_frames_used=int(best.n_frames), residuals=ResidualTable.empty(),
-        flags=("calibration_whole_spectrum",), measurements=LineMeasurements.empty()), ""
+        flags=("calibration_whole_spectrum",),
+        measurements=model_measurements(cuts, best.geometry, rms_nm=rms, angle_err_deg=errors["dispersion_angle_deg"],
+                                        order=order, event=event)), ""
+
+
+#: Wavelengths (nm) at which a whole-spectrum solution states positions for a night fit: spread
+#: over 390-850 nm (the issue's range) where meteor spectra carry light.
+MODEL_POINTS_NM = (400.0, 470.0, 540.0, 610.0, 680.0, 750.0, 820.0)
+#: Floor of their error along the spectrum (px): whole-spectrum solutions on the seeded bench
+#: miss by a median ~0.5 nm at ~10 nm/px (``bench_calibration.py --n 20 --seed 5``), 0.05 px.
+_MODEL_FLOOR_PX = 0.05
+#: Independent quantities one event's solution carries (groove density, angle, two tilt
+#: components): the errors of its stated positions are inflated so that together they weigh
+#: like that many measurements, since they all come from the same four numbers.
+_MODEL_DOF = 4
+
+
+def model_measurements(cuts: list[_FrameCut], geometry: SpectralGeometry, *, rms_nm: float, angle_err_deg: float,
+                       order: int = 1, event: str = "", n_bins: int = 4,
+                       wl_nm: Sequence[float] = MODEL_POINTS_NM) -> LineMeasurements:
+    """Positions a whole-spectrum solution gives to :data:`MODEL_POINTS_NM`, as line measurements.
+
+    A whole-spectrum fit measures no single line; for :func:`calibrate_night` it states where
+    its geometry puts a few wavelengths in a few frame bins along the track (species
+    ``"model <nm>"``). Errors: along the spectrum the solution's ``rms_nm`` (the disagreement
+    of the halves of the track) over the dispersion with a floor of ``_MODEL_FLOOR_PX``; across
+    it the angle error times the distance from the zeroth order (floor the same); both
+    inflated by ``sqrt(n_rows / _MODEL_DOF)`` because the rows are not independent.
+
+    Returns
+    -------
+    LineMeasurements
+        Empty when the geometry places none of the wavelengths on the frames.
+    """
+    rows: list[dict[str, Any]] = []
+    wl = np.asarray(wl_nm, float)
+    along_nm = rms_nm if np.isfinite(rms_nm) else 0.0
+    ang = math.radians(angle_err_deg) if np.isfinite(angle_err_deg) else 0.0
+    for group in _frame_bins(cuts, n_bins):
+        c = group[len(group) // 2]
+        xs, ys = geometry.spectrum_pixel(c.x0_px, c.y0_px, wl, order)
+        tx, ty = geometry.direction(c.x0_px, c.y0_px, wl, order)
+        disp = np.asarray(geometry.dispersion_nm_per_px(c.x0_px, c.y0_px, wl, order), float)
+        h, w = c.residual.shape
+        for j in range(wl.size):
+            vals = [float(np.asarray(v).reshape(-1)[j]) if np.ndim(v) else float(v) for v in (xs, ys, tx, ty)]
+            d = float(disp.reshape(-1)[j]) if disp.ndim else float(disp)
+            if not (np.all(np.isfinite(vals)) and np.isfinite(d) and d > 0):
+                continue
+            x, y = vals[0], vals[1]
+            if not (0 <= x <= w - 1 and c.y_start_px <= y <= c.y_start_px + (h - 1) * c.y_step_px):
+                continue
+            r_px = math.hypot(x - c.x0_px, y - c.y0_px)
+            rows.append(dict(event=event, frame=c.position, x0_px=c.x0_px, y0_px=c.y0_px, x_px=x, y_px=y,
+                             lab_nm=float(wl[j]), species=f"model {wl[j]:.0f}", tangent_x=vals[2], tangent_y=vals[3],
+                             sigma_along_px=math.hypot(along_nm / d, _MODEL_FLOOR_PX),
+                             sigma_cross_px=math.hypot(ang * r_px, _MODEL_FLOOR_PX)))
+    if not rows:
+        return LineMeasurements.empty()
+    inflate = math.sqrt(max(1.0, len(rows) / _MODEL_DOF))
+    for r in rows:
+        r["sigma_along_px"] *= inflate
+        r["sigma_cross_px"] *= inflate
+    return LineMeasurements(**{k: np.array([r[k] for r in rows]) for k in rows[0]})
 
 
 def _calibrate_features(frames: Sequence, background: Any, track: Any, station_geometry: SpectralGeometry, *,

@@ -19,7 +19,7 @@ from scipy import ndimage
 from meteorspec import atomic
 from meteorspec.calfit import (_Model, _prepare, fit_spectrum_geometry, spectrum_chi2, spectrum_components,
                                wavelength_disagreement_nm)
-from meteorspec.calibrate import _cuts, calibrate_event
+from meteorspec.calibrate import _cuts, calibrate_event, fit_geometry
 from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
 
 # a binned wide-field camera with a coarse grating: ~7.5 nm/px at 589 nm (the regime where the
@@ -199,6 +199,19 @@ def test_calibrate_event_uses_the_whole_spectrum_where_features_blend():
     err = _line_errors(sol.geometry, COARSE, x0, y0)
     assert np.median(err) < 1.0 and err.max() < 2.0
     assert sol.n_lines >= 3 and np.isfinite(sol.rms_nm) and sol.rms_nm < 1.5
+    # the solution states positions for a night fit (calibrate_night): wavelengths along its own
+    # curves in frame bins; refitted from the station values they give back the solution's
+    # geometry (0.02 %, 0.02 deg, 0.05 nm: the optimiser's tolerance on exact points, far below
+    # the stated errors) -- a consistency check of the rows, the physics is checked above
+    m = sol.measurements
+    assert len(m) >= 8 and set(m.event) == {""}
+    assert np.all(np.char.startswith(m.species.astype(str), "model "))
+    assert np.all(np.isfinite(m.sigma_along_px) & (m.sigma_along_px > 0))
+    refit = fit_geometry(m, station, prior=station)
+    assert refit
+    assert abs(refit.values["grooves_per_mm"] / sol.values["grooves_per_mm"] - 1) < 2e-4
+    assert abs(refit.values["dispersion_angle_deg"] - sol.values["dispersion_angle_deg"]) < 0.02
+    assert _line_errors(refit.geometry, sol.geometry, x0, y0).max() < 0.05
     with pytest.raises(ValueError, match="whole_spectrum"):
         calibrate_event(frames, _FlatBackground(1.0), track, station, whole_spectrum="sometimes")
 
@@ -212,3 +225,26 @@ def test_noise_only_keeps_the_station_values():
     sol0 = calibrate_event(blank, _FlatBackground(1.0), track0, station, response=_response)
     assert sol0.source == "station" and "calibration_unresolved" in sol0.flags
     assert sol0.values["grooves_per_mm"] == 206.0
+
+
+def test_tilt_held_where_the_spectra_do_not_fix_it():
+    # the rule of calibrate_event: a free tilt whose 1-sigma exceeds whole_spectrum_max_tilt_err_deg
+    # is held at the station's and the fit redone (a threshold of 0 forces that path); the
+    # station's tilt (here the true one) is then kept exactly while groove density and angle,
+    # 2 % and 2 deg off, are refined to issue 4's 0.3 % and 0.3 deg; the lines to 1.0 nm median
+    # and 2.0 nm max as in the test above (measured 0.56 nm median: even with the true tilt the
+    # mismatch between this test's spectrum and the model's moves the stretch)
+    x0, y0 = np.linspace(40.0, 500.0, 10), np.linspace(420.0, 60.0, 10)
+    frames, track = _render(COARSE, x0, y0, seed=3)
+    g = COARSE.grating
+    station = COARSE.with_grating(grooves_per_mm=g.grooves_per_mm * 0.98,
+                                  dispersion_angle_deg=g.dispersion_angle_deg + 2.0)
+    held = calibrate_event(frames, _FlatBackground(1.0), track, station, response=_response,
+                           whole_spectrum_max_tilt_err_deg=0.0)
+    assert held.source == "event" and "calibration_whole_spectrum" in held.flags, held.flags
+    assert held.values["tilt_deg"] == pytest.approx(g.tilt_deg, abs=1e-9)
+    assert held.values["tilt_azimuth_deg"] == pytest.approx(g.tilt_azimuth_deg, abs=1e-6)
+    assert abs(held.values["grooves_per_mm"] / 200.0 - 1) < 0.003
+    assert abs(held.values["dispersion_angle_deg"] - 4.0) < 0.3
+    err = _line_errors(held.geometry, COARSE, x0, y0)
+    assert np.median(err) < 1.0 and err.max() < 2.0

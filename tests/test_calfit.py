@@ -9,7 +9,6 @@ weights come from the NIST line list (meteorspec.atomic).
 """
 
 import math
-from dataclasses import dataclass
 from types import SimpleNamespace
 
 import numpy as np
@@ -21,34 +20,13 @@ from meteorspec.calfit import (_Model, _prepare, fit_spectrum_geometry, spectrum
                                wavelength_disagreement_nm)
 from meteorspec.calibrate import _cuts, calibrate_event, fit_geometry
 from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
+from test_calibrate import _FlatBackground, _Frame
 
 # a binned wide-field camera with a coarse grating: ~7.5 nm/px at 589 nm (the regime where the
 # feature method falls back, flag calibration_unresolved)
 COARSE = SpectralGeometry(LensModel("rectilinear", 575.0, 320.1, 238.9, 0.0),
                           GratingModel(200.0, 4.0, 1.0, 30.0))
 SHAPE = (480, 640)
-
-
-@dataclass(frozen=True, eq=False)
-class _Frame:
-    index: int
-    signal: np.ndarray
-    saturated: np.ndarray
-    y_start_px: int = 0
-    y_step_px: int = 1
-
-
-class _FlatBackground:
-    """Zero sky, Gaussian read noise: residual = signal."""
-
-    def __init__(self, sigma):
-        self.sigma = sigma
-
-    def residual(self, frame):
-        return frame.signal.astype(np.float32)
-
-    def variance(self, frame, residual=None):
-        return np.full(frame.signal.shape, self.sigma**2, np.float32)
 
 
 def _response(wl):

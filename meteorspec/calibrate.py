@@ -1411,13 +1411,8 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
             disp = float(station_geometry.dispersion_nm_per_px(x[k], y[k], 589.0, order))
             if not (np.isfinite(disp) and disp > whole_spectrum_min_nm_per_px):
                 return sol
-    psf = psf_sigma_px
-    if psf is None:
-        psf = float(getattr(track, "psf_sigma_px", math.nan))
-        psf = psf if np.isfinite(psf) and psf > 0 else 1.5
-    cuts = _cuts(frames, background, track, max_frames=max_frames)
-    if camera is not None and cuts and cuts[0].residual.shape[1] != camera.width:
-        raise ValueError(f"frames are {cuts[0].residual.shape[1]} px wide, camera says {camera.width}")
+    psf, cuts = _psf_and_cuts(frames, background, track, psf_sigma_px=psf_sigma_px, max_frames=max_frames,
+                              camera=camera)
     new, flag = _whole_spectrum_solution(cuts, station_geometry, psf_px=psf, order=order, response=response,
                                          angle_range_deg=angle_range_deg, grooves_range_frac=grooves_range_frac,
                                          max_halves_nm=max_halves_nm, fit_tilt=whole_spectrum_tilt,
@@ -1576,13 +1571,15 @@ def model_measurements(cuts: list[_FrameCut], geometry: SpectralGeometry, *, rms
     return LineMeasurements(**{k: np.array([r[k] for r in rows]) for k in rows[0]})
 
 
-def _calibrate_features(frames: Sequence, background: Any, track: Any, station_geometry: SpectralGeometry, *,
-                        camera: Camera | None, fit_lens: bool, order: int, min_lines: int, max_frames: int,
-                        n_bins: int, angle_range_deg: float, tilt_range_deg: float, grooves_range_frac: float,
-                        max_rms_nm: float, psf_sigma_px: float | None, max_dispersion_nm_per_px: float | None,
-                        min_lines_tilt: int, method: str, window_px: float, min_snr_window: float | None,
-                        windows_tilt_max_nm_per_px: float, event: str) -> WavelengthSolution:
-    """The feature and blend-window method of :func:`calibrate_event` (module notes, steps 1-5)."""
+def _psf_and_cuts(frames: Sequence, background: Any, track: Any, *, psf_sigma_px: float | None, max_frames: int,
+                  camera: Camera | None) -> tuple[float, list[_FrameCut]]:
+    """The PSF sigma to use (given, else the track's, else 1.5 px) and the frames' cuts.
+
+    Raises
+    ------
+    ValueError
+        The frames are not as wide as the camera says.
+    """
     psf = psf_sigma_px
     if psf is None:
         psf = float(getattr(track, "psf_sigma_px", math.nan))
@@ -1590,6 +1587,18 @@ def _calibrate_features(frames: Sequence, background: Any, track: Any, station_g
     cuts = _cuts(frames, background, track, max_frames=max_frames)
     if camera is not None and cuts and cuts[0].residual.shape[1] != camera.width:
         raise ValueError(f"frames are {cuts[0].residual.shape[1]} px wide, camera says {camera.width}")
+    return psf, cuts
+
+
+def _calibrate_features(frames: Sequence, background: Any, track: Any, station_geometry: SpectralGeometry, *,
+                        camera: Camera | None, fit_lens: bool, order: int, min_lines: int, max_frames: int,
+                        n_bins: int, angle_range_deg: float, tilt_range_deg: float, grooves_range_frac: float,
+                        max_rms_nm: float, psf_sigma_px: float | None, max_dispersion_nm_per_px: float | None,
+                        min_lines_tilt: int, method: str, window_px: float, min_snr_window: float | None,
+                        windows_tilt_max_nm_per_px: float, event: str) -> WavelengthSolution:
+    """The feature and blend-window method of :func:`calibrate_event` (module notes, steps 1-5)."""
+    psf, cuts = _psf_and_cuts(frames, background, track, psf_sigma_px=psf_sigma_px, max_frames=max_frames,
+                              camera=camera)
     if not cuts:
         return station_solution(station_geometry, flags=("calibration_few_lines",))
     mid = cuts[len(cuts) // 2]

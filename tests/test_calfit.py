@@ -20,7 +20,7 @@ from meteorspec.calfit import (_Model, _prepare, fit_spectrum_geometry, spectrum
                                wavelength_disagreement_nm)
 from meteorspec.calibrate import _cuts, calibrate_event, fit_geometry
 from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
-from test_calibrate import _FlatBackground, _Frame
+from test_calibrate import _FlatBackground, _Frame, _render_event
 
 # a binned wide-field camera with a coarse grating: ~7.5 nm/px at 589 nm (the regime where the
 # feature method falls back, flag calibration_unresolved)
@@ -50,28 +50,10 @@ def _emission(wl_grid):
 
 
 def _render(geo, x0, y0, *, peak=300.0, noise=1.0, seed=0, psf=1.2):
-    rng = np.random.default_rng(seed)
-    wl = np.arange(360.0, 900.0, 0.1)
-    spec = _emission(wl)
-    frames = []
-    for k, (x, y) in enumerate(zip(x0, y0)):
-        xs, ys = geo.spectrum_pixel(x, y, wl)
-        ok = np.isfinite(xs) & (xs > 0) & (xs < SHAPE[1] - 1) & (ys > 0) & (ys < SHAPE[0] - 1)
-        img, _, _ = np.histogram2d(ys[ok], xs[ok], bins=SHAPE, range=[[-0.5, SHAPE[0] - 0.5], [-0.5, SHAPE[1] - 0.5]],
-                                   weights=spec[ok])
-        img = ndimage.gaussian_filter(img, psf) * peak / max(img.max(), 1e-30)
-        img += rng.normal(0, noise, SHAPE)
-        frames.append(_Frame(k, img.astype(np.float32), np.zeros(SHAPE, bool)))
-    t = (np.arange(len(x0)) + 0.5) / 25.0
-    xa, ya = np.asarray(x0, float), np.asarray(y0, float)
-
-    def position(time_s):
-        return np.interp(time_s, t, xa), np.interp(time_s, t, ya)
-
-    # exposures short against the frame interval: no motion smear (as rendered)
-    track = SimpleNamespace(x_px=xa, y_px=ya, psf_sigma_px=psf, flux_adu=np.ones(len(x0)), time_s=t,
-                            exposure_s=1e-3, position=position)
-    return frames, track
+    # the line-list emission on a 0.1 nm grid, the brightest pixel at ``peak``; exposures short
+    # against the frame interval: no motion smear (as rendered)
+    return _render_event(geo, x0, y0, shape=SHAPE, peak=peak, noise=noise, seed=seed, psf=psf, emission=_emission,
+                         step_nm=0.1, peak_of_image=True)
 
 
 def _track(n):

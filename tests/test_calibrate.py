@@ -119,18 +119,20 @@ class _FlatBackground:
         return np.full(frame.signal.shape, self.sigma**2, np.float32)
 
 
-def _render_event(geo, x0, y0, *, shape=(480, 640), peak=400.0, noise=1.0, seed=0, psf=1.3):
-    """Frames holding the first-order meteor template spectrum at every zeroth order."""
+def _render_event(geo, x0, y0, *, shape=(480, 640), peak=400.0, noise=1.0, seed=0, psf=1.3, emission=None,
+                  step_nm=0.25, peak_of_image=False):
+    """Frames holding a first-order spectrum at every zeroth order: ``emission(wl)`` (default the
+    meteor template) scaled so that its maximum (or, with ``peak_of_image``, the image's) is ``peak``."""
     rng = np.random.default_rng(seed)
-    wl = np.arange(360.0, 900.0, 0.25)
-    spec = meteor_template(wl, 0.3)
+    wl = np.arange(360.0, 900.0, step_nm)
+    spec = meteor_template(wl, 0.3) if emission is None else emission(wl)
     frames = []
     for k, (x, y) in enumerate(zip(x0, y0)):
         xs, ys = geo.spectrum_pixel(x, y, wl)
         ok = np.isfinite(xs) & (xs > 0) & (xs < shape[1] - 1) & (ys > 0) & (ys < shape[0] - 1)
         img, _, _ = np.histogram2d(ys[ok], xs[ok], bins=shape, range=[[-0.5, shape[0] - 0.5], [-0.5, shape[1] - 0.5]],
                                    weights=spec[ok])
-        img = ndimage.gaussian_filter(img, psf) * peak / max(spec.max(), 1e-30)
+        img = ndimage.gaussian_filter(img, psf) * peak / max(img.max() if peak_of_image else spec.max(), 1e-30)
         img += rng.normal(0, noise, shape)
         frames.append(_Frame(k, img.astype(np.float32), np.zeros(shape, bool)))
     # the frames are rendered without motion smear: a track whose exposures are short against

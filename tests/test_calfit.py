@@ -13,14 +13,13 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
-from scipy import ndimage
 
 from meteorspec import atomic
 from meteorspec.calfit import (_Model, _prepare, fit_spectrum_geometry, spectrum_chi2, spectrum_components,
                                wavelength_disagreement_nm)
 from meteorspec.calibrate import _cuts, calibrate_event, fit_geometry
 from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
-from test_calibrate import _FlatBackground, _Frame, _render_event
+from test_calibrate import _FlatBackground, _render_event
 
 # a binned wide-field camera with a coarse grating: ~7.5 nm/px at 589 nm (the regime where the
 # feature method falls back, flag calibration_unresolved)

@@ -501,24 +501,34 @@ def _clipped_stats(data: list[np.ndarray], clip_sigma: float, *, read_noise_adu:
     rows, width = data[0].shape
     med = np.empty((rows, width), np.float32)
     sig = np.empty((rows, width), np.float32)
-    q1, q3 = (n - 1) * 0.25, (n - 1) * 0.75
-    for r0 in range(0, rows, block_rows):
-        d = np.sort(np.stack([a[r0:r0 + block_rows] for a in data]), axis=0)
-        med[r0:r0 + block_rows] = _order_stat(d, (n - 1) * 0.5)
-        sig[r0:r0 + block_rows] = (_order_stat(d, q3) - _order_stat(d, q1)) * np.float32(1.0 / 1.349)
-    lim_all = clip_sigma * np.maximum(sig, _clip_floor(med, sig, n, read_noise_adu=read_noise_adu,
-                                                       gain_e_per_adu=gain_e_per_adu))
     mean = np.empty((rows, width), np.float32)
     var = np.empty((rows, width), np.float32)
-    for r0 in range(0, rows, block_rows):
-        # the mean and variance of the kept samples do not need them in order
-        d = np.stack([a[r0:r0 + block_rows] for a in data])
-        keep = np.abs(d - med[r0:r0 + block_rows]) <= lim_all[r0:r0 + block_rows]
+    q1, q3 = (n - 1) * 0.25, (n - 1) * 0.75
+    # with the camera's noise model the floor is per pixel: one pass; otherwise the floor pools
+    # the whole frame's interquartile sigma, known only after a first pass
+    per_pixel = read_noise_adu is not None and gain_e_per_adu is not None and gain_e_per_adu > 0
+
+    def clipped(d: np.ndarray, m0: np.ndarray, lim: np.ndarray, r0: int) -> None:
+        keep = np.abs(d - m0) <= lim
         cnt = np.maximum(keep.sum(axis=0), 1).astype(np.float32)
         m = np.where(keep, d, np.float32(0.0)).sum(axis=0) / cnt
         dev = np.where(keep, d - m, np.float32(0.0))
         mean[r0:r0 + block_rows] = m
         var[r0:r0 + block_rows] = (dev * dev).sum(axis=0) / np.maximum(cnt - 1, 1)
+
+    for r0 in range(0, rows, block_rows):
+        d = np.sort(np.stack([a[r0:r0 + block_rows] for a in data]), axis=0)
+        m0 = med[r0:r0 + block_rows] = _order_stat(d, (n - 1) * 0.5)
+        s0 = sig[r0:r0 + block_rows] = (_order_stat(d, q3) - _order_stat(d, q1)) * np.float32(1.0 / 1.349)
+        if per_pixel:  # the mean and variance of the kept samples do not need them in order
+            clipped(d, m0, clip_sigma * np.maximum(s0, _clip_floor(m0, s0, n, read_noise_adu=read_noise_adu,
+                                                                   gain_e_per_adu=gain_e_per_adu)), r0)
+    if not per_pixel:
+        lim_all = clip_sigma * np.maximum(sig, _clip_floor(med, sig, n, read_noise_adu=read_noise_adu,
+                                                           gain_e_per_adu=gain_e_per_adu))
+        for r0 in range(0, rows, block_rows):
+            clipped(np.stack([a[r0:r0 + block_rows] for a in data]), med[r0:r0 + block_rows],
+                    lim_all[r0:r0 + block_rows], r0)
     return mean, var
 
 

@@ -185,11 +185,14 @@ def _window_energy(spec, lo: float, hi: float) -> float:
     return float(np.sum(f[sel] * spec.bin_width_nm[sel]))
 
 
-def _expected_window_energy(spec, r, spec_out, lo: float, hi: float, x0: float, y0: float) -> float:
-    """The same window of the spectrum expected from the truth (emitted first-order energy, LSF-spread)."""
+def _expected_window_energy(spec, r, spec_out, lo: float, hi: float, x0: float, y0: float, *,
+                            weight=None) -> float:
+    """The same window of the spectrum expected from the truth (emitted first-order energy, LSF-spread);
+    each emission component optionally times ``weight`` (e.g. the response or a transmission)."""
     m = r.emission
     total = sum(t.emitted_energy_adu for t in r.truths)
-    emitted = FIRST_ORDER_SHARE * m.share * total  # response-corrected: the response divides out
+    # response-corrected: the response divides out
+    emitted = FIRST_ORDER_SHARE * m.share * total * (1.0 if weight is None else weight)
     grid = spec_out.wavelength_nm
     edges = np.concatenate([[grid[0] - 0.5 * spec_out.bin_width_nm[0]], grid + 0.5 * spec_out.bin_width_nm])
     probe = np.linspace(grid[0], grid[-1], 24)

@@ -145,19 +145,7 @@ def ratio_and_sigma(spec_out, wins):
 
 def expected_window_energy(spec, r, spec_out, lo, hi, x0, y0, *, weight=None):
     """bench_calibration's expected window energy, each component optionally times ``weight``."""
-    m = r.emission
-    total = sum(t.emitted_energy_adu for t in r.truths)
-    emitted = BC.FIRST_ORDER_SHARE * m.share * total * (1.0 if weight is None else weight)
-    grid = spec_out.wavelength_nm
-    edges = np.concatenate([[grid[0] - 0.5 * spec_out.bin_width_nm[0]], grid + 0.5 * spec_out.bin_width_nm])
-    probe = np.linspace(grid[0], grid[-1], 24)
-    var_px = EA.lsf_sigma_px2(r, spec, probe)
-    disp = np.asarray(r.geometry.dispersion_nm_per_px(x0, y0, probe), float)
-    sig = np.sqrt(var_px * disp**2 + np.median(spec_out.bin_width_nm) ** 2 / 12.0)
-    ok = np.isfinite(sig)
-    expected = EA.expected_spectrum(edges, m.wavelength_nm, emitted, np.interp(m.wavelength_nm, probe[ok], sig[ok]))
-    sel = (grid >= lo) & (grid <= hi)
-    return float(expected[sel].sum())
+    return BC._expected_window_energy(spec, r, spec_out, lo, hi, x0, y0, weight=weight)
 
 
 def extract(r, *, refine: bool, tracker: bool = False, optimal: bool | None = None):

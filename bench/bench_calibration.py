@@ -217,6 +217,22 @@ def _whole_flight_corrected(fs, station, geometry, track, *, extinction: bool = 
     return spec
 
 
+def add_interpolated_motion(track) -> None:
+    """Give a truth track ``position(t)`` and ``velocity_px_s(t)``, interpolated between its
+    luminous frames (what the extraction and calibration ask of a track)."""
+    tt = np.asarray(track.time_s, float)
+
+    def position(t, _x=track.x_px, _y=track.y_px):
+        ok = np.isfinite(_x)
+        return np.interp(t, tt[ok], _x[ok]), np.interp(t, tt[ok], _y[ok])
+
+    def velocity_px_s(t, h=1e-3):
+        (xp, yp), (xm, ym) = position(np.asarray(t) + h), position(np.asarray(t) - h)
+        return (xp - xm) / (2 * h), (yp - ym) / (2 * h)
+
+    track.position, track.velocity_px_s = position, velocity_px_s
+
+
 def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fallback",
               whole_spectrum_tilt: bool = True, tilt_sigma_deg: float | None = None,
               max_tilt_err_deg: float | None = None) -> dict:
@@ -238,17 +254,7 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
                                 flux_adu=np.array(fr["energy_fraction"], float), psf_sigma_px=truth["psf_sigma_px"],
                                 time_s=np.array(fr["time_s"], float), luminous=lum,
                                 exposure_s=float(stack.exposure_s), trajectory=rendered.trajectory)
-        tt = track.time_s
-
-        def position(t, _x=track.x_px, _y=track.y_px):
-            ok = np.isfinite(_x)
-            return np.interp(t, tt[ok], _x[ok]), np.interp(t, tt[ok], _y[ok])
-
-        def velocity_px_s(t, h=1e-3):
-            (xp, yp), (xm, ym) = position(np.asarray(t) + h), position(np.asarray(t) - h)
-            return (xp - xm) / (2 * h), (yp - ym) / (2 * h)
-
-        track.position, track.velocity_px_s = position, velocity_px_s
+        add_interpolated_motion(track)
         # as meteorspec.pipeline.locate_meteor: the background re-estimated with the meteor masked
         # (the first estimate keeps faint lines such as O I 777 below its clip: 5-14 % of them,
         # bench/flux_ratio.py)

@@ -89,16 +89,7 @@ def truth_track(r):
                             flux_adu=energy / total if total > 0 else energy, psf_sigma_px=None,
                             time_s=tt, luminous=lum, trajectory=r.trajectory,
                             exposure_s=float(r.exposures[0].t_end_s - r.exposures[0].t_start_s))
-
-    def position(t, _x=track.x_px, _y=track.y_px):
-        ok = np.isfinite(_x)
-        return np.interp(t, tt[ok], _x[ok]), np.interp(t, tt[ok], _y[ok])
-
-    def velocity_px_s(t, h=1e-3):
-        (xp, yp), (xm, ym) = position(np.asarray(t) + h), position(np.asarray(t) - h)
-        return (xp - xm) / (2 * h), (yp - ym) / (2 * h)
-
-    track.position, track.velocity_px_s = position, velocity_px_s
+    BC.add_interpolated_motion(track)
     return track
 
 

@@ -581,14 +581,9 @@ class FloorBackground:
     gain_e_per_adu: float
     star_mask: np.ndarray
 
-    def residual(self, frame):
-        return frame.signal - self.level_adu[frame.y_start_px::frame.y_step_px][: frame.signal.shape[0]]
-
-    def variance(self, frame, residual=None):
-        if residual is None:
-            residual = self.residual(frame)
-        level = self.level_adu[frame.y_start_px::frame.y_step_px][: frame.signal.shape[0]]
-        return (self.read_noise_adu**2 + np.clip(level + residual, 0, None) / self.gain_e_per_adu).astype(np.float32)
+    # the same noise model as the flat sky's, on this level
+    residual = FlatBackground.residual
+    variance = FlatBackground.variance
 
 
 def test_black_level_floor_of_a_faint_spectrum_is_corrected():

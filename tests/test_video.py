@@ -28,6 +28,7 @@ from meteorspec.video import (
     iter_frames,
     linearize,
     read_raw_frames,
+    read_stack,
     write_video,
 )
 
@@ -256,6 +257,25 @@ def test_progressive_frames_times(tmp_path):
         assert_array_equal(f.saturated, raw >= 250)
         assert (f.y_start_px, f.y_step_px) == (0, 1)
         assert_array_equal(f.y_px(), np.arange(H))
+
+
+def test_grey_avi_decodes_into_the_callers_buffer(tmp_path):
+    # An 8-bit grey FFV1 stream is decoded straight into the slot offered (no colour round
+    # trip); the values are exactly those written, and the stack's frames match linearize().
+    cam = make_camera(gamma=0.45, black=10.0, saturation=250.0)
+    frames = random_frames(np.random.default_rng(12), cam, n=4)
+    video = write_video(tmp_path / "v.avi", frames, camera=cam, fps=20.0)
+    slots = np.zeros_like(frames)
+    got = list(read_raw_frames(video, camera=cam, slot=lambda k: slots[k] if k < len(slots) else None))
+    assert all(np.shares_memory(g, slots[k]) for k, g in enumerate(got))
+    assert_array_equal(slots, frames)
+    event, station = make_event(video, cam, fps=20.0)
+    stack = read_stack(event, station)
+    assert_array_equal(stack.stored, frames)
+    for k, raw in enumerate(frames):
+        sig, sat = linearize(raw, cam)
+        assert_array_equal(stack[k].signal, sig)
+        assert_array_equal(stack[k].saturated, sat)
 
 
 @pytest.mark.parametrize("field_order", ["top", "bottom"])

@@ -18,9 +18,10 @@ Commands
     stored per-frame spectra, and append the verdict to the event's ``/review`` log.
 ``meteorspec simulate --out DIR [--preset NAME ...] [--random N --seed S]``
     Write synthetic events (the bundled sample set by default).
-``meteorspec response SOURCE --star X Y TEFF --out FILE [--station FILE | --stations DIR] [--force]``
+``meteorspec response SOURCE --star X Y TEFF [--star ...] --out FILE [--station FILE | --stations DIR] [--force]``
     Derive a station response curve (contract section 3) from the first-order
-    spectrum of a star of known effective temperature in an event or a clip.
+    spectra of one or more stars of known effective temperature in an event or a
+    clip (several stars are scaled to each other and combined).
 """
 
 from __future__ import annotations
@@ -235,11 +236,11 @@ def _cmd_response(args: argparse.Namespace) -> int:
     from .errors import InputError
     from .extinction import ExtinctionModel
     from .optics import SpectralGeometry
-    from .starspec import TEMPERATURE_RANGE_K, open_clip, stack_clip, star_region, star_response
+    from .starspec import (TEMPERATURE_RANGE_K, combine_responses, open_clip, stack_clip, star_region,
+                           star_response)
 
     out = Path(args.out)
     source = Path(args.source)
-    x_px, y_px, temperature_k = args.star
     try:
         if out.exists() and not args.force:
             raise InputError(out, "already exists; use --force to replace it")
@@ -249,8 +250,14 @@ def _cmd_response(args: argparse.Namespace) -> int:
             raise InputError(args.station, "give either --station or --stations, not both")
         video, station = open_clip(source, station_file=args.station, stations_dir=args.stations)
         lo_k, hi_k = TEMPERATURE_RANGE_K
-        if not lo_k <= temperature_k <= hi_k:  # also false for NaN
-            raise InputError(source, f"star temperature {temperature_k:g} K is not within {lo_k:.0f}-{hi_k:.0f} K")
+        camera = station.camera
+        for x_px, y_px, temperature_k in args.star:
+            if not lo_k <= temperature_k <= hi_k:  # also false for NaN
+                raise InputError(source, f"star temperature {temperature_k:g} K is not within "
+                                 f"{lo_k:.0f}-{hi_k:.0f} K")
+            if not (-0.5 <= x_px <= camera.width - 0.5 and -0.5 <= y_px <= camera.height - 0.5):
+                raise InputError(video, f"star position ({x_px:g}, {y_px:g}) is outside the "
+                                 f"{camera.width}x{camera.height} frame")
         if not (args.smooth_nm > 0 and args.step_nm > 0):  # also false for NaN
             raise InputError(source, "--smooth-nm and --step-nm must be positive")
         extinction = None
@@ -260,31 +267,60 @@ def _cmd_response(args: argparse.Namespace) -> int:
                                  key="[pointing]")
             extinction = ExtinctionModel.for_station(station)
         geometry = SpectralGeometry.from_station(station)
-        camera = station.camera
-        if not (-0.5 <= x_px <= camera.width - 0.5 and -0.5 <= y_px <= camera.height - 0.5):
-            raise InputError(video, f"star position ({x_px:g}, {y_px:g}) is outside the "
-                             f"{camera.width}x{camera.height} frame")
-        region = star_region(geometry, x_px, y_px, camera=camera, order=station.grating.orders[0])
-        stack = stack_clip(video, camera=camera, region=region, method=args.stack)
+        stacks = [stack_clip(video, camera=camera, method=args.stack,
+                             region=star_region(geometry, x_px, y_px, camera=camera, order=station.grating.orders[0]))
+                  for x_px, y_px, _ in args.star]
     except InputError as exc:
         print(f"meteorspec: {exc}", file=sys.stderr)
         return 2
+    results = []
+    for (x_px, y_px, temperature_k), stack in zip(args.star, stacks):
+        try:
+            results.append(star_response(stack, station, x_px, y_px, temperature_k, geometry=geometry,
+                                         extinction=extinction, smooth_nm=args.smooth_nm, step_nm=args.step_nm))
+        except ValueError as exc:
+            print(f"meteorspec: {video}: star near ({x_px:g}, {y_px:g}): {exc}", file=sys.stderr)
+            return 1
+    for k, (result, stack) in enumerate(zip(results, stacks), start=1):
+        star = result.star
+        alt = "" if result.altitude_deg != result.altitude_deg else f", altitude {result.altitude_deg:.1f} deg"
+        label = "star" if len(results) == 1 else f"star {k}"
+        print(f"{label}: zeroth order at ({star.x_px:.2f}, {star.y_px:.2f}), PSF sigma {star.psf_sigma_px:.2f} px{alt}, "
+              f"{stack.n_frames} frames stacked ({stack.method}), spectrum SNR {star.snr:.0f}, "
+              f"{result.temperature_k:.0f} K, {result.response.wavelength_nm[0]:.0f}-"
+              f"{result.response.wavelength_nm[-1]:.0f} nm"
+              + (f" [{', '.join(result.flags)}]" if result.flags else ""))
+        if "star_trace_offset" in result.flags:
+            print(f"note: the light of {label} runs up to {star.trace_offset_px:.1f} px beside the curve the station "
+                  "file predicts (aperture widened); refine the grating values with 'meteorspec calibrate'")
+    if len(results) == 1:
+        resp = results[0].response
+        comment = None
+    else:
+        try:
+            combined = combine_responses([r.response for r in results])
+        except ValueError as exc:
+            print(f"meteorspec: {video}: {exc}", file=sys.stderr)
+            return 1
+        resp = combined.response
+        for k, (scale, n_rows, rms, worst, used) in enumerate(zip(
+                combined.scale, combined.n_rows, combined.agreement_rms, combined.agreement_max, combined.used),
+                start=1):
+            print(f"star {k}: scale {scale:.4g}, {n_rows} rows, deviation from the other stars "
+                  f"{rms:.1f} sigma rms, {worst:.1f} sigma at most" + ("" if used else " [left out]"))
+        odd = np.flatnonzero(combined.disagreeing())
+        if len(results) == 2 and odd.size:  # two stars: either may be the wrong one
+            print("note: the two stars disagree by more than 4 sigma: check their temperatures, and that no "
+                  "other star's light falls on their spectra")
+        elif odd.size:
+            names = ", ".join(str(k + 1) for k in odd)
+            print(f"note: star(s) {names} disagree with the others by more than 4 sigma (left out of the curve "
+                  "where the rest still overlap): check the temperature, and that no other star's light falls "
+                  "on the spectrum")
+        temps = ", ".join(f"{r.temperature_k:.0f}" for r, u in zip(results, combined.used) if u)
+        comment = f"combined by meteorspec from {int(combined.used.sum())} black-body stars ({temps} K)"
     try:
-        result = star_response(stack, station, x_px, y_px, temperature_k, geometry=geometry,
-                               extinction=extinction, smooth_nm=args.smooth_nm, step_nm=args.step_nm)
-    except ValueError as exc:
-        print(f"meteorspec: {video}: star near ({x_px:g}, {y_px:g}): {exc}", file=sys.stderr)
-        return 1
-    star, resp = result.star, result.response
-    alt = "" if result.altitude_deg != result.altitude_deg else f", altitude {result.altitude_deg:.1f} deg"
-    print(f"star: zeroth order at ({star.x_px:.2f}, {star.y_px:.2f}), PSF sigma {star.psf_sigma_px:.2f} px{alt}, "
-          f"{stack.n_frames} frames stacked ({stack.method}), spectrum SNR {star.snr:.0f}"
-          + (f" [{', '.join(result.flags)}]" if result.flags else ""))
-    if "star_trace_offset" in result.flags:
-        print(f"note: the star's light runs up to {star.trace_offset_px:.1f} px beside the curve the station file "
-              "predicts (aperture widened); refine the grating values with 'meteorspec calibrate'")
-    try:
-        resp.write_csv(out, overwrite=args.force)
+        resp.write_csv(out, overwrite=args.force, comment=comment)
     except FileExistsError:
         print(f"meteorspec: {out}: already exists; use --force to replace it", file=sys.stderr)
         return 2
@@ -292,8 +328,10 @@ def _cmd_response(args: argparse.Namespace) -> int:
         print(f"meteorspec: {out}: cannot write ({exc.strerror or exc.__class__.__name__})", file=sys.stderr)
         return 2
     rel = resp.response_err / resp.response
+    source_text = (f"{results[0].temperature_k:.0f} K black body" if len(results) == 1
+                   else f"{int(combined.used.sum())} of {len(results)} stars combined")
     print(f"wrote {out}: {resp.wavelength_nm.size} rows, {resp.wavelength_nm[0]:.0f}-{resp.wavelength_nm[-1]:.0f} nm, "
-          f"{temperature_k:.0f} K black body, 1-sigma {100 * float(np.median(rel)):.1f} % typical, "
+          f"{source_text}, 1-sigma {100 * float(np.median(rel)):.1f} % typical, "
           f"{100 * float(np.max(rel)):.1f} % at worst")
     return 0
 
@@ -378,8 +416,9 @@ def build_parser() -> argparse.ArgumentParser:
     rs = sub.add_parser("response", help="derive a station response curve from a star of known temperature")
     rs.add_argument("source", help="an event folder (or its event.toml), or a clip: a video file or a folder "
                                    "of numbered frames")
-    rs.add_argument("--star", nargs=3, type=float, required=True, metavar=("X", "Y", "TEFF"),
-                    help="approximate zeroth-order pixel of the star and its effective temperature in K")
+    rs.add_argument("--star", nargs=3, type=float, required=True, action="append", metavar=("X", "Y", "TEFF"),
+                    help="approximate zeroth-order pixel of the star and its effective temperature in K; "
+                         "repeat for several stars (their curves are scaled to each other and combined)")
     rs.add_argument("--out", required=True, metavar="FILE",
                     help="response file to write (CSV wavelength_nm,response)")
     rs.add_argument("--station", metavar="FILE",

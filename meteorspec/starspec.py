@@ -58,6 +58,7 @@ from __future__ import annotations
 import dataclasses
 import math
 from dataclasses import dataclass
+from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
@@ -87,6 +88,8 @@ __all__ = [
     "measure_star",
     "star_response",
     "trim_response",
+    "CombinedResponse",
+    "combine_responses",
     "compact_outliers",
     "TEMPERATURE_RANGE_K",
 ]
@@ -984,3 +987,182 @@ def trim_response(response: DerivedResponse, *, max_rel_err: float = 0.05) -> De
     return DerivedResponse(response.wavelength_nm[sel].copy(), resp[sel] / scale,
                            response.response_err[sel] / scale, response.temperature_k)
 
+
+
+@dataclass(frozen=True, eq=False)
+class CombinedResponse:
+    """One response curve from several stars, with how each star agrees with the others.
+
+    Attributes
+    ----------
+    response : DerivedResponse
+        Inverse-variance mean of the used stars' curves, each scaled by ``scale``;
+        normalised to a maximum of 1. ``temperature_k`` is NaN (several stars).
+    scale : ndarray
+        Factor applied to each star's curve (each arrives normalised to its own
+        maximum); for a star left out, the factor that best matches it to the curve.
+    used : ndarray of bool
+        Stars in the combination (a star that disagrees with the rest is left out,
+        see :func:`combine_responses`).
+    n_rows : ndarray of int
+        Rows each star covers.
+    agreement_rms, agreement_max : ndarray
+        RMS and largest absolute normalised deviation of each star's scaled curve
+        from the combination of the *other used* stars, over the rows they share
+        (``(s_i r_i - R_others) / sqrt((s_i e_i)**2 + e_others**2)``); NaN for a
+        star that shares no row with them. Neighbouring rows are correlated by
+        the smoothing, so these are indicators, not chi-square statistics.
+    """
+
+    response: DerivedResponse
+    scale: NDArray[np.float64]
+    used: NDArray[np.bool_]
+    n_rows: NDArray[np.int64]
+    agreement_rms: NDArray[np.float64]
+    agreement_max: NDArray[np.float64]
+
+    def disagreeing(self, *, max_sigma: float = 4.0) -> NDArray[np.bool_]:
+        """Stars whose largest deviation from the other used stars exceeds ``max_sigma``."""
+        return np.nan_to_num(self.agreement_max, nan=0.0) > max_sigma
+
+
+def _weighted_mean(values: NDArray, errors: NDArray) -> tuple[NDArray, NDArray]:
+    """Row-wise inverse-variance mean over stars (axis 0) ignoring NaN; NaN where no star covers a row."""
+    ok = np.isfinite(values) & np.isfinite(errors) & (errors > 0)
+    w = np.where(ok, 1.0 / np.where(ok, errors, 1.0) ** 2, 0.0)
+    total = w.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(total > 0, (w * np.where(ok, values, 0.0)).sum(axis=0) / total, np.nan)
+        err = np.where(total > 0, 1.0 / np.sqrt(total), np.nan)
+    return mean, err
+
+
+def _tied(covered: NDArray[np.bool_]) -> bool:
+    """Whether every star is linked to the first by a chain of shared rows."""
+    overlap = (covered[:, None, :] & covered[None, :, :]).any(axis=2)
+    reached = np.zeros(covered.shape[0], bool)
+    reached[0] = True
+    for _ in range(covered.shape[0]):
+        reached |= overlap[reached].any(axis=0)
+    return bool(reached.all())
+
+
+def _fit_scales(val: NDArray, err: NDArray, covered: NDArray[np.bool_], used: NDArray[np.bool_],
+                n_iter: int) -> NDArray:
+    """Scales of every star against the combination of the used ones (log-space weighted means)."""
+    scale = np.ones(val.shape[0])
+    first = int(np.flatnonzero(used)[0])
+    for _ in range(n_iter):
+        comb, _ = _weighted_mean(val[used] * scale[used, None], err[used] * scale[used, None])
+        new = np.ones_like(scale)
+        for i in range(val.shape[0]):
+            take = covered[i] & np.isfinite(comb) & (comb > 0)
+            if np.any(take):  # log r_i carries the relative error e_i / r_i
+                wgt = (val[i, take] / err[i, take]) ** 2
+                new[i] = math.exp(float(np.sum(wgt * np.log(comb[take] / val[i, take])) / np.sum(wgt)))
+        new /= new[first]  # the overall scale is free; the caller normalises
+        done = np.max(np.abs(new / scale - 1.0)) < 1e-12
+        scale = new
+        if done:
+            break
+    return scale
+
+
+def _agreement(val: NDArray, err: NDArray, covered: NDArray[np.bool_], used: NDArray[np.bool_],
+               scale: NDArray) -> tuple[NDArray, NDArray]:
+    n = val.shape[0]
+    rms, worst = np.full(n, np.nan), np.full(n, np.nan)
+    for i in range(n):
+        others = used & (np.arange(n) != i)
+        if not np.any(others):
+            continue
+        rest, rest_err = _weighted_mean(val[others] * scale[others, None], err[others] * scale[others, None])
+        both = covered[i] & np.isfinite(rest)
+        if np.any(both):
+            z = (val[i, both] * scale[i] - rest[both]) / np.hypot(err[i, both] * scale[i], rest_err[both])
+            rms[i] = float(np.sqrt(np.mean(z * z)))
+            worst[i] = float(np.max(np.abs(z)))
+    return rms, worst
+
+
+def combine_responses(responses: Sequence[DerivedResponse], *, reject_sigma: float | None = 4.0,
+                      n_iter: int = 100) -> CombinedResponse:
+    """Combine response curves of several stars (same station, same row spacing) into one.
+
+    Each curve is known only up to a scale (contract section 3; every star is
+    normalised to its own maximum), so the scales are fitted with the curve:
+    the combination is the inverse-variance mean of ``s_i r_i``, and each
+    ``s_i`` is the weighted mean ratio (in logarithm) of the combination to
+    ``r_i`` over the rows it covers, iterated to a fixed point. Stars covering
+    different ranges extend the curve; where they share rows they tie each
+    other's scale.
+
+    A star given the wrong temperature has a tilted curve, one with a neighbour's
+    light on its spectrum a bump. Each star is compared with the combination of
+    the others; with three or more stars, the worst one (largest RMS deviation) is
+    left out while its largest deviation exceeds ``reject_sigma`` and at least two tied stars stay
+    (with two stars there is no telling which is wrong: both stay, and both show
+    the deviation).
+
+    Parameters
+    ----------
+    responses : sequence of DerivedResponse
+        Curves on rows that are multiples of one spacing (as
+        :func:`meteorspec.calibrate.derive_response` writes them).
+    reject_sigma : float or None
+        Leave-out threshold on a star's largest normalised deviation; None keeps every star.
+    n_iter : int
+        Iterations of the scale fit (it converges in a few when the stars overlap well).
+
+    Returns
+    -------
+    CombinedResponse
+
+    Raises
+    ------
+    ValueError
+        No curve, curves whose rows do not share one spacing, or stars not tied
+        together by shared rows (a star's scale would be arbitrary).
+    """
+    curves = list(responses)
+    if not curves:
+        raise ValueError("no response curve to combine")
+    steps = {round(float(np.median(np.diff(c.wavelength_nm))), 6) for c in curves if c.wavelength_nm.size > 1}
+    if len(steps) != 1:
+        raise ValueError(f"the curves have different row spacings ({sorted(steps)} nm); derive them with one --step-nm")
+    step = steps.pop()
+    keys = [np.rint(c.wavelength_nm / step).astype(np.int64) for c in curves]
+    if any(np.any(np.abs(k * step - c.wavelength_nm) > 1e-6 * step) for k, c in zip(keys, curves)):
+        raise ValueError("the curves' rows are not on one grid of their spacing")
+    grid = np.arange(min(k[0] for k in keys), max(k[-1] for k in keys) + 1)
+    n = len(curves)
+    val = np.full((n, grid.size), np.nan)
+    err = np.full((n, grid.size), np.nan)
+    for i, (k, c) in enumerate(zip(keys, curves)):
+        val[i, k - grid[0]] = c.response
+        err[i, k - grid[0]] = c.response_err
+    covered = np.isfinite(val) & np.isfinite(err) & (err > 0) & (val > 0)
+    val = np.where(covered, val, np.nan)
+    if not _tied(covered):
+        raise ValueError("some stars share no wavelength with the others (directly or through other stars); "
+                         "their scale is unknown")
+    used = np.ones(n, bool)
+    while True:
+        scale = _fit_scales(val, err, covered, used, n_iter)
+        rms, worst = _agreement(val, err, covered, used, scale)
+        if reject_sigma is None or used.sum() < 3:
+            break
+        # the worst star by its RMS deviation (a star's largest deviation can sit where only the
+        # odd star covers the others' side, and then two stars look equally bad)
+        i = int(np.argmax(np.where(used, np.nan_to_num(rms, nan=0.0), -np.inf)))
+        trial = used.copy()
+        trial[i] = False
+        if not np.nan_to_num(worst[i], nan=0.0) > reject_sigma or not _tied(covered[trial]):
+            break
+        used = trial
+    comb, comb_err = _weighted_mean(val[used] * scale[used, None], err[used] * scale[used, None])
+    peak = float(np.nanmax(comb))
+    keep = np.isfinite(comb)
+    response = DerivedResponse((grid[keep] * step).astype(float), comb[keep] / peak, comb_err[keep] / peak,
+                               float("nan"))
+    return CombinedResponse(response, scale / peak, used, covered.sum(axis=1), rms, worst)

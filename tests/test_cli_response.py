@@ -169,3 +169,41 @@ def test_no_star_at_the_position(tmp_path, event, capsys):
     assert main(_args(event_dir, (x, y, 6000.0), out, dx=0.0, dy=0.0)) == 1
     _check_one_line_error(capsys, "video.fits", "no star within")
     assert not out.exists()
+
+
+def _second_star(event_dir):
+    """The other isolated bright star of this seed (11 377 K near (281.3, 308.0); see test_starspec.py)."""
+    truth = json.loads(next((event_dir.parent / "truth").glob("*.json")).read_text())["stars"]
+    i = int(np.argmin(np.hypot(np.array(truth["x_px"]) - 281.3, np.array(truth["y_px"]) - 308.0)))
+    assert truth["temperature_k"][i] == pytest.approx(11377.0, abs=1.0)
+    return truth["x_px"][i], truth["y_px"][i], truth["temperature_k"][i]
+
+
+def test_two_stars_combined(tmp_path, event, capsys):
+    # Two stars of one clip, each normalised to its own maximum: the combined curve is scaled
+    # across them and stays within 3 % of the truth over 420-720 nm (each star alone: about 2-3 %
+    # max there), and the two agree (no note). Given 6000 K for the 11 377 K star, its curve tilts
+    # by B(11 377 K)/B(6000 K) (about 2x over 420-720 nm) and the two stars disagree.
+    event_dir, station_file, star = event
+    x2, y2, t2 = _second_star(event_dir)
+    out = tmp_path / "two.csv"
+    args = _args(event_dir, star, out) + ["--star", f"{x2 + 1.0:.2f}", f"{y2 - 1.0:.2f}", f"{t2:.0f}"]
+    assert main(args) == 0
+    text = capsys.readouterr().out
+    assert "2 of 2 stars combined" in text and "note:" not in text
+    assert out.read_text().startswith("# combined by meteorspec from 2 black-body stars")
+    wl, dev = _deviation(out, station_file)
+    inner = (wl >= 420) & (wl <= 720)
+    assert inner.sum() > 50 and np.max(np.abs(dev[inner])) < 0.03
+    wrong = tmp_path / "wrong.csv"
+    args = _args(event_dir, star, wrong) + ["--star", f"{x2:.2f}", f"{y2:.2f}", "6000"]
+    assert main(args) == 0
+    assert "the two stars disagree" in capsys.readouterr().out
+
+
+def test_second_star_bad_input_one_line_error(tmp_path, event, capsys):
+    event_dir, _, star = event
+    out = tmp_path / "r.csv"
+    assert main(_args(event_dir, star, out) + ["--star", "900", "100", "6000"]) == 2
+    _check_one_line_error(capsys, "video.fits", "(900, 100)")
+    assert not out.exists()

@@ -18,10 +18,11 @@ from meteorspec.config import load_response
 from meteorspec.errors import InputError
 from meteorspec.extract import Spectrum
 from meteorspec.optics import SpectralGeometry
+from meteorspec.resources import calibration_dir
 from meteorspec.simulate import EventSpec, binned_overrides, render_event
 from meteorspec.simulate.scene import star_spectrum
-from meteorspec.starspec import (StarStack, compact_outliers, fit_sideband_sky, measure_star, refine_zeroth_order,
-                                 stack_clip, star_region, star_response, trim_response)
+from meteorspec.starspec import (StarStack, combine_responses, compact_outliers, fit_sideband_sky, measure_star,
+                                 refine_zeroth_order, stack_clip, star_region, star_response, trim_response)
 from meteorspec.video import write_video
 
 # A dedicated star clip on the wide-field camera (QM01 binned 2x2, 640 x 480) read out at 12 bits:
@@ -240,6 +241,74 @@ def test_trim_response_keeps_the_well_measured_stretch():
     assert out.response.max() == pytest.approx(1.0)
     with pytest.raises(ValueError, match="too faint"):
         trim_response(DerivedResponse(wl, resp, 0.5 * resp, 6000.0))
+
+
+def _curve_from(true, lo_nm, hi_nm, *, rel_err=0.01, temp_k=6000.0, tilt=None):
+    """A star's curve: the true response over [lo, hi] on 5 nm rows, normalised to its own maximum."""
+    wl = np.arange(lo_nm, hi_nm + 1e-9, 5.0)
+    r = true(wl)
+    if tilt is not None:
+        r = r * tilt(wl)
+    return DerivedResponse(wl, r / r.max(), rel_err * r / r.max(), temp_k)
+
+
+def test_combined_stars_give_the_true_curve_and_their_scales():
+    # Three noise-free stars over different, overlapping ranges of the QM01 response curve
+    # (calibration/responses): each is normalised to its own maximum, so the combination must
+    # find the scales; it must return the true curve (to rounding) over the union of the ranges.
+    true = load_response(calibration_dir() / "responses" / "QM01_response.csv")
+    curves = [_curve_from(true, 380.0, 600.0), _curve_from(true, 450.0, 800.0), _curve_from(true, 550.0, 850.0)]
+    out = combine_responses(curves)
+    wl = out.response.wavelength_nm
+    assert wl[0] == pytest.approx(380.0) and wl[-1] == pytest.approx(850.0) and wl.size == 95
+    want = true(wl) / true(wl).max()
+    assert_allclose(out.response.response, want, rtol=1e-9)
+    # a star's curve times its scale is the combined curve on its rows
+    for c, k in zip(curves, out.scale):
+        assert_allclose(c.response * k, true(c.wavelength_nm) / true(wl).max(), rtol=1e-9)
+    assert_allclose(out.agreement_max, 0.0, atol=1e-6)
+    assert not out.disagreeing().any()
+    # where two stars overlap the error drops by sqrt(2) (inverse-variance mean, common practice)
+    i = np.searchsorted(wl, 500.0)
+    assert out.response.response_err[i] == pytest.approx(0.01 * want[i] / np.sqrt(2.0), rel=1e-6)
+
+
+def test_combined_stars_flag_a_wrong_temperature_by_the_astropy_planck_ratio():
+    # A star given 6000 K instead of its 10 000 K has a curve multiplied by B(10 000 K)/B(6000 K)
+    # (computed with astropy's BlackBody, external). With 1 % rows, the other two agree and it
+    # stands out: its tilt over 400-800 nm is far more than 4 sigma.
+    true = load_response(calibration_dir() / "responses" / "QM01_response.csv")
+    unit = u.W / (u.m**2 * u.nm * u.sr)
+
+    def tilt(wl):
+        return (BlackBody(10000.0 * u.K, scale=1.0 * unit)(wl * u.nm)
+                / BlackBody(6000.0 * u.K, scale=1.0 * unit)(wl * u.nm)).to_value(u.one)
+
+    curves = [_curve_from(true, 400.0, 800.0), _curve_from(true, 400.0, 800.0, tilt=tilt),
+              _curve_from(true, 420.0, 780.0)]
+    out = combine_responses(curves)
+    assert list(out.used) == [True, False, True]
+    assert list(out.disagreeing()) == [False, True, False]
+    # the two that agree give the true curve; the odd one is not in it
+    wl = out.response.wavelength_nm
+    assert_allclose(out.response.response, true(wl) / true(wl).max(), rtol=1e-9)
+    # kept when asked, and then every star shows the tilt of the wrong one
+    kept = combine_responses(curves, reject_sigma=None)
+    assert kept.used.all() and kept.disagreeing().all()
+    # two stars: no telling which is wrong, both stay and both disagree
+    pair = combine_responses(curves[:2])
+    assert pair.used.all() and pair.disagreeing().all()
+
+
+def test_combined_stars_refuse_what_cannot_be_tied():
+    true = load_response(calibration_dir() / "responses" / "QM01_response.csv")
+    with pytest.raises(ValueError, match="share no wavelength"):
+        combine_responses([_curve_from(true, 400.0, 500.0), _curve_from(true, 600.0, 800.0)])
+    odd = DerivedResponse(np.arange(400.0, 600.0, 4.0), np.ones(50), np.full(50, 0.01), 6000.0)
+    with pytest.raises(ValueError, match="spacing"):
+        combine_responses([_curve_from(true, 400.0, 600.0), odd])
+    with pytest.raises(ValueError, match="no response"):
+        combine_responses([])
 
 
 def test_line_ratio_200_nm_apart_after_the_derived_response(clip):

@@ -471,7 +471,9 @@ def start_local_cluster(workers: int):
     event 5.8 s -> 8.6 s); the pipeline allocates and frees large arrays per frame.
 
     Each worker imports the pipeline (numpy, scipy, astropy, OpenCV; about 1 s of CPU) while
-    it starts, not inside its first event.
+    it starts, not inside its first event. The workers' statistical profiler (a thread that
+    samples the running task's stack every 10 ms, for the dashboard) is off: nobody watches
+    a night's dashboard, and the samples take the GIL from the event being processed.
     """
     import dask
     from distributed import LocalCluster
@@ -480,7 +482,8 @@ def start_local_cluster(workers: int):
                  for key, value in dask.config.get("distributed.nanny.pre-spawn-environ", default={}).items()
                  if key != "MALLOC_TRIM_THRESHOLD_"}
     pre_spawn.update({var: "1" for var in SINGLE_THREAD_BLAS})
-    with dask.config.set({"distributed.nanny.pre-spawn-environ": pre_spawn}):
+    with dask.config.set({"distributed.nanny.pre-spawn-environ": pre_spawn,
+                          "distributed.worker.profile.enabled": False}):
         return LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                             dashboard_address="127.0.0.1:0", host="127.0.0.1", silence_logs=logging.ERROR,
                             preload=[PIPELINE_MODULE])

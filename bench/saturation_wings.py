@@ -9,31 +9,30 @@ An experiment, not a stage: the events of ``bench/plasma_end_to_end.py`` (same g
 per-event figures, ``--modes true`` only: true station geometry, no refinement) are rendered
 once each and run through ``pipeline.process_event`` several times, with
 ``meteorspec.pipeline.extract_spectra`` wrapped (``functools.partial``, in this process only) to
-other settings of the extraction's bin rule:
+other settings of the extraction's rule for bins holding saturated pixels.
 
-* ``max_lost_fraction`` -- the largest profile share of bad pixels a bin may lose and still be
-  scaled up by ``1 / (1 - lost)`` instead of masked (default 0.1);
-* ``_SAT_SHARE`` (module constant of ``meteorspec.extract``, set on the module in this process)
-  -- a bin is masked as soon as its saturated pixels carry more than this profile share
-  (default 1e-3). With the default, ``max_lost_fraction`` never applies to saturation at all;
-  the settings ``L`` below set both to ``L`` (saturated pixels then count as lost like any
-  other bad pixel).
+The extraction (``meteorspec.extract``, module notes step 5) estimates the pooled cross-dispersion
+profile without the cross-sections of the spectrum that hold a saturated pixel (a saturated core
+otherwise drops out of the mean residual at small offsets while its wings stay in, which widens
+the profile); when that profile is clean, saturated pixels count as lost light and a bin is
+scaled up by ``1 / (1 - lost)`` up to a lost share ``max_saturated_fraction`` (default 0.8);
+otherwise (too few unsaturated cross-sections, e.g. coarse binned cameras, and in the fields of
+interlaced cameras) a bin is masked as soon as its saturated pixels carry 0.1 % of it. The oracle
+(``--oracle``) covers progressive cameras only.
 
-Settings: ``base`` (0.1, 1e-3: the package as it is), ``L0.1``, ``L0.3``, ``L0.5``, ``L0.7``,
-``L0.9`` (``max_lost_fraction = _SAT_SHARE = L``); ``P<L>`` the same with the pooled
-cross-dispersion profile (``extract._pooled_profile``, wrapped) estimated only from the frames
-without a saturated band pixel; ``C<L>`` the same with every cross-section of the spectrum that
-holds a saturated pixel left out of the profile estimate (a saturated core otherwise drops out
-of the mean residual at small offsets while its wings stay in, which widens the profile).
+Settings: ``base`` (the package as it is); ``masked`` (the profile reported not clean, so every
+saturated bin is masked: the rule before wing recovery; it defines the saturated Na frames of
+each event); ``S0.5``, ``S0.6``, ``S0.7``, ``S0.9`` (``max_saturated_fraction``). Each row also
+records whether the profile was clean and from how many unsaturated cross-sections.
 
-Other modes: ``--probe`` (per lit frame of the base extraction: the masked bins by the share of
+Other modes: ``--probe`` (per lit frame of the masked extraction: the masked bins by the share of
 their light on saturated pixels, and the wavelength span of the saturated pixels) and
 ``--oracle [--oracle-setting S]`` (bin by bin against the simulator's noise-free, unclipped
 frames: the extraction's saturated share against the true one, and the scaled-up boxcar
 estimate against the true bin light; progressive cameras).
 
     OPENBLAS_NUM_THREADS=1 python bench/saturation_wings.py --oracle --only 2 1 6 31 35 26
-    OPENBLAS_NUM_THREADS=1 python bench/saturation_wings.py --oracle --oracle-setting C0.1 --only 35
+    OPENBLAS_NUM_THREADS=1 python bench/saturation_wings.py --oracle --oracle-setting masked --only 35
     OPENBLAS_NUM_THREADS=1 python bench/saturation_wings.py --probe --only 2 5
 
 Per event and setting: the composition errors and Na peak error in frames as measured by
@@ -49,10 +48,10 @@ wavelength span masked in the frame of the truth's Na peak).
 from __future__ import annotations
 
 import argparse
-import copy
 import dataclasses
 import functools
 import importlib.util
+import inspect
 import json
 import math
 import shutil
@@ -75,15 +74,15 @@ _spec = importlib.util.spec_from_file_location("plasma_end_to_end", REPO / "benc
 e2e = importlib.util.module_from_spec(_spec)
 _spec.loader.exec_module(e2e)
 
-SETTINGS = {"base": (0.1, 1e-3), "L0.1": (0.1, 0.1), "L0.3": (0.3, 0.3), "L0.5": (0.5, 0.5),
-            "L0.7": (0.7, 0.7), "L0.9": (0.9, 0.9),
-            # the same with the pooled cross profile estimated from the frames without a saturated
-            # pixel in the band (all frames when fewer than 3 qualify): ``_pooled_profile`` wrapped
-            "P0.1": (0.1, 0.1), "P0.3": (0.3, 0.3), "P0.5": (0.5, 0.5), "P0.7": (0.7, 0.7), "P0.9": (0.9, 0.9),
-            # the pooled profile without the cross-sections holding a saturated pixel
-            "C0.1": (0.1, 0.1), "C0.3": (0.3, 0.3), "C0.5": (0.5, 0.5), "C0.7": (0.7, 0.7), "C0.9": (0.9, 0.9)}
+SETTINGS = {"base": {},
+            # saturated bins masked as soon as saturated pixels carry 0.1 % of them (the rule before
+            # wing recovery): the pooled profile is reported not clean
+            "masked": {"_force_unclean": True},
+            # other limits of the profile share a bin holding saturated pixels may lose
+            "S0.5": {"max_saturated_fraction": 0.5}, "S0.6": {"max_saturated_fraction": 0.6},
+            "S0.7": {"max_saturated_fraction": 0.7}, "S0.9": {"max_saturated_fraction": 0.9}}
 _ORIG_EXTRACT = pipeline.extract_spectra
-_ORIG_SAT_SHARE = extract_mod._SAT_SHARE
+_ORIG_POOLED = extract_mod._pooled_profile
 
 
 def _capturing_extract(*args, _store: dict, **kwargs):
@@ -93,59 +92,36 @@ def _capturing_extract(*args, _store: dict, **kwargs):
 
 
 def run_setting(event_dir: Path, stations: Path, name: str, store: dict):
-    lost, sat_share = SETTINGS[name]
-    pipeline.extract_spectra = functools.partial(_capturing_extract, _store=store, max_lost_fraction=lost)
-    extract_mod._SAT_SHARE = sat_share
-    if name.startswith("P"):
-        extract_mod._pooled_profile = _unsaturated_profile
-    elif name.startswith("C"):
-        extract_mod._pooled_profile = _unsaturated_columns_profile
+    opts = dict(SETTINGS[name])
+    force = opts.pop("_force_unclean", False)
+    pipeline.extract_spectra = functools.partial(_capturing_extract, _store=store, **opts)
+
+    def pooled(*a, **k):
+        out = _ORIG_POOLED(*a, **k)
+        if force:
+            out = dataclasses.replace(out, clean=False)
+        store["profile_clean"] = bool(out.clean)
+        store["pooled"] = out
+        params = inspect.signature(_ORIG_EXTRACT).parameters
+        limit = opts.get("max_saturated_fraction", params["max_saturated_fraction"].default)
+        store["sat_limit"] = max(limit, params["max_lost_fraction"].default) if out.clean else None
+        store["profile_sections"] = int(out.n_sections)
+        return out
+
+    extract_mod._pooled_profile = pooled
     try:
         return pipeline.process_event(event_dir, stations_dir=stations, refine_geometry=False)
     finally:
         pipeline.extract_spectra = _ORIG_EXTRACT
-        extract_mod._SAT_SHARE = _ORIG_SAT_SHARE
         extract_mod._pooled_profile = _ORIG_POOLED
-
-
-_ORIG_POOLED = extract_mod._pooled_profile
-
-
-def _unsaturated_profile(bands, hw, sigma0):
-    """The pooled profile from the frames with no saturated band pixel (their cores are whole)."""
-    clean = [b for b in bands if not np.any(b.sat)]
-    return _ORIG_POOLED(clean if len(clean) >= 3 else bands, hw, sigma0)
-
-
-def _unsaturated_columns_profile(bands, hw, sigma0):
-    """The pooled profile without every cross-section that holds a saturated pixel.
-
-    A pixel is left out when its wavelength footprint (``u_nm +- (a_nm + b_nm) / 2``) comes
-    within the footprint of a saturated pixel of its frame: the whole cross-section of the
-    spectrum at that wavelength goes, so no offset loses its brightest pixels alone.
-    """
-    out = []
-    for b in bands:
-        if not np.any(b.sat):
-            out.append(b)
-            continue
-        half = 0.5 * (np.abs(b.a_nm) + np.abs(b.b_nm))
-        su = np.sort(b.u_nm[b.sat])
-        reach = half + float(np.max(half[b.sat]))
-        i = np.clip(np.searchsorted(su, b.u_nm), 1, su.size) - 1
-        near = np.minimum(np.abs(b.u_nm - su[i]), np.abs(b.u_nm - su[np.clip(i + 1, 0, su.size - 1)]))
-        c = copy.copy(b)
-        c.bad = b.bad | (near <= reach)
-        out.append(c)
-    return _ORIG_POOLED(out, hw, sigma0)
 
 
 def na_energy_figures(result, truth: dict, base_measured: np.ndarray | None) -> dict:
     """Recovered / true per-frame Na energy in the frames with >= 5 % of the truth's Na peak.
 
-    ``base_measured``: the frames whose Na light curve the ``base`` setting measured (finite);
+    ``base_measured``: the frames whose Na light curve the ``masked`` setting measured (finite);
     the others are this event's saturated Na frames. The ratio is normalised by its median over
-    the base-measured frames (same setting); with fewer than two of them (fireballs) by the
+    the masked-measured frames (same setting); with fewer than two of them (fireballs) by the
     median ratio of the control events of the same station (in :func:`summarise`).
     """
     t_true = np.asarray(truth["frames"]["time_s"], float)
@@ -195,7 +171,7 @@ def mask_figures(spectra, truth: dict) -> dict:
 
 
 def probe_mask(event_dir: Path, stations: Path, truth: dict) -> None:
-    """Per lit frame (base setting): what the masked bins' saturated pixels carry, and where they are.
+    """Per lit frame (masked setting): what the masked bins' saturated pixels carry, and where they are.
 
     The extraction's band pixels are captured by wrapping ``extract._set_band_profile`` (in this
     process only); each bin's saturated profile share is recomputed as the extraction does
@@ -211,7 +187,7 @@ def probe_mask(event_dir: Path, stations: Path, truth: dict) -> None:
     store: dict = {}
     extract_mod._set_band_profile = capture
     try:
-        run_setting(event_dir, stations, "base", store)
+        run_setting(event_dir, stations, "masked", store)
     finally:
         extract_mod._set_band_profile = orig
     sp = store["spectra"]
@@ -226,7 +202,10 @@ def probe_mask(event_dir: Path, stations: Path, truth: dict) -> None:
     for k in sorted(last):
         b = last[k]
         jj, fr = extract_mod._bin_fractions(b.u_nm, b.a_nm, b.b_nm, edges)
-        wprof = fr * (b.prof_px * b.disp)[:, None]
+        # the weights the extraction gives lost pixels
+        s_good = np.bincount(jj.ravel(), (fr * np.where(b.bad, 0.0, b.data)[:, None]).ravel(), wl.size)
+        wprof = extract_mod._loss_weights(b, jj, fr, s_good, np.asarray(sp.bin_width_nm, float), store["pooled"].psf,
+                                          store["sat_limit"])
         all_w = np.bincount(jj.ravel(), wprof.ravel(), wl.size)
         sat_w = np.bincount(jj.ravel(), (wprof * b.sat[:, None]).ravel(), wl.size)
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -292,7 +271,10 @@ def oracle_bins(spec, event_dir: Path, stations: Path, setting: str = "base") ->
         m = np.zeros(px.size)
         m[on] = meteor[band.frame, py[on], px[on]]
         jj, fr = extract_mod._bin_fractions(band.u_nm, band.a_nm, band.b_nm, edges)
-        wprof = fr * (band.prof_px * band.disp)[:, None]
+        # the weights the extraction gives lost pixels
+        s_good = np.bincount(jj.ravel(), (fr * np.where(band.bad, 0.0, band.data)[:, None]).ravel(), wl.size)
+        wprof = extract_mod._loss_weights(band, jj, fr, s_good, np.asarray(sp.bin_width_nm, float),
+                                          store["pooled"].psf, store["sat_limit"])
         all_w = np.bincount(jj.ravel(), wprof.ravel(), wl.size)
         sat_w = np.bincount(jj.ravel(), (wprof * band.sat[:, None]).ravel(), wl.size)
         bad_w = np.bincount(jj.ravel(), (wprof * band.bad[:, None]).ravel(), wl.size)
@@ -381,12 +363,11 @@ def main(argv=None) -> int:
     ap.add_argument("--seed", type=int, default=5)
     ap.add_argument("--only", type=int, nargs="*", help="indices of the random set to run")
     ap.add_argument("--settings", default=",".join(SETTINGS), help=f"comma-separated of {', '.join(SETTINGS)}")
-    ap.add_argument("--probe", action="store_true", help="only the mask probe (base setting) of the --only events")
+    ap.add_argument("--probe", action="store_true", help="only the mask probe (masked setting) of the --only events")
     ap.add_argument("--oracle", action="store_true",
                     help="only the bin-level check against the noise-free render (progressive --only events)")
     ap.add_argument("--oracle-setting", default="base",
-                    help="extraction setting of --oracle (base: the package's profile; P0.1: profile from the "
-                         "unsaturated frames; C0.1: profile without saturated cross-sections)")
+                    help="extraction setting of --oracle (base: the package as it is; masked: saturated bins masked)")
     ap.add_argument("--out", type=Path, help="append one JSON line per event and setting")
     ap.add_argument("--summarise", type=Path, nargs="*", metavar="JSONL", help="print the table of earlier --out files")
     args = ap.parse_args(argv)
@@ -395,7 +376,8 @@ def main(argv=None) -> int:
         summarise(rows)
         return 0
     settings = [s.strip() for s in args.settings.split(",") if s.strip()]
-    settings = ["base"] + [s for s in settings if s != "base"]  # the base run defines the saturated Na frames
+    # the masked run (saturated bins masked) defines the saturated Na frames
+    settings = ["masked"] + [s for s in settings if s != "masked"]
     head = subprocess.run(["git", "-C", str(REPO), "rev-parse", "--short", "HEAD"], capture_output=True,
                           text=True).stdout.strip()
     dirty = subprocess.run(["git", "-C", str(REPO), "diff", "--stat", "--", "meteorspec/extract.py"],
@@ -436,7 +418,8 @@ def main(argv=None) -> int:
                     "setting": name, "index": i, "kind": kind, "base_station": spec.station, "seed": args.seed, "head": head,
                     "extract_dirty": bool(dirty), "seconds": time.perf_counter() - t0}
                 r |= na_energy_figures(result, sim.truth, base_measured) | mask_figures(store.get("spectra"), sim.truth)
-                if name == "base":
+                r |= {"profile_clean": store.get("profile_clean"), "profile_sections": store.get("profile_sections")}
+                if name == "masked":
                     base_measured = np.array(r["na_measured"], bool)
                 rows.append(r)
                 print_row(r)
@@ -457,7 +440,7 @@ def main(argv=None) -> int:
 
 
 def own_norm(r: dict) -> float:
-    """Median raw ratio over the strong frames the base setting measured (NaN if fewer than 2)."""
+    """Median raw ratio over the strong frames the masked setting measured (NaN if fewer than 2)."""
     v = [x for x, m, st in zip(r["na_raw_ratio"], r["na_base_measured"], r["na_strong"])
          if m and st and x is not None]
     return float(np.median(v)) if len(v) >= 2 else math.nan
@@ -489,14 +472,15 @@ def print_row(r: dict) -> None:
           f"; mask/fr {r.get('masked_bins_per_lit_frame', math.nan):.0f} of {r.get('n_bins', 0)}"
           f", peak frame {r.get('peak_frame_masked_nm', math.nan):.0f} nm masked"
           f" ({'-'.join(f'{x:.0f}' for x in span)}); Na-masked frames {r.get('frames_na_masked', '?')}"
-          f"/{r.get('frames_lit', '?')}  {r['seconds']:.0f} s", flush=True)
+          f"/{r.get('frames_lit', '?')}; profile {'clean' if r.get('profile_clean') else 'NOT clean'}"
+          f" ({r.get('profile_sections')} sections)  {r['seconds']:.0f} s", flush=True)
 
 
 def summarise(rows: list[dict]) -> None:
     by: dict[str, list[dict]] = {}
     for r in rows:
         by.setdefault(r["setting"], []).append(r)
-    base = {r["index"]: r for r in by.get("base", [])}
+    base = {r["index"]: r for r in by.get("masked", [])}
     # events without two measured Na frames of their own are normalised by their station's other events
     station_norm: dict[tuple[str, str], list[float]] = {}
     for r in rows:
@@ -524,7 +508,7 @@ def summarise(rows: list[dict]) -> None:
                   f"  Na-masked {r.get('frames_na_masked', '?')}/{r.get('frames_lit', '?')}"
                   f"  mask/fr {r.get('masked_bins_per_lit_frame', math.nan):.0f}")
     print("\nsetting  n  no-comp  |na|,|mg|,|fe| median/95th/max                          Na peak <=1 fr (SNR>=20)"
-          "  Na sat frames recovered/true: median [p5,p95] (recovered/all)  base-measured frames vs base: median [min,max]")
+          "  Na sat frames recovered/true: median [p5,p95] (recovered/all)  masked-measured frames vs masked: median [min,max]")
     for name in SETTINGS:
         sub = by.get(name, [])
         if not sub:

@@ -126,6 +126,11 @@ def spectrum_part(spectra: FrameSpectra, *, flux_unit: str) -> dict[str, object]
         part["datasets"]["flux_correlation"] = (whole.correlation, "1")
     if spectra.light_time_s.size:
         part["datasets"]["light_time_s"] = (spectra.light_time_s, "s")
+    if spectra.recovered.shape == spectra.flux.shape and spectra.recovered.any():
+        # bins scaled up from the unsaturated wings, and the profile-shape share of their error
+        # (relative; common to the frames, so a re-derived whole flight adds it coherently)
+        part["datasets"]["per_frame_recovered"] = (spectra.recovered, "1")
+        part["datasets"]["per_frame_shape_rel_err"] = (spectra.shape_rel_err, "1")
     return part
 
 
@@ -434,9 +439,11 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
     # frames whose share is unknown (saturated in full) are lit: the share is an upper bound
     if not share >= min_share:
         return None
+    per_bin = {name: getattr(spectra, name)[frames] for name in ("recovered", "shape_rel_err")
+               if getattr(spectra, name).shape == spectra.flux.shape}
     subset = dataclasses.replace(
         spectra, flux=spectra.flux[frames], variance=spectra.variance[frames], mask=spectra.mask[frames],
-        time_s=spectra.time_s[frames], frame_weight=weight[frames],
+        time_s=spectra.time_s[frames], frame_weight=weight[frames], **per_bin,
         correlation=(spectra.correlation[frames] if np.ndim(spectra.correlation) == 3
                      and spectra.correlation.shape[0] == spectra.n_frames else spectra.correlation))
     whole = subset.whole_flight()

@@ -230,6 +230,9 @@ class EventView:
     response_nm : (ndarray, ndarray) or None
         The station response the spectra were divided by (``/plasma/response_wavelength_nm``,
         ``/plasma/response``): the plasma fit models blurred lines divided by it bin by bin.
+    shape_rel_err : ndarray of shape (n_frames, n_wl)
+        ``/spectrum/per_frame_shape_rel_err`` (bins recovered from the wings of saturated
+        pixels); empty when the file has none.
     """
 
     path: str
@@ -251,6 +254,7 @@ class EventView:
     notes: tuple[str, ...] = ()
     software_version: str = ""   # of the automatic run under review
     response_nm: tuple[np.ndarray, np.ndarray] | None = None
+    shape_rel_err: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
 
     @property
     def n_frames(self) -> int:
@@ -336,7 +340,10 @@ class EventView:
                    flux_err=np.asarray(d.get("flux_err", np.full(wl.size, np.nan)), float),
                    lines={k: np.asarray(v) for k, v in lines.items()}, composition=comp, speed_km_s=speed,
                    speed_err_km_s=speed_err_km_s if speed is not None else None, notes=tuple(notes),
-                   software_version=str(ev["attrs"].get("software_version", "")), response_nm=response_nm)
+                   software_version=str(ev["attrs"].get("software_version", "")), response_nm=response_nm,
+                   shape_rel_err=(np.asarray(d["per_frame_shape_rel_err"], float)
+                                  if np.shape(d.get("per_frame_shape_rel_err", ())) == pf.shape
+                                  else np.zeros((0, 0))))
 
 
 def estimate_frame_weight(per_frame: np.ndarray, mask: np.ndarray, *, lit: np.ndarray | None = None,
@@ -439,9 +446,10 @@ def combine_frames(view: EventView, keep: np.ndarray) -> Spectrum:
     spectra; elsewhere the sum is divided by the share of the kept frames' light that the
     unmasked ones carry.
     """
+    rel = view.shape_rel_err[keep] if view.shape_rel_err.shape == view.per_frame.shape else np.zeros((0, 0))
     spectra = FrameSpectra(view.wavelength_nm, view.bin_width_nm, view.per_frame[keep],
                            view.per_frame_err[keep] ** 2, view.per_frame_mask[keep], view.time_s[keep], (),
-                           frame_weight=view.frame_weight[keep])
+                           frame_weight=view.frame_weight[keep], shape_rel_err=rel)
     return spectra.whole_flight()
 
 

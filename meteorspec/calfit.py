@@ -45,7 +45,7 @@ from scipy import ndimage, optimize
 
 from . import atomic
 from .calibrate import (_PRIOR_SIGMA, _TEMPLATE_WEIGHT, _FrameCut, _line_list, _line_profile, _pack,
-                        _sample_curves, _unpack)
+                        _sample_curves_both, _unpack)
 from .optics import SpectralGeometry
 from .plasma import n2_band_samples
 
@@ -128,8 +128,7 @@ def _prepare(cuts: list[_FrameCut], geo: SpectralGeometry, *, psf_px: float, ord
         lam = np.interp(s, arc, wl)
         curves = tuple(np.asarray(v, float)[None, :] for v in (
             np.interp(s, arc, xs), np.interp(s, arc, ys)) + tuple(geo.direction(cut.x0_px, cut.y0_px, lam, order)))
-        band = _sample_curves([cut], curves, offs)[0]
-        noise = _sample_curves([cut], curves, offs, sigma=True)[0]
+        (band,), (noise,) = _sample_curves_both([cut], curves, offs)
         good = np.all(np.isfinite(band), axis=0) & np.all(np.isfinite(noise), axis=0)
         if good.sum() < 20:
             continue
@@ -186,15 +185,18 @@ class _Model:
             self.kernels.append((nk, k))
         # each frame's total light: the scale of the shared line intensities in that frame
         self.scale = np.array([max(float(np.nansum(d.value)) * d.step_px, 1e-9) for d in data])
-        self.x0 = [np.full(d.x_px.size, d.cut.x0_px) for d in data]
-        self.y0 = [np.full(d.x_px.size, d.cut.y0_px) for d in data]
+        # the pixels every trial geometry locates, built once: the same arrays at every call
+        # let a remembering lens (``calibrate._MemoLens``) skip their directions
+        self.x0 = np.concatenate([np.full(d.x_px.size, d.cut.x0_px) for d in data])
+        self.y0 = np.concatenate([np.full(d.x_px.size, d.cut.y0_px) for d in data])
+        self.xs = np.concatenate([d.x_px for d in data])
+        self.ys = np.concatenate([d.y_px for d in data])
+        self.cut = np.cumsum([d.x_px.size for d in data])[:-1]
+        self._cont_cache: dict[int, tuple[bytes, NDArray, NDArray]] = {}
 
     def locate(self, geo: SpectralGeometry) -> tuple[list[NDArray], list[NDArray]]:
-        lam, off = geo.locate(np.concatenate(self.x0), np.concatenate(self.y0),
-                              np.concatenate([d.x_px for d in self.data]),
-                              np.concatenate([d.y_px for d in self.data]), order=self.order)
-        cut = np.cumsum([d.x_px.size for d in self.data])[:-1]
-        return np.split(lam, cut), np.split(off, cut)
+        lam, off = geo.locate(self.x0, self.y0, self.xs, self.ys, order=self.order)
+        return np.split(lam, self.cut), np.split(off, self.cut)
 
     def lines(self, k: int, lam: NDArray) -> NDArray | None:
         """(n_samples, n_comp) line columns of frame ``k`` for sample wavelengths ``lam``."""
@@ -210,12 +212,30 @@ class _Model:
         i = np.floor(pos).astype(int)
         f = pos - i
         use = (i >= 0) & (i < n_ext - 1)
-        flat = self.comp[use] * n_ext + i[use]
-        w = self.weights[use]
-        dep = (np.bincount(flat, w * (1 - f[use]), minlength=self.n_comp * n_ext)
-               + np.bincount(flat + 1, w * f[use], minlength=self.n_comp * n_ext))
+        # lines off the curve deposit a weight of exactly 0 into bin 0 instead of being cut out:
+        # every bin sums the same terms in the same order (adding 0 changes no sum)
+        flat = np.where(use, self.comp * n_ext + i, 0)
+        dep = (np.bincount(flat, np.where(use, self.weights * (1 - f), 0.0), minlength=self.n_comp * n_ext)
+               + np.bincount(flat + 1, np.where(use, self.weights * f, 0.0), minlength=self.n_comp * n_ext))
         dep = dep[: self.n_comp * n_ext].reshape(self.n_comp, n_ext)
         return ndimage.convolve1d(dep, kern, axis=1, mode="constant")[:, nk: nk + n].T
+
+    def _continuum(self, k: int, good: NDArray) -> tuple[NDArray, NDArray]:
+        """Orthonormal continuum basis of frame ``k`` on its ``good`` samples, and the data with
+        the continuum projected out: the same for every trial geometry that keeps the same
+        samples, so kept for the last mask of each frame."""
+        key = good.tobytes()
+        hit = self._cont_cache.get(k)
+        if hit is not None and hit[0] == key:
+            return hit[1], hit[2]
+        d = self.data[k]
+        bw = np.where(good, d.value / d.error, 0.0)
+        u = np.linspace(-1.0, 1.0, good.size)
+        cont = np.polynomial.legendre.legvander(u, self.degree) / np.where(good, d.error, np.inf)[:, None]
+        q, _ = np.linalg.qr(cont)
+        bw = bw - q @ (q.T @ bw)
+        self._cont_cache[k] = (key, q, bw)
+        return q, bw
 
     def solve(self, geo: SpectralGeometry, *, lines: bool = True) -> tuple[NDArray, NDArray, list[NDArray]]:
         """Normalised residuals of all samples, of the cross positions, and the fitted intensities.
@@ -237,12 +257,8 @@ class _Model:
                 projs.append(None)
             else:
                 aw = np.where(good[:, None], t * self.scale[k] / d.error[:, None], 0.0)
-                bw = np.where(good, d.value / d.error, 0.0)
-                u = np.linspace(-1.0, 1.0, lam.size)
-                cont = np.polynomial.legendre.legvander(u, self.degree) / np.where(good, d.error, np.inf)[:, None]
-                q, _ = np.linalg.qr(cont)
+                q, bw = self._continuum(k, good)
                 aw = aw - q @ (q.T @ aw)
-                bw = bw - q @ (q.T @ bw)
                 a_rows.append(aw)
                 b_rows.append(bw)
                 projs.append(q)

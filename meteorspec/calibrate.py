@@ -91,7 +91,7 @@ from scipy import ndimage, optimize, special
 from . import atomic
 from .config import Camera, ResponseCurve, Station
 from .errors import InputError
-from .optics import SpectralGeometry
+from .optics import LensModel, SpectralGeometry
 from .startrace import StarTraces, trace_offsets_px
 from .wavesol import (GRATING_PARAMETERS, LENS_PARAMETERS, LineMeasurements, ResidualTable,
                       WavelengthSolution, geometry_values)
@@ -145,6 +145,65 @@ _PRIOR_SIGMA = {"grooves_frac": 0.06, "dispersion_angle_deg": 8.0, "tilt_deg": 3
 #: camera 0.42-0.96 deg, where a free tilt ran 2.6-4.7 deg off and dragged the groove density
 #: (up to -1.2 %; held: three of four events met all four figures instead of one).
 _MAX_TILT_ERR_DEG = 0.36
+
+
+# --------------------------------------------------------------------------- direction memo
+
+
+class _MemoLens(LensModel):
+    """The station lens, remembering the directions of the pixels it has mapped.
+
+    Calibration maps the same zeroth-order pixels (and, in the whole-spectrum fit, the same
+    sample pixels) at every trial geometry, where only the grating changes; the numerical
+    inverse of the projection (Newton steps, :meth:`LensModel.theta_from_radius`) was a large
+    share of every curve evaluation. The directions are the lens's own for the same input
+    arrays, so every result is unchanged to the last bit. The memo lives with the instance:
+    one per :func:`calibrate_event` call (:func:`_memo_geometry`), dropped with it. An array
+    seen again as the very same object is taken to hold the same values: calibration never
+    changes an array in place after handing it to the geometry.
+    """
+
+    _MEMO_SIZE = 64
+
+    @functools.cached_property
+    def _memo(self) -> dict:
+        return {}
+
+    def pixel_to_direction(self, x_px: Any, y_px: Any) -> NDArray[np.float64]:
+        memo = self._memo
+        recent = memo.setdefault("recent", [])
+        for xr, yr, ur in recent:
+            if xr is x_px and yr is y_px:
+                return ur  # the very same arrays again (held in ``recent``: their ids are not reused)
+        x = np.asarray(x_px, dtype=float)
+        y = np.asarray(y_px, dtype=float)
+        key = (x.shape, y.shape, x.tobytes(), y.tobytes())
+        u = memo.get(key)
+        if u is None:
+            u = super().pixel_to_direction(x, y)
+            u.flags.writeable = False
+            if len(memo) > self._MEMO_SIZE:
+                memo.pop(next(k for k in memo if k != "recent"))
+            memo[key] = u
+        recent.insert(0, (x_px, y_px, u))
+        del recent[4:]
+        return u
+
+
+def _memo_geometry(geometry: SpectralGeometry) -> SpectralGeometry:
+    """``geometry`` with a :class:`_MemoLens` (same values)."""
+    lens = geometry.lens
+    return SpectralGeometry(_MemoLens(**{f.name: getattr(lens, f.name) for f in dataclasses.fields(LensModel)}),
+                            geometry.grating)
+
+
+def _plain_geometry(geometry: SpectralGeometry) -> SpectralGeometry:
+    """``geometry`` with a plain :class:`LensModel` (what leaves the module)."""
+    lens = geometry.lens
+    if type(lens) is LensModel:
+        return geometry
+    return SpectralGeometry(LensModel(**{f.name: getattr(lens, f.name) for f in dataclasses.fields(LensModel)}),
+                            geometry.grating)
 
 
 # --------------------------------------------------------------------------- templates
@@ -424,6 +483,18 @@ def _sample(cut: _FrameCut, x: NDArray, y: NDArray, img: NDArray | None = None) 
     return np.where(inside, val, np.nan)
 
 
+def _sample_both(cut: _FrameCut, x: NDArray, y: NDArray) -> tuple[NDArray, NDArray]:
+    """:func:`_sample` of the residual and of the noise (the coordinates worked out once)."""
+    if cut.sigma.shape != cut.residual.shape:
+        return _sample(cut, x, y), _sample(cut, x, y, cut.sigma)
+    rows = (y - cut.y_start_px) / cut.y_step_px
+    h, w = cut.residual.shape
+    inside = (rows >= 0) & (rows <= h - 1) & (x >= 0) & (x <= w - 1) & np.isfinite(x) & np.isfinite(rows)
+    coords = np.stack([np.where(inside, rows, 0.0), np.where(inside, x, 0.0)]).reshape(2, -1)
+    return tuple(np.where(inside, ndimage.map_coordinates(img, coords, order=1, mode="nearest").reshape(x.shape),
+                          np.nan) for img in (cut.residual, cut.sigma))
+
+
 def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int) -> list[_FrameCut]:
     """Residual images of the luminous frames with a fitted zeroth-order position."""
     x = np.array(track.x_px, float)
@@ -511,6 +582,20 @@ def _sample_curves(cuts: list[_FrameCut], curves: tuple[NDArray, ...], offsets: 
         y = ys[k][None, :] + offsets[:, None] * tx[k][None, :]
         out.append(_sample(cut, x, y, cut.sigma if sigma else None))
     return out
+
+
+def _sample_curves_both(cuts: list[_FrameCut], curves: tuple[NDArray, ...],
+                        offsets: NDArray) -> tuple[list[NDArray], list[NDArray]]:
+    """:func:`_sample_curves` of the residual and of the noise at once."""
+    xs, ys, tx, ty = curves
+    vals, sigs = [], []
+    for k, cut in enumerate(cuts):
+        x = xs[k][None, :] - offsets[:, None] * ty[k][None, :]
+        y = ys[k][None, :] + offsets[:, None] * tx[k][None, :]
+        v, e = _sample_both(cut, x, y)
+        vals.append(v)
+        sigs.append(e)
+    return vals, sigs
 
 
 def _curve_score(geo: SpectralGeometry, cuts: list[_FrameCut], wl: NDArray, aperture_px: float,
@@ -804,8 +889,26 @@ def _profile_table(u: NDArray, comps, sigma_nm: float, box_nm: float) -> NDArray
         ok = (i >= 0) & (i < n_ext - 1)
         dep = np.bincount(i[ok], ww[ok] * (1 - f[ok]), minlength=n_ext)
         dep += np.bincount(i[ok] + 1, ww[ok] * f[ok], minlength=n_ext)
-        table[:, j] = np.convolve(dep[:n_ext], kern, mode="same")[nk: nk + u.size] / h
+        # "valid" is the centre of "same" (the same sums): only the nodes of ``u`` are computed
+        table[:, j] = np.convolve(dep[:n_ext], kern, mode="valid") / h
     return table
+
+
+def _interp_columns(x: NDArray, xp: NDArray, table: NDArray) -> NDArray:
+    """``np.interp(x, xp, table[:, i])`` for every column ``i`` at once, shape ``x.shape + (n_columns,)``.
+
+    The same arithmetic as numpy's ``interp`` (the interval by bisection, then
+    ``slope * (x - xp[j]) + fp[j]`` with ``slope = (fp[j+1] - fp[j]) / (xp[j+1] - xp[j])``;
+    the end values outside ``xp``), so the result is identical to the column-by-column loop;
+    ``xp`` must increase.
+    """
+    j = np.clip(np.searchsorted(xp, x, side="right") - 1, 0, xp.size - 2)
+    t0 = table[j]
+    slope = (table[j + 1] - t0) / (xp[j + 1] - xp[j])[..., None]
+    out = slope * (x - xp[j])[..., None] + t0
+    out[x < xp[0]] = table[0]
+    out[x >= xp[-1]] = table[-1]
+    return out
 
 
 def _fit_feature(wl: NDArray, flux: NDArray, err: NDArray, comps, sigma_nm: float, box_nm: float,
@@ -831,34 +934,45 @@ def _fit_feature(wl: NDArray, flux: NDArray, err: NDArray, comps, sigma_nm: floa
     table = _profile_table(u, comps, sigma_nm, box_nm)
 
     def design(shift: float) -> NDArray:
-        cols = [np.interp(wl - shift, u, table[:, i]) for i in range(ncomp)]
-        return np.concatenate([np.stack(cols, axis=1), base], axis=1)
+        return np.concatenate([_interp_columns(wl - shift, u, table), base], axis=1)
 
-    def solve(shift: float) -> tuple[float, NDArray, NDArray]:
-        a = design(shift) * w[:, None]
-        b = flux * w
-        # non-negative line amplitudes; the continuum terms are free (split into +/- parts)
-        a_full = np.concatenate([a, -a[:, ncomp:]], axis=1)
-        coef, rnorm = optimize.nnls(a_full, b, maxiter=50 * a_full.shape[1])
-        amp = coef[: a.shape[1]].copy()
-        amp[ncomp:] -= coef[a.shape[1]:]
-        return float(rnorm**2), amp, a
+    b = flux * w
+    # weighted design: line columns (filled per shift), then the continuum terms, free in sign
+    # (split into +/- parts for the non-negative solver), the same at every shift
+    n_a = ncomp + base.shape[1]
+    a_full = np.empty((wl.size, n_a + base.shape[1]))
+    a_full[:, ncomp:n_a] = base * w[:, None]
+    a_full[:, n_a:] = -a_full[:, ncomp:n_a]
+    solved: dict[float, tuple[float, NDArray]] = {}
+
+    def solve_many(values: NDArray) -> list[tuple[float, NDArray]]:
+        """Chi-square and amplitudes at each shift (the line columns of all shifts at once)."""
+        new = [s for s in values if s not in solved]  # the fine grid's centre is a coarse node
+        if new:
+            cols = _interp_columns(wl[None, :] - np.asarray(new)[:, None], u, table) * w[None, :, None]
+            for s, c in zip(new, cols):
+                a_full[:, :ncomp] = c
+                coef, rnorm = optimize.nnls(a_full, b, maxiter=50 * a_full.shape[1])
+                amp = coef[:n_a].copy()
+                amp[ncomp:] -= coef[n_a:]
+                solved[s] = (float(rnorm**2), amp)
+        return [solved[s] for s in values]
 
     step = min(max(0.05, min(sigma_nm, math.hypot(sigma_nm, box_nm / math.sqrt(12))) / 3), max_shift_nm / 4)
     shifts = np.arange(-max_shift_nm, max_shift_nm + 1e-9, step)
-    chi = np.array([solve(s)[0] for s in shifts])
+    chi = np.array([r[0] for r in solve_many(shifts)])
     k = int(np.argmin(chi))
     if k == 0 or k == shifts.size - 1:
         return None
     fine = shifts[k] + np.linspace(-step, step, 7)
-    chf = np.array([solve(s)[0] for s in fine])
+    chf = np.array([r[0] for r in solve_many(fine)])
     coef = np.polyfit(fine - shifts[k], chf, 2)
     if coef[0] <= 0:
         return None
     shift = float(shifts[k] - coef[1] / (2 * coef[0]))
     if abs(shift - shifts[k]) > step:
         return None
-    chi_min, amp, a = solve(shift)
+    chi_min, amp = solve_many(np.array([shift]))[0]
     if (amp[0] <= 0) if dominant else (amp[:ncomp].sum() <= 0):
         return None
     dof = max(wl.size - ncomp - 3, 1)
@@ -897,25 +1011,30 @@ def _measure_bins(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: 
     """
     rows: list[dict[str, Any]] = []
     centroids = feature_centroids()
+    feats = [(label, species, lo_b, hi_b, centroids[label][1]) for label, species, lo_b, hi_b in FEATURES_NM
+             if label in centroids and wl_range_nm[0] <= centroids[label][1] <= wl_range_nm[1]]
+    if not feats:
+        return rows
+    labs = np.array([f[4] for f in feats])
     # line width in px: PSF, pixel (1/12 px^2) and the bilinear sampling (1/6 px^2)
     width_px = math.sqrt(max(psf_px, 0.5) ** 2 + 0.25)
     for group in _frame_bins(cuts, n_bins):
         x0 = float(np.mean([c.x0_px for c in group]))
         y0 = float(np.mean([c.y0_px for c in group]))
-        for label, species, lo_b, hi_b in FEATURES_NM:
-            if label not in centroids:
-                continue
-            lab = centroids[label][1]
-            if not wl_range_nm[0] <= lab <= wl_range_nm[1]:
-                continue
-            disp = float(geometry.dispersion_nm_per_px(x0, y0, lab, order))
+        xg = np.array([c.x0_px for c in group])
+        yg = np.array([c.y0_px for c in group])
+        sdx = np.array([c.streak_dx_px for c in group])
+        sdy = np.array([c.streak_dy_px for c in group])
+        # the geometry at every feature's wavelength at once (the same numbers as one by one)
+        disp_all = geometry.dispersion_nm_per_px(x0, y0, labs, order)
+        tx_all, ty_all = geometry.direction(xg[:, None], yg[:, None], labs[None, :], order)
+        setup = []
+        for j, (label, species, lo_b, hi_b, lab) in enumerate(feats):
+            disp = float(disp_all[j])
             if not np.isfinite(disp):
                 continue
             # streak of each frame along and across the spectrum at this wavelength
-            tx, ty = geometry.direction(np.array([c.x0_px for c in group]), np.array([c.y0_px for c in group]),
-                                        lab, order)
-            sdx = np.array([c.streak_dx_px for c in group])
-            sdy = np.array([c.streak_dy_px for c in group])
+            tx, ty = tx_all[:, j], ty_all[:, j]
             along = np.abs(sdx * tx + sdy * ty)
             across = np.abs(-sdx * ty + sdy * tx)
             if not np.all(np.isfinite(along)):
@@ -931,7 +1050,16 @@ def _measure_bins(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: 
                 continue
             step_nm = max(disp / 2, 0.05)
             wl = np.arange(lo, hi + 1e-9, step_nm)
-            flux, var = _band_sum(group, geometry, wl, offs, order)
+            setup.append((species, lab, box_nm, sigma_nm, half, offs, comps, wl))
+        if not setup:
+            continue
+        # every feature's curve samples at once (the same numbers as one feature at a time)
+        all_curves = _curves(geometry, group, np.concatenate([f[-1] for f in setup]), order)
+        ends = np.cumsum([f[-1].size for f in setup])
+        pending = []
+        for (species, lab, box_nm, sigma_nm, half, offs, comps, wl), end in zip(setup, ends):
+            curves = tuple(c[:, end - wl.size:end] for c in all_curves)
+            flux, var = _band_sum(group, geometry, wl, offs, order, curves=curves)
             if flux.size == 0 or np.isnan(flux).mean() > 0.3:
                 continue
             # samples half a pixel apart share noise: errors per sample inflated by sqrt(2)
@@ -942,36 +1070,56 @@ def _measure_bins(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: 
             if snr < min_snr or not np.isfinite(shift_err):
                 continue
             # floor: template mismatch of ~1/20 of the line width
-            row = _measured_row(group, geometry, wl, half, order, event=event, x0_px=x0, y0_px=y0, lab_nm=lab,
-                                shift_nm=shift, shift_err_nm=shift_err, species=species, snr=snr,
-                                width_px=width_px, box_nm=box_nm, floor=0.05)
-            if row is not None:
-                rows.append(row)
+            pending.append(_measured_row(group, geometry, wl, half, order, curves=curves, event=event, x0_px=x0,
+                                         y0_px=y0, lab_nm=lab, shift_nm=shift, shift_err_nm=shift_err,
+                                         species=species, snr=snr, width_px=width_px, box_nm=box_nm, floor=0.05))
+        rows += _place_rows(pending, geometry, x0, y0, order)
     return rows
 
 
 def _measured_row(group: list[_FrameCut], geometry: SpectralGeometry, wl: NDArray, half: float, order: int, *,
+                  curves: tuple[NDArray, ...] | None = None,
                   event: str, x0_px: float, y0_px: float, lab_nm: float, shift_nm: float, shift_err_nm: float,
-                  species: str, snr: float, width_px: float, box_nm: float, floor: float) -> dict | None:
-    """One measured position on the sensor (``None`` where the geometry gives no finite pixel).
+                  species: str, snr: float, width_px: float, box_nm: float, floor: float) -> dict:
+    """One measured position, to be placed on the sensor by :func:`_place_rows`.
 
     The feature sits at ``lab_nm + shift_nm`` along the predicted curve and at the light's
     cross-dispersion centroid across it; its error along the curve is the fit's, plus a floor
     of ``floor`` times the effective line width (streak box and cross width) for template mismatch.
     """
-    cross, cross_err = _cross_centroid(group, geometry, wl, half, order)
-    lam_meas = lab_nm + shift_nm
-    xm, ym = geometry.spectrum_pixel(x0_px, y0_px, lam_meas, order)
-    txm, tym = geometry.direction(x0_px, y0_px, lam_meas, order)
-    dm = float(geometry.dispersion_nm_per_px(x0_px, y0_px, lam_meas, order))
-    if not np.all(np.isfinite([xm, ym, txm, tym, dm])):
-        return None
-    eff_px = math.hypot(width_px, box_nm / dm / math.sqrt(12))
-    return dict(event=event, frame=group[0].position, x0_px=x0_px, y0_px=y0_px,
-                x_px=float(xm - cross * tym), y_px=float(ym + cross * txm), lab_nm=lab_nm,
-                species=species, tangent_x=float(txm), tangent_y=float(tym),
-                sigma_along_px=math.hypot(shift_err_nm / dm, floor * eff_px),
-                sigma_cross_px=math.hypot(cross_err, 0.05 * width_px), snr=snr)
+    cross, cross_err = _cross_centroid(group, geometry, wl, half, order, curves=curves)
+    return dict(event=event, frame=group[0].position, x0_px=x0_px, y0_px=y0_px, lab_nm=lab_nm, species=species,
+                snr=snr, _lam=lab_nm + shift_nm, _cross=cross, _cross_err=cross_err, _shift_err=shift_err_nm,
+                _floor=floor, _box=box_nm, _width=width_px)
+
+
+def _place_rows(pending: list[dict], geometry: SpectralGeometry, x0_px: float, y0_px: float,
+                order: int) -> list[dict[str, Any]]:
+    """Finish the rows of one bin of frames (zeroth order ``x0_px, y0_px``) from :func:`_measured_row`.
+
+    The curve's pixel, tangent and dispersion at every measured wavelength are evaluated at
+    once (element by element the same numbers as one at a time); rows where the geometry
+    gives no finite pixel are dropped.
+    """
+    if not pending:
+        return []
+    lam = np.array([p["_lam"] for p in pending])
+    xs, ys = geometry.spectrum_pixel(x0_px, y0_px, lam, order)
+    txs, tys = geometry.direction(x0_px, y0_px, lam, order)
+    dms = geometry.dispersion_nm_per_px(x0_px, y0_px, lam, order)
+    rows = []
+    for j, p in enumerate(pending):
+        xm, ym, txm, tym, dm = xs[j], ys[j], txs[j], tys[j], float(dms[j])
+        if not np.all(np.isfinite([xm, ym, txm, tym, dm])):
+            continue
+        cross, width_px = p["_cross"], p["_width"]
+        eff_px = math.hypot(width_px, p["_box"] / dm / math.sqrt(12))
+        rows.append(dict(event=p["event"], frame=p["frame"], x0_px=p["x0_px"], y0_px=p["y0_px"],
+                         x_px=float(xm - cross * tym), y_px=float(ym + cross * txm), lab_nm=p["lab_nm"],
+                         species=p["species"], tangent_x=float(txm), tangent_y=float(tym),
+                         sigma_along_px=math.hypot(p["_shift_err"] / dm, p["_floor"] * eff_px),
+                         sigma_cross_px=math.hypot(p["_cross_err"], 0.05 * width_px), snr=p["snr"]))
+    return rows
 
 
 def _window_edges(geometry: SpectralGeometry, x0_px: float, y0_px: float, *, wl_range_nm: tuple[float, float],
@@ -1045,10 +1193,14 @@ def _measure_windows(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_p
         xg = np.array([c.x0_px for c in group])
         yg = np.array([c.y0_px for c in group])
         setup = []
-        for lo_w, hi_w in edges:
-            centre = 0.5 * (lo_w + hi_w)
-            disp = float(geometry.dispersion_nm_per_px(x0, y0, centre, order))
-            tx, ty = geometry.direction(xg, yg, centre, order)
+        # the geometry at every window's centre at once (the same numbers as one by one)
+        centres = np.array([0.5 * (lo_w + hi_w) for lo_w, hi_w in edges])
+        disp_all = geometry.dispersion_nm_per_px(x0, y0, centres, order) if edges else centres
+        tx_all, ty_all = (geometry.direction(xg[:, None], yg[:, None], centres[None, :], order) if edges
+                          else (centres, centres))
+        for j, (lo_w, hi_w) in enumerate(edges):
+            disp = float(disp_all[j])
+            tx, ty = tx_all[:, j], ty_all[:, j]
             along = np.abs(sdx * tx + sdy * ty)
             across = np.abs(-sdx * ty + sdy * tx)
             if not (np.isfinite(disp) and np.all(np.isfinite(along))):
@@ -1064,8 +1216,10 @@ def _measure_windows(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_p
         wl_all = np.arange(setup[0][0], setup[-1][1] + step, step)
         # per frame (n_frames, n_wl), NaN where a sample is saturated or off the sensor
         curves = _curves(geometry, group, wl_all, order)
-        f_all = np.array([np.sum(b, axis=0) for b in _sample_curves(group, curves, offs)])
-        v_all = np.array([np.sum(b**2, axis=0) for b in _sample_curves(group, curves, offs, sigma=True)])
+        bands, noise = _sample_curves_both(group, curves, offs)
+        f_all = np.array([np.sum(b, axis=0) for b in bands])
+        v_all = np.array([np.sum(b**2, axis=0) for b in noise])
+        pending = []
         for lo_w, hi_w, disp, box_nm, _ in setup:
             sigma_nm = width_px * disp
             reach = max_shift_nm + 3.0 * sigma_nm + 0.5 * box_nm
@@ -1091,26 +1245,28 @@ def _measure_windows(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_p
             shift, shift_err, snr = fit
             if snr < min_snr or not np.isfinite(shift_err):
                 continue
-            row = _measured_row(group, geometry, wl, half, order, event=event, x0_px=x0, y0_px=y0,
-                                lab_nm=_window_reference_nm(lo_w, hi_w), shift_nm=shift, shift_err_nm=shift_err,
-                                species=f"blend {lo_w:.0f}-{hi_w:.0f}", snr=snr, width_px=width_px,
-                                box_nm=box_nm, floor=window_floor)
-            if row is not None:
-                rows.append(row)
+            pending.append(_measured_row(group, geometry, wl, half, order, curves=tuple(c[:, sel] for c in curves),
+                                         event=event, x0_px=x0, y0_px=y0, lab_nm=_window_reference_nm(lo_w, hi_w),
+                                         shift_nm=shift, shift_err_nm=shift_err,
+                                         species=f"blend {lo_w:.0f}-{hi_w:.0f}", snr=snr, width_px=width_px,
+                                         box_nm=box_nm, floor=window_floor))
+        rows += _place_rows(pending, geometry, x0, y0, order)
     return rows
 
 
 def _band_sum(group: list[_FrameCut], geometry: SpectralGeometry, wl: NDArray, offs: NDArray,
-              order: int, *, max_bad_frac: float = 0.1) -> tuple[NDArray, NDArray]:
+              order: int, *, max_bad_frac: float = 0.1,
+              curves: tuple[NDArray, ...] | None = None) -> tuple[NDArray, NDArray]:
     """Sum over a bin's frames and the offsets across the curve: ``(flux, variance)`` per sample.
 
     A frame with more than ``max_bad_frac`` of its samples saturated or off the sensor adds
     nothing but holes and is left out; samples where a used frame has a hole are NaN. Both
-    arrays are empty when no frame is usable.
+    arrays are empty when no frame is usable. ``curves``: :func:`_curves` of ``geometry``,
+    ``group`` and ``wl`` when the caller has them already.
     """
-    curves = _curves(geometry, group, wl, order)
-    bands = _sample_curves(group, curves, offs)
-    noise = _sample_curves(group, curves, offs, sigma=True)
+    if curves is None:
+        curves = _curves(geometry, group, wl, order)
+    bands, noise = _sample_curves_both(group, curves, offs)
     bad = np.zeros(wl.size, bool)
     flux = np.zeros(wl.size)
     var = np.zeros(wl.size)
@@ -1129,13 +1285,18 @@ def _band_sum(group: list[_FrameCut], geometry: SpectralGeometry, wl: NDArray, o
 
 
 def _cross_centroid(group: list[_FrameCut], geometry: SpectralGeometry, wl: NDArray, half: float,
-                    order: int) -> tuple[float, float]:
-    """Light centroid across the spectrum (px, along the turned tangent) over a window; inf error if none."""
+                    order: int, *, curves: tuple[NDArray, ...] | None = None) -> tuple[float, float]:
+    """Light centroid across the spectrum (px, along the turned tangent) over a window; inf error if none.
+
+    ``curves``: :func:`_curves` of ``geometry``, ``group`` and ``wl`` when the caller has them.
+    """
     coffs = np.arange(-half - 3.0, half + 3.01, 0.5)
-    sub = tuple(c[:, ::2] for c in _curves(geometry, group, wl, order))
+    if curves is None:
+        curves = _curves(geometry, group, wl, order)
+    sub = tuple(c[:, ::2] for c in curves)
     prof = np.zeros(coffs.size)
     prof_var = np.zeros(coffs.size)
-    for cb, cn in zip(_sample_curves(group, sub, coffs), _sample_curves(group, sub, coffs, sigma=True)):
+    for cb, cn in zip(*_sample_curves_both(group, sub, coffs)):
         prof += np.nansum(cb, axis=1)
         prof_var += np.nansum(cn**2, axis=1)
     c = prof - np.median(np.concatenate([prof[:4], prof[-4:]]))
@@ -1387,16 +1548,40 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
     """
     if whole_spectrum not in ("fallback", "off", "always"):
         raise ValueError(f"whole_spectrum must be 'fallback', 'off' or 'always', got {whole_spectrum!r}")
-    kwargs = dict(camera=camera, fit_lens=fit_lens, order=order, min_lines=min_lines, max_frames=max_frames,
-                  n_bins=n_bins, angle_range_deg=angle_range_deg, tilt_range_deg=tilt_range_deg,
-                  grooves_range_frac=grooves_range_frac, max_rms_nm=max_rms_nm, psf_sigma_px=psf_sigma_px,
+    # one lens memo per event: every trial geometry maps the same zeroth-order pixels
+    # (:class:`_MemoLens`; results unchanged to the last bit); plain lens again on the way out
+    station = _memo_geometry(station_geometry)
+    # the frames' cut-outs once for both methods
+    psf, cuts = _psf_and_cuts(frames, background, track, psf_sigma_px=psf_sigma_px, max_frames=max_frames,
+                              camera=camera)
+    kwargs = dict(fit_lens=fit_lens, order=order, min_lines=min_lines, n_bins=n_bins,
+                  angle_range_deg=angle_range_deg, tilt_range_deg=tilt_range_deg,
+                  grooves_range_frac=grooves_range_frac, max_rms_nm=max_rms_nm,
                   max_dispersion_nm_per_px=max_dispersion_nm_per_px, min_lines_tilt=min_lines_tilt,
                   method=method, window_px=window_px, min_snr_window=min_snr_window,
                   windows_tilt_max_nm_per_px=windows_tilt_max_nm_per_px, event=event)
+    sol = _calibrate(cuts, psf, track, station, whole_spectrum=whole_spectrum, response=response,
+                     max_halves_nm=max_halves_nm, whole_spectrum_tilt=whole_spectrum_tilt,
+                     whole_spectrum_min_nm_per_px=whole_spectrum_min_nm_per_px,
+                     whole_spectrum_tilt_sigma_deg=whole_spectrum_tilt_sigma_deg,
+                     whole_spectrum_max_tilt_err_deg=whole_spectrum_max_tilt_err_deg, **kwargs)
+    return dataclasses.replace(sol, geometry=_plain_geometry(sol.geometry))
+
+
+def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: SpectralGeometry, *,
+               whole_spectrum: str, response: ResponseCurve | None, max_halves_nm: float,
+               whole_spectrum_tilt: bool, whole_spectrum_min_nm_per_px: float,
+               whole_spectrum_tilt_sigma_deg: float | None, whole_spectrum_max_tilt_err_deg: float,
+               angle_range_deg: float, grooves_range_frac: float, order: int, event: str,
+               **kwargs: Any) -> WavelengthSolution:
+    """:func:`calibrate_event` on the frames' cut-outs (the features, then the whole spectrum)."""
+    coarse: dict[str, Any] = {}  # the coarse search, shared by both methods (same inputs, same result)
     if whole_spectrum == "always":
         sol = None
     else:
-        sol = _calibrate_features(frames, background, track, station_geometry, **kwargs)
+        sol = _calibrate_features(cuts, psf, station_geometry, angle_range_deg=angle_range_deg,
+                                  grooves_range_frac=grooves_range_frac, order=order, event=event,
+                                  coarse=coarse, **kwargs)
         if whole_spectrum == "off" or sol.source == "event" or response is None:
             # without the response the blends' shapes are wrong enough to bias the stretch
             return sol
@@ -1411,13 +1596,12 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
             disp = float(station_geometry.dispersion_nm_per_px(x[k], y[k], 589.0, order))
             if not (np.isfinite(disp) and disp > whole_spectrum_min_nm_per_px):
                 return sol
-    psf, cuts = _psf_and_cuts(frames, background, track, psf_sigma_px=psf_sigma_px, max_frames=max_frames,
-                              camera=camera)
     new, flag = _whole_spectrum_solution(cuts, station_geometry, psf_px=psf, order=order, response=response,
                                          angle_range_deg=angle_range_deg, grooves_range_frac=grooves_range_frac,
                                          max_halves_nm=max_halves_nm, fit_tilt=whole_spectrum_tilt,
                                          tilt_sigma_deg=whole_spectrum_tilt_sigma_deg, event=event,
-                                         max_tilt_err_deg=whole_spectrum_max_tilt_err_deg)
+                                         max_tilt_err_deg=whole_spectrum_max_tilt_err_deg,
+                                         starts=coarse.get("starts"))
     if new is not None:
         return new
     if sol is None:
@@ -1441,15 +1625,22 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
                              order: int, response: ResponseCurve | None, angle_range_deg: float,
                              grooves_range_frac: float, max_halves_nm: float, fit_tilt: bool = True,
                              n_starts: int = 3, tilt_sigma_deg: float | None = None, event: str = "",
-                             max_tilt_err_deg: float = math.inf) -> tuple[WavelengthSolution | None, str]:
-    """The whole-spectrum fit (:mod:`meteorspec.calfit`) from the coarse search, validated."""
+                             max_tilt_err_deg: float = math.inf,
+                             starts: list[SpectralGeometry] | None = None) -> tuple[WavelengthSolution | None, str]:
+    """The whole-spectrum fit (:mod:`meteorspec.calfit`) from the coarse search, validated.
+
+    ``starts``: the coarse search's stretches when already found (they do not depend on the tilt
+    being free or held).
+    """
     from .calfit import fit_spectrum_geometry, spectrum_chi2, wavelength_disagreement_nm
 
     if len(cuts) < 2:
         return None, "calibration_few_lines"
-    geo = _search_curve(station_geometry, cuts, angle_range_deg=angle_range_deg, tilt_range_deg=0.0,
-                        psf_px=psf_px, order=order)
-    cands = _search_grooves(geo, cuts, range_frac=grooves_range_frac, psf_px=psf_px, order=order)[:n_starts]
+    if starts is None:
+        geo = _search_curve(station_geometry, cuts, angle_range_deg=angle_range_deg, tilt_range_deg=0.0,
+                            psf_px=psf_px, order=order)
+        starts = _search_grooves(geo, cuts, range_frac=grooves_range_frac, psf_px=psf_px, order=order)
+    cands = starts[:n_starts]
     fit_tilt = fit_tilt and len(cuts) >= 3
     fits = [fit_spectrum_geometry(cuts, c, psf_px=psf_px, prior=station_geometry, fit_tilt=fit_tilt, order=order,
                                   rounds=1, max_nfev=30, response=response, tilt_sigma_deg=tilt_sigma_deg)
@@ -1469,7 +1660,7 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
         return _whole_spectrum_solution(cuts, station_geometry, psf_px=psf_px, order=order, response=response,
                                         angle_range_deg=angle_range_deg, grooves_range_frac=grooves_range_frac,
                                         max_halves_nm=max_halves_nm, fit_tilt=False, n_starts=n_starts,
-                                        tilt_sigma_deg=tilt_sigma_deg, event=event)
+                                        tilt_sigma_deg=tilt_sigma_deg, event=event, starts=starts)
     scale = max(1.0, best.reduced_chi2)
     _log.debug("whole-spectrum fit: chi2/n %.3f n %d line_chi2 %.0f errors %s tilt err %.3f; starts chi2 %s",
                best.reduced_chi2, best.n_data, best.line_chi2, best.errors, best.tilt_err_deg,
@@ -1590,15 +1781,17 @@ def _psf_and_cuts(frames: Sequence, background: Any, track: Any, *, psf_sigma_px
     return psf, cuts
 
 
-def _calibrate_features(frames: Sequence, background: Any, track: Any, station_geometry: SpectralGeometry, *,
-                        camera: Camera | None, fit_lens: bool, order: int, min_lines: int, max_frames: int,
-                        n_bins: int, angle_range_deg: float, tilt_range_deg: float, grooves_range_frac: float,
-                        max_rms_nm: float, psf_sigma_px: float | None, max_dispersion_nm_per_px: float | None,
-                        min_lines_tilt: int, method: str, window_px: float, min_snr_window: float | None,
-                        windows_tilt_max_nm_per_px: float, event: str) -> WavelengthSolution:
-    """The feature and blend-window method of :func:`calibrate_event` (module notes, steps 1-5)."""
-    psf, cuts = _psf_and_cuts(frames, background, track, psf_sigma_px=psf_sigma_px, max_frames=max_frames,
-                              camera=camera)
+def _calibrate_features(cuts: list[_FrameCut], psf: float, station_geometry: SpectralGeometry, *,
+                        fit_lens: bool, order: int, min_lines: int, n_bins: int, angle_range_deg: float,
+                        tilt_range_deg: float, grooves_range_frac: float, max_rms_nm: float,
+                        max_dispersion_nm_per_px: float | None, min_lines_tilt: int, method: str,
+                        window_px: float, min_snr_window: float | None, windows_tilt_max_nm_per_px: float,
+                        event: str, coarse: dict[str, Any] | None = None) -> WavelengthSolution:
+    """The feature and blend-window method of :func:`calibrate_event` (module notes, steps 1-5).
+
+    ``coarse``: when given, the stretch candidates of the coarse search are stored in it
+    (``"starts"``) if the search held the tilt, as the whole-spectrum fit's does.
+    """
     if not cuts:
         return station_solution(station_geometry, flags=("calibration_few_lines",))
     mid = cuts[len(cuts) // 2]
@@ -1608,6 +1801,8 @@ def _calibrate_features(frames: Sequence, background: Any, track: Any, station_g
     geo = _search_curve(station_geometry, cuts, angle_range_deg=angle_range_deg, tilt_range_deg=tilt_range_deg,
                         psf_px=psf, order=order)
     cands = _search_grooves(geo, cuts, range_frac=grooves_range_frac, psf_px=psf, order=order)
+    if coarse is not None and tilt_range_deg == 0:
+        coarse["starts"] = cands
     # the stretch candidates are judged on the isolated features only: blend windows can line
     # a wrong stretch up window by window (seen on the seeded bench, a -2.7 % candidate won)
     scored = [(_candidate_score(g, cuts, psf_px=psf, order=order), -k) for k, g in enumerate(cands)]

@@ -160,6 +160,7 @@ def test_calibrate_event_from_wrong_station_values(dg, da, dt):
                                 dispersion_angle_deg=g.dispersion_angle_deg + da, tilt_deg=g.tilt_deg + dt)
     sol = calibrate_event(frames, _FlatBackground(1.0), track, station, n_bins=4)  # 4 bins: test time
     assert sol.source == "event", sol.flags
+    assert type(sol.geometry.lens) is LensModel  # the internal direction memo does not leave the module
     assert abs(sol.values["grooves_per_mm"] / 600.0 - 1) < 0.003
     assert abs(sol.values["dispersion_angle_deg"] - 4.0) < 0.3
     assert sol.n_lines >= 3 and np.isfinite(sol.rms_nm)
@@ -378,3 +379,33 @@ def test_fit_holds_tilt_when_asked():
     assert_allclose(fit.values["tilt_deg"], 1.3, atol=1e-3)
     assert_allclose(fit.values["tilt_azimuth_deg"], 120.0, atol=1e-3)
     assert abs(fit.values["grooves_per_mm"] / 600.0 - 1) < 0.01  # the 0.5 deg tilt error costs < 1 %
+
+
+def test_interp_columns_is_numpy_interp_bit_for_bit():
+    # the line-window fit interpolates all its component profiles at once; it must give exactly
+    # numpy.interp's numbers (reference: numpy), so that the speed-up changes no result
+    from meteorspec.calibrate import _interp_columns
+    rng = np.random.default_rng(3)
+    for _ in range(20):
+        xp = np.arange(rng.uniform(300.0, 400.0), 450.0, rng.uniform(0.01, 0.2))
+        table = rng.normal(size=(xp.size, 6)) * rng.uniform(1e-3, 1e3)
+        x = np.sort(rng.uniform(xp[0] - 1.0, xp[-1] + 1.0, 200))
+        x[:3] = xp[[0, 7, -1]]  # nodes and both ends exactly
+        shifts = rng.normal(size=5)
+        ref = np.stack([np.stack([np.interp(x - s, xp, table[:, i]) for i in range(6)], axis=1) for s in shifts])
+        np.testing.assert_array_equal(_interp_columns(x[None, :] - shifts[:, None], xp, table), ref)
+
+
+def test_memo_lens_gives_the_lens_directions():
+    # calibrate_event remembers zeroth-order directions; they must be the lens's own, for scalars,
+    # arrays of any shape, repeated and interleaved calls (reference: LensModel.pixel_to_direction)
+    from meteorspec.calibrate import _memo_geometry, _plain_geometry
+    memo = _memo_geometry(ALLSKY)
+    assert memo.lens != ALLSKY.lens and _plain_geometry(memo) == ALLSKY
+    rng = np.random.default_rng(4)
+    xa, ya = rng.uniform(100, 900, (7, 1)), rng.uniform(100, 900, (7, 1))
+    for x, y in [(300.0, 400.0), (xa, ya), (xa, ya), (xa[:, 0], ya[:, 0]), (300.0, 400.0), (xa, ya)]:
+        np.testing.assert_array_equal(memo.lens.pixel_to_direction(x, y), ALLSKY.lens.pixel_to_direction(x, y))
+    lam = np.linspace(380.0, 880.0, 9)
+    for got, want in zip(memo.spectrum_pixel(xa, ya, lam[None, :]), ALLSKY.spectrum_pixel(xa, ya, lam[None, :])):
+        np.testing.assert_array_equal(got, want)

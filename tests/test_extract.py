@@ -22,6 +22,7 @@ from meteorspec.config import Camera
 from meteorspec.extract import FrameSpectra, Spectrum, default_wavelength_grid, extract_spectra
 from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
 from meteorspec.video import Frame
+from test_flux_ratio import _truth_track  # the simulator's positions and light curve as a track
 
 # --------------------------------------------------------------------------- helpers
 
@@ -351,20 +352,6 @@ def test_saturated_bins_stay_masked_without_unsaturated_cross_sections():
     assert not fs.recovered.any()
     for lam in (500.0, 589.0, 700.0):
         assert fs.mask[:, np.abs(fs.wavelength_nm - lam) < 2.0].all()
-
-
-def _truth_track(rendered):
-    """The simulator's mid-exposure zeroth-order positions and light curve as a track."""
-    energy = np.array([t.emitted_energy_adu for t in rendered.truths], float)
-    lum = energy > 0
-    t = np.array([t.time_s for t in rendered.truths], float)
-    x = np.where(lum, [tr.x_mid_px for tr in rendered.truths], np.nan)
-    y = np.where(lum, [tr.y_mid_px for tr in rendered.truths], np.nan)
-
-    def position(time_s):
-        return np.interp(time_s, t[lum], x[lum]), np.interp(time_s, t[lum], y[lum])
-
-    return SimpleNamespace(time_s=t, x_px=x, y_px=y, flux_adu=energy / energy.sum(), position=position)
 
 
 def test_saturated_na_core_of_a_simulated_event_recovered_against_its_noise_free_frames():

@@ -89,6 +89,19 @@ def _dot(a: NDArray[np.float64], b: NDArray[np.float64]) -> NDArray[np.float64]:
     return np.sum(a * b, axis=-1)
 
 
+def _unit_components(x: NDArray[np.float64], y: NDArray[np.float64],
+                     z: NDArray[np.float64]) -> tuple[NDArray[np.float64], ...]:
+    """:func:`_normalise` on a vector held as its three components.
+
+    The curve evaluations work on separate component arrays (no reductions
+    over a length-3 axis). ``(x*x + y*y) + z*z`` is the order numpy's sum over
+    the last axis takes, so the result is :func:`_normalise`'s to the last bit
+    (checked in tests/test_optics.py).
+    """
+    norm = np.sqrt(x * x + y * y + z * z)
+    return x / norm, y / norm, z / norm
+
+
 @dataclass(frozen=True)
 class LensModel:
     """Direction <-> pixel mapping of contract section 2.1.
@@ -197,13 +210,19 @@ class LensModel:
         x_px, y_px : ndarray of shape (...)
             NaN where the direction lies beyond :attr:`theta_max_rad`.
         """
-        u = _normalise(np.asarray(u, dtype=float))
-        rho = np.hypot(u[..., 0], u[..., 1])
-        theta = np.arctan2(rho, u[..., 2])  # better conditioned than arccos near the axis
+        u = np.asarray(u, dtype=float)
+        return self._components_to_pixel(u[..., 0], u[..., 1], u[..., 2])
+
+    def _components_to_pixel(self, x: NDArray[np.float64], y: NDArray[np.float64],
+                             z: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """:meth:`direction_to_pixel` for a direction given as three component arrays."""
+        ux, uy, uz = _unit_components(x, y, z)
+        rho = np.hypot(ux, uy)
+        theta = np.arctan2(rho, uz)  # better conditioned than arccos near the axis
         r = self.radius_px(np.where(theta <= self.theta_max_rad, theta, np.nan))
         with np.errstate(invalid="ignore", divide="ignore"):
-            cos_phi = np.where(rho > 0, u[..., 0] / rho, 1.0)
-            sin_phi = np.where(rho > 0, u[..., 1] / rho, 0.0)
+            cos_phi = np.where(rho > 0, ux / rho, 1.0)
+            sin_phi = np.where(rho > 0, uy / rho, 0.0)
         return self.cx + r * cos_phi, self.cy + r * sin_phi
 
     def pixel_to_direction(self, x_px: ArrayLike, y_px: ArrayLike) -> NDArray[np.float64]:
@@ -257,12 +276,6 @@ class GratingModel:
         n = self.normal
         return _normalise(q0 - np.dot(q0, n) * n)
 
-    def _shift(self, wavelength_nm: ArrayLike, order: ArrayLike) -> NDArray[np.float64]:
-        lam = np.asarray(wavelength_nm, dtype=float)
-        m = np.asarray(order, dtype=float)
-        # m * lambda / d with lambda in mm: the tangential direction-cosine step of one order.
-        return (m * lam * 1e-6 * self.grooves_per_mm)[..., None] * self.groove_vector
-
     def diffract(self, u: ArrayLike, wavelength_nm: ArrayLike, order: ArrayLike = 1) -> NDArray[np.float64]:
         """Direction ``u'`` of order ``order`` at ``wavelength_nm`` for a source seen at ``u``.
 
@@ -274,14 +287,36 @@ class GratingModel:
         Returns NaN where ``|u'_t| >= 1`` (evanescent) or where ``u`` lies
         behind the grating plane.
         """
-        u = _normalise(np.asarray(u, dtype=float))
+        return np.stack(self._diffract_split(*self._split(u), wavelength_nm, order), axis=-1)
+
+    def _split(self, u: ArrayLike) -> tuple[tuple[NDArray[np.float64], ...], NDArray[np.float64]]:
+        """Tangential part ``u_t`` (three component arrays) and normal component ``u.n`` of the unit ``u``.
+
+        They depend only on the source direction, so a caller evaluating many
+        wavelengths for the same sources computes them once.
+        """
+        u = np.asarray(u, dtype=float)
+        ux, uy, uz = _unit_components(u[..., 0], u[..., 1], u[..., 2])
         n = self.normal
-        un = _dot(u, n)
-        w_t = (u - un[..., None] * n) + self._shift(wavelength_nm, order)
-        w2 = _dot(w_t, w_t)
+        un = ux * n[0] + uy * n[1] + uz * n[2]  # _dot's order
+        return (ux - un * n[0], uy - un * n[1], uz - un * n[2]), un
+
+    def _diffract_split(self, u_t: tuple[NDArray[np.float64], ...], un: NDArray[np.float64],
+                        wavelength_nm: ArrayLike, order: ArrayLike) -> tuple[NDArray[np.float64], ...]:
+        """:meth:`diffract` from :meth:`_split`'s parts, as three component arrays.
+
+        Broadcasts the parts against ``wavelength_nm``.
+        """
+        n, q = self.normal, self.groove_vector
+        lam = np.asarray(wavelength_nm, dtype=float)
+        m = np.asarray(order, dtype=float)
+        # m * lambda / d with lambda in mm: the tangential direction-cosine step of one order.
+        shift = m * lam * 1e-6 * self.grooves_per_mm
+        wx, wy, wz = u_t[0] + shift * q[0], u_t[1] + shift * q[1], u_t[2] + shift * q[2]
+        w2 = wx * wx + wy * wy + wz * wz  # _dot's order
         ok = (w2 < 1.0) & (un > 0)
         nz = np.sqrt(np.where(ok, 1.0 - w2, np.nan))
-        return w_t + nz[..., None] * n
+        return wx + nz * n[0], wy + nz * n[1], wz + nz * n[2]
 
     def undiffract(self, u_prime: ArrayLike, wavelength_nm: ArrayLike, order: ArrayLike = 1) -> NDArray[np.float64]:
         """Inverse of :meth:`diffract`: the zeroth-order direction whose order ``order`` lands at ``u_prime``."""
@@ -347,10 +382,35 @@ class SpectralGeometry:
         Order 0 returns the zeroth-order pixel itself. NaN where the light does
         not reach the sensor plane (evanescent order, beyond the lens field).
         """
-        u = self.lens.pixel_to_direction(x0_px, y0_px)
-        lam = np.asarray(wavelength_nm, dtype=float)
-        u, lam = np.broadcast_arrays(u, lam[..., None])
-        return self.lens.direction_to_pixel(self.grating.diffract(u, lam[..., 0], order))
+        u_t, un = self._source(x0_px, y0_px)
+        return self._curve(u_t, un, np.asarray(wavelength_nm, dtype=float), order)
+
+    def _source(self, x0_px: ArrayLike,
+                y0_px: ArrayLike) -> tuple[tuple[NDArray[np.float64], ...], NDArray[np.float64]]:
+        """Per-source invariants of the curve: tangential part and normal component of the
+        zeroth-order direction (:meth:`GratingModel._split`), computed once per call."""
+        return self.grating._split(self.lens.pixel_to_direction(x0_px, y0_px))
+
+    def _curve(self, u_t: tuple[NDArray[np.float64], ...], un: NDArray[np.float64], lam: NDArray[np.float64],
+               order: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """Curve pixels at wavelengths ``lam`` from :meth:`_source`'s parts.
+
+        ``lam`` may carry extra leading axes (several wavelength sets in one
+        vectorised call); every element is computed exactly as alone.
+        """
+        return self.lens._components_to_pixel(*self.grating._diffract_split(u_t, un, lam, order))
+
+    def _curve3(self, u_t: tuple[NDArray[np.float64], ...], un: NDArray[np.float64], lam: NDArray[np.float64],
+                order: int) -> tuple[NDArray[np.float64], ...]:
+        """Curve pixel and central-difference derivative at ``lam`` in one batched evaluation.
+
+        Returns ``(xs, ys, dx, dy)`` equal to :meth:`spectrum_pixel` and
+        :meth:`_derivative` element by element (same arithmetic).
+        """
+        h = self._DLAM_NM
+        lam = np.broadcast_to(lam, np.broadcast_shapes(un.shape, np.shape(lam)))  # stack on a new leading axis
+        x, y = self._curve(u_t, un, np.stack([lam, lam + h, lam - h]), order)
+        return x[0], y[0], (x[1] - x[2]) / (2 * h), (y[1] - y[2]) / (2 * h)
 
     def zeroth_pixel(self, x_px: ArrayLike, y_px: ArrayLike, wavelength_nm: ArrayLike,
                      order: int = 1) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
@@ -368,9 +428,11 @@ class SpectralGeometry:
                     order: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
         lam = np.asarray(wavelength_nm, dtype=float)
         h = self._DLAM_NM
-        xp, yp = self.spectrum_pixel(x0_px, y0_px, lam + h, order)
-        xm, ym = self.spectrum_pixel(x0_px, y0_px, lam - h, order)
-        return (xp - xm) / (2 * h), (yp - ym) / (2 * h)
+        # lambda + h and lambda - h in one vectorised call, the source's direction split once
+        u_t, un = self._source(x0_px, y0_px)
+        lam = np.broadcast_to(lam, np.broadcast_shapes(un.shape, lam.shape))  # stack on a new leading axis
+        x, y = self._curve(u_t, un, np.stack([lam + h, lam - h]), order)
+        return (x[0] - x[1]) / (2 * h), (y[0] - y[1]) / (2 * h)
 
     def dispersion_nm_per_px(self, x0_px: ArrayLike, y0_px: ArrayLike, wavelength_nm: ArrayLike,
                              order: int = 1) -> NDArray[np.float64]:
@@ -413,6 +475,7 @@ class SpectralGeometry:
         then find the nearest point of the curve for pixels beside it.
         """
         u0 = self.lens.pixel_to_direction(x0_px, y0_px)
+        u_t, un = self.grating._split(u0)  # before broadcasting: one split per source
         u1 = self.lens.pixel_to_direction(x_px, y_px)
         u0, u1 = np.broadcast_arrays(u0, u1)
         n, q = self.grating.normal, self.grating.groove_vector
@@ -420,11 +483,13 @@ class SpectralGeometry:
         lam = step / (order * 1e-6 * self.grating.grooves_per_mm)
         x = np.broadcast_to(np.asarray(x_px, dtype=float), lam.shape)
         y = np.broadcast_to(np.asarray(y_px, dtype=float), lam.shape)
+        # the source's direction split once for the whole solve; each step evaluates
+        # lambda, lambda + h and lambda - h in one batched call
         for _ in range(iterations):
-            xs, ys = self.spectrum_pixel(x0_px, y0_px, lam, order)
-            dx, dy = self._derivative(x0_px, y0_px, lam, order)
+            xs, ys, dx, dy = self._curve3(u_t, un, lam, order)
             lam = lam + ((x - xs) * dx + (y - ys) * dy) / (dx * dx + dy * dy)
-        xs, ys = self.spectrum_pixel(x0_px, y0_px, lam, order)
-        tx, ty = self.direction(x0_px, y0_px, lam, order)
+        xs, ys, dx, dy = self._curve3(u_t, un, lam, order)
+        norm = np.hypot(dx, dy)
+        tx, ty = dx / norm, dy / norm
         offset = (x - xs) * (-ty) + (y - ys) * tx
         return lam, offset

@@ -218,3 +218,48 @@ def test_invalid_lens_values_rejected():
         LensModel("fisheye", 100.0, 0.0, 0.0)
     with pytest.raises(ValueError, match="focal_px"):
         LensModel("equidistant", 0.0, 0.0, 0.0)
+
+
+def test_component_normalisation_is_the_vector_one_to_the_last_bit():
+    # The curve evaluations normalise directions held as three component arrays; their
+    # results stay bit-identical to the (..., 3) form only if (x*x + y*y) + z*z is the order
+    # numpy's sum over a length-3 last axis takes. Magnitudes over 16 decades expose any
+    # other summation order.
+    from meteorspec.optics import _normalise, _unit_components
+    rng = np.random.default_rng(11)
+    for shape in [(3,), (200, 3), (3, 40, 3), (5, 1, 7, 3)]:
+        v = rng.normal(size=shape) * 10.0 ** rng.integers(-8, 8, size=shape)
+        got = np.stack(_unit_components(v[..., 0], v[..., 1], v[..., 2]), axis=-1)
+        assert np.array_equal(got, _normalise(v))
+
+
+@pytest.mark.parametrize("geo", GEOMETRIES, ids=[g.lens.projection for g in GEOMETRIES])
+def test_locate_equals_newton_on_public_curve_evaluations(geo):
+    # locate batches lambda, lambda + h, lambda - h in one call and splits the source's
+    # direction once; the result must equal, to the last bit, the same Newton steps written
+    # with separate public calls (central difference with the class's step), and every
+    # element must equal its own single-point call (the batching mixes no elements).
+    rng = np.random.default_rng(12)
+    x0 = rng.uniform(100, 700, 40)
+    y0 = rng.uniform(100, 500, 40)
+    xs, ys = geo.spectrum_pixel(x0, y0, rng.uniform(380.0, 850.0, 40))
+    x, y = xs + rng.normal(0, 3, 40), ys + rng.normal(0, 3, 40)
+    h = geo._DLAM_NM
+    lam_ref = geo.locate(x0, y0, x, y, iterations=0)[0]  # the exact start (tested above)
+    for _ in range(4):
+        xc, yc = geo.spectrum_pixel(x0, y0, lam_ref)
+        xp, yp = geo.spectrum_pixel(x0, y0, lam_ref + h)
+        xm, ym = geo.spectrum_pixel(x0, y0, lam_ref - h)
+        dx, dy = (xp - xm) / (2 * h), (yp - ym) / (2 * h)
+        lam_ref = lam_ref + ((x - xc) * dx + (y - yc) * dy) / (dx * dx + dy * dy)
+    xc, yc = geo.spectrum_pixel(x0, y0, lam_ref)
+    tx, ty = geo.direction(x0, y0, lam_ref)
+    off_ref = (x - xc) * (-ty) + (y - yc) * tx
+    lam, off = geo.locate(x0, y0, x, y)
+    assert np.array_equal(lam, lam_ref, equal_nan=True)
+    assert np.array_equal(off, off_ref, equal_nan=True)
+    for k in range(0, 40, 7):
+        one = geo.locate(x0[k], y0[k], x[k], y[k])
+        assert one[0] == lam[k] or np.isnan(lam[k]) and np.isnan(one[0])
+        assert np.array_equal(geo.direction(x0[k], y0[k], lam[k]),
+                              (geo.direction(x0, y0, lam)[0][k], geo.direction(x0, y0, lam)[1][k]), equal_nan=True)

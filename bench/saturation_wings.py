@@ -16,9 +16,9 @@ profile without the cross-sections of the spectrum that hold a saturated pixel (
 otherwise drops out of the mean residual at small offsets while its wings stay in, which widens
 the profile); when that profile is clean, saturated pixels count as lost light and a bin is
 scaled up by ``1 / (1 - lost)`` up to a lost share ``max_saturated_fraction`` (default 0.8);
-otherwise (too few unsaturated cross-sections, e.g. coarse binned cameras, and in the fields of
-interlaced cameras) a bin is masked as soon as its saturated pixels carry 0.1 % of it. The oracle
-(``--oracle``) covers progressive cameras only.
+otherwise (too few unsaturated cross-sections, e.g. coarse binned cameras) a bin is masked as
+soon as its saturated pixels carry 0.1 % of it. The oracle (``--oracle``) covers frames and
+fields.
 
 Settings: ``base`` (the package as it is); ``masked`` (the profile reported not clean, so every
 saturated bin is masked: the rule before wing recovery; it defines the saturated Na frames of
@@ -231,14 +231,19 @@ def oracle_bins(spec, event_dir: Path, stations: Path, setting: str = "base") ->
     pixel's true meteor light. For every lit frame and bin of the ``base`` extraction: the
     profile share of its saturated pixels as the extraction computes it (``s_model``), the true
     share of the bin's light on those pixels (``s_true``), and the boxcar estimate scaled by
-    ``1 / (1 - lost)`` (all bad pixels) over the true bin light. Progressive cameras only
-    (a field's rows are matched to the band pixels through ``_frame_band``'s order).
+    ``1 / (1 - lost)`` (all bad pixels) over the true bin light. In a field the true bin light is
+    that of the field's own rows, each standing for ``band.scale`` image rows as in the
+    extraction (the error of sampling every other row is then left out: it is the same for
+    saturated and unsaturated bins).
     """
     from meteorspec.simulate.render import render_event
-    full = render_event(spec).linear_clean
+    rendered = render_event(spec)
+    full = rendered.linear_clean
+    # exposure (frame or field) -> the clean frame that holds its rows
+    exp_frame = {ex.index: ex.frame for ex in rendered.exposures}
     dark = render_event(dataclasses.replace(spec, peak_energy_adu_s=1e-12)).linear_clean
     meteor = (full - dark).astype(float)
-    del full, dark
+    del full, dark, rendered
     bands, coords = [], []
     orig_set, orig_fb = extract_mod._set_band_profile, extract_mod._frame_band
 
@@ -250,7 +255,7 @@ def oracle_bins(spec, event_dir: Path, stations: Path, setting: str = "base") ->
     def capture_fb(*a, **k):
         out = orig_fb(*a, **k)
         if out is not None:
-            coords.append((out[0].copy(), out[1].copy()))
+            coords.append((out[0].copy(), out[1].copy(), out[5].astype(np.float32)))
         return out
 
     store: dict = {}
@@ -264,12 +269,21 @@ def oracle_bins(spec, event_dir: Path, stations: Path, setting: str = "base") ->
     edges = np.concatenate([[wl[0] - 0.5 * sp.bin_width_nm[0]], wl + 0.5 * np.asarray(sp.bin_width_nm)])
     out = []
     h, w = meteor.shape[1:]
-    for band, (px, py) in zip(bands, coords):
+    for band, (px, py, off) in zip(bands, coords):
         if px.size != band.u_nm.size:
-            continue
+            # a field keeps every other row of the band: the parity whose offsets are the band's
+            for start in (0, 1):
+                keep = ((py - start) % 2) == 0
+                if np.count_nonzero(keep) == band.u_nm.size and np.array_equal(off[keep], band.off_px):
+                    px, py = px[keep], py[keep]
+                    break
+            else:
+                continue
         on = ~band.off_sensor
         m = np.zeros(px.size)
-        m[on] = meteor[band.frame, py[on], px[on]]
+        # a field's pixel stands for band.scale image rows (its data are scaled by it): the truth is
+        # the field's own rows scaled alike, so that the sampling of the rows cancels
+        m[on] = meteor[exp_frame[band.frame], py[on], px[on]] * band.scale
         jj, fr = extract_mod._bin_fractions(band.u_nm, band.a_nm, band.b_nm, edges)
         # the weights the extraction gives lost pixels
         s_good = np.bincount(jj.ravel(), (fr * np.where(band.bad, 0.0, band.data)[:, None]).ravel(), wl.size)

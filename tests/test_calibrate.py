@@ -409,3 +409,23 @@ def test_memo_lens_gives_the_lens_directions():
     lam = np.linspace(380.0, 880.0, 9)
     for got, want in zip(memo.spectrum_pixel(xa, ya, lam[None, :]), ALLSKY.spectrum_pixel(xa, ya, lam[None, :])):
         np.testing.assert_array_equal(got, want)
+
+
+def _rows(lab_nm, species):
+    n = len(lab_nm)
+    z = np.zeros(n)
+    return LineMeasurements(event=np.full(n, ""), frame=np.zeros(n, np.int64), x0_px=z, y0_px=z, x_px=z, y_px=z,
+                            lab_nm=np.asarray(lab_nm, float), species=np.asarray(species), tangent_x=z + 1.0,
+                            tangent_y=z, sigma_along_px=z + 0.1, sigma_cross_px=z + 0.1)
+
+
+def test_blend_windows_anchor_a_first_fit_only_with_a_feature_and_a_long_reach():
+    from meteorspec.calibrate import _windows_anchor
+
+    wins = [396.0, 427.0, 447.0, 517.0, 613.0]
+    names = [f"blend {w - 5:.0f}-{w + 5:.0f}" for w in wins]
+    assert _windows_anchor(_rows(wins + [589.0], names + ["Na I"]))
+    assert not _windows_anchor(_rows(wins, names))                        # no isolated feature
+    assert not _windows_anchor(_rows(wins[:4] + [589.0], names[:4] + ["Na I"]))   # four windows
+    short = [400.0, 420.0, 440.0, 460.0, 480.0]                           # 80 nm reach
+    assert not _windows_anchor(_rows(short + [589.0], [f"blend {w:.0f}" for w in short] + ["Na I"]))

@@ -354,6 +354,25 @@ def test_saturated_bins_stay_masked_without_unsaturated_cross_sections():
         assert fs.mask[:, np.abs(fs.wavelength_nm - lam) < 2.0].all()
 
 
+def _saturated_na_scene(*, interlaced: bool, n_frames: int, duration_s: float):
+    """A seeded QM03 simulator event whose Na I D core saturates in its bright frames (SNR 150 in
+    the brightest line), without stars, response or atmosphere; extracted (boxcar) with the
+    truth track and a flat background of the simulated sky: (rendered, stack, camera, track,
+    background, frame spectra)."""
+    from meteorspec.simulate import EventSpec, peak_for_line_snr, render_event
+
+    spec = EventSpec("QM03", overrides={"camera.interlaced": interlaced}, n_frames=n_frames, meteor_start_s=0.02,
+                     meteor_duration_s=duration_s, start_px=(300.0, 250.0), direction_deg=70.0, speed_deg_s=10.0,
+                     na=0.5, mg=0.2, fe=0.3, flat_response=True, atmosphere=False, n_stars=0, seed=3)
+    spec = dataclasses.replace(spec, peak_energy_adu_s=peak_for_line_snr(spec, 150.0))
+    r = render_event(spec)
+    stack, cam = r.frame_stack(), r.station.camera
+    track = _truth_track(r)
+    bg = FlatBackground(cam.height, cam.width, sky_adu=spec.sky_adu, read_noise_adu=cam.read_noise_adu,
+                        gain_e_per_adu=cam.gain_e_per_adu)
+    return r, stack, cam, track, bg, extract_spectra(stack, bg, track, r.geometry, camera=cam, optimal=False)
+
+
 def test_saturated_na_core_of_a_simulated_event_recovered_against_its_noise_free_frames():
     # A seeded simulator event (meteorspec.simulate; 8-bit gamma camera, sky, photon and read
     # noise) whose Na I D core saturates in its bright frames. Truth: the same extraction of
@@ -363,18 +382,7 @@ def test_saturated_na_core_of_a_simulated_event_recovered_against_its_noise_free
     # the kept pixels plus the profile-shape term of the scaled-up bins, with the bins'
     # correlation), and the recovered frames together within 3 % (0.015 / (1 - L) at the
     # shares these bins lose, module constant _LOST_SHARE_ERR).
-    from meteorspec.simulate import EventSpec, peak_for_line_snr, render_event
-
-    spec = EventSpec("QM03", overrides={"camera.interlaced": False}, n_frames=10, meteor_start_s=0.02,
-                     meteor_duration_s=0.3, start_px=(300.0, 250.0), direction_deg=70.0, speed_deg_s=10.0,
-                     na=0.5, mg=0.2, fe=0.3, flat_response=True, atmosphere=False, n_stars=0, seed=3)
-    spec = dataclasses.replace(spec, peak_energy_adu_s=peak_for_line_snr(spec, 150.0))
-    r = render_event(spec)
-    stack, cam = r.frame_stack(), r.station.camera
-    track = _truth_track(r)
-    bg = FlatBackground(cam.height, cam.width, sky_adu=spec.sky_adu, read_noise_adu=cam.read_noise_adu,
-                        gain_e_per_adu=cam.gain_e_per_adu)
-    fs = extract_spectra(stack, bg, track, r.geometry, camera=cam, optimal=False)
+    r, stack, cam, track, bg, fs = _saturated_na_scene(interlaced=False, n_frames=10, duration_s=0.3)
     truth = [Frame(k, f.time_s, f.exposure_s, r.linear_clean[k].astype(np.float32),
                    np.zeros(r.linear_clean[k].shape, bool)) for k, f in enumerate(stack)]
     ref = extract_spectra(truth, bg, track, r.geometry, camera=cam, optimal=False,
@@ -402,19 +410,8 @@ def test_saturated_na_core_in_the_fields_of_an_interlaced_camera_recovered_again
     # bins' correlation), and the recovered fields together within 3 % (0.015 / (1 - L) at the
     # shares these bins lose, module constant _LOST_SHARE_ERR; measured on noise-free truth the
     # fields' scaled-up bins read 1-3 % low up to L = 0.7, bench/saturation_wings.py --oracle).
-    from meteorspec.simulate import EventSpec, peak_for_line_snr, render_event
-
-    spec = EventSpec("QM03", overrides={"camera.interlaced": True}, n_frames=6, meteor_start_s=0.02,
-                     meteor_duration_s=0.2, start_px=(300.0, 250.0), direction_deg=70.0, speed_deg_s=10.0,
-                     na=0.5, mg=0.2, fe=0.3, flat_response=True, atmosphere=False, n_stars=0, seed=3)
-    spec = dataclasses.replace(spec, peak_energy_adu_s=peak_for_line_snr(spec, 150.0))
-    r = render_event(spec)
-    stack, cam = r.frame_stack(), r.station.camera
+    r, stack, cam, track, bg, fs = _saturated_na_scene(interlaced=True, n_frames=6, duration_s=0.2)
     assert cam.interlaced
-    track = _truth_track(r)
-    bg = FlatBackground(cam.height, cam.width, sky_adu=spec.sky_adu, read_noise_adu=cam.read_noise_adu,
-                        gain_e_per_adu=cam.gain_e_per_adu)
-    fs = extract_spectra(stack, bg, track, r.geometry, camera=cam, optimal=False)
     truth = []
     for k, f in enumerate(stack):
         assert f.y_step_px == 2 and r.exposures[k].row_start == f.y_start_px

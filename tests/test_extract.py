@@ -373,9 +373,10 @@ def _saturated_na_scene(*, interlaced: bool, n_frames: int, duration_s: float):
     return r, stack, cam, track, bg, extract_spectra(stack, bg, track, r.geometry, camera=cam, optimal=False)
 
 
-def _recovered_na_against_truth(fs, ref) -> tuple[float, float]:
+def _recovered_na_against_truth(fs, ref) -> tuple[float, float, list[int], np.ndarray]:
     """Every frame (field) with recovered Na bins: its Na window energy over the kept bins within
-    3 sigma of its stated error against the noise-free extraction ``ref``; returns the sums."""
+    3 sigma of its stated error against the noise-free extraction ``ref``; returns the sums, those
+    frames and the Na window's bins."""
     assert "saturation_recovered" in fs.flags and "saturation_recovered" not in ref.flags
     na = (fs.wavelength_nm > 580.0) & (fs.wavelength_nm < 598.0)
     frames = [k for k in range(fs.n_frames) if (fs.recovered[k] & na).any()]
@@ -387,7 +388,7 @@ def _recovered_na_against_truth(fs, ref) -> tuple[float, float]:
         assert abs(got - want) <= 3.0 * err, (k, got / want, err / want)
         got_sum += got
         want_sum += want
-    return got_sum, want_sum
+    return got_sum, want_sum, frames, na
 
 
 def test_saturated_na_core_of_a_simulated_event_recovered_against_its_noise_free_frames():
@@ -404,7 +405,7 @@ def test_saturated_na_core_of_a_simulated_event_recovered_against_its_noise_free
                    np.zeros(r.linear_clean[k].shape, bool)) for k, f in enumerate(stack)]
     ref = extract_spectra(truth, bg, track, r.geometry, camera=cam, optimal=False,
                           wavelength_grid_nm=fs.wavelength_nm)
-    got_sum, want_sum = _recovered_na_against_truth(fs, ref)
+    got_sum, want_sum, _, _ = _recovered_na_against_truth(fs, ref)
     assert_allclose(got_sum, want_sum, rtol=0.03)
 
 
@@ -427,7 +428,7 @@ def test_saturated_na_core_in_the_fields_of_an_interlaced_camera_recovered_again
                            y_start_px=f.y_start_px, y_step_px=f.y_step_px))
     ref = extract_spectra(truth, bg, track, r.geometry, camera=cam, optimal=False,
                           wavelength_grid_nm=fs.wavelength_nm)
-    got_sum, want_sum = _recovered_na_against_truth(fs, ref)
+    got_sum, want_sum, fields, na = _recovered_na_against_truth(fs, ref)
     # the shape error is common to the fields (FrameSpectra.shape_rel_err, summed coherently by
     # the whole flight): here 2.8 % of the window, and the fields' sum reads 3.0 % low; it must
     # agree within 1.5 times that stated error (room for the kept pixels' noise, not for a bias

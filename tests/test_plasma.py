@@ -407,6 +407,21 @@ def _coarse_scene(line_list):
     return fwhm, step, wl, bw, r_wl, r_val, metal, energy
 
 
+def _noisy_spectrum_and_truth(wl, bw, flux, metal, energy, *, seed: int):
+    """The spectrum with seeded Gaussian noise at S/N 300 of its peak, and the true group shares."""
+    err = np.full(wl.size, flux.max() / 300.0)
+    noisy = flux + np.random.default_rng(seed).normal(0, err)
+    spec = SimpleNamespace(wavelength_nm=wl, bin_width_nm=bw, flux=noisy, flux_err=err,
+                           mask=np.zeros(wl.size, bool))
+    truth = np.array([energy[metal.group == g].sum() for g in plasma.GROUPS])
+    return spec, truth / truth.sum()
+
+
+def _composition(fit):
+    got = np.array([fit.group_intensity[g] for g in plasma.GROUPS])
+    return got / got.sum()
+
+
 def test_response_skew_of_blurred_lines_is_modelled(line_list):
     # A camera records each line with the response R at the line's own wavelength; dividing
     # the blurred spectrum by R at each bin (contract section 3) skews a 30 nm wide line
@@ -419,23 +434,14 @@ def test_response_skew_of_blurred_lines_is_modelled(line_list):
     recorded = energy * np.interp(metal.wavelength_nm, r_wl, r_val)
     flux = (_render(wl, bw, metal.wavelength_nm, recorded, fwhm, step_nm=0.05)
             / np.interp(wl, r_wl, r_val))
-    err = np.full(wl.size, flux.max() / 300.0)
-    noisy = flux + np.random.default_rng(2).normal(0, err)
-    spec = SimpleNamespace(wavelength_nm=wl, bin_width_nm=bw, flux=noisy, flux_err=err,
-                           mask=np.zeros(wl.size, bool))
-    truth = np.array([energy[metal.group == g].sum() for g in plasma.GROUPS])
-    truth = truth / truth.sum()
-
-    def composition(fit):
-        got = np.array([fit.group_intensity[g] for g in plasma.GROUPS])
-        return got / got.sum()
+    spec, truth = _noisy_spectrum_and_truth(wl, bw, flux, metal, energy, seed=2)
 
     with_r = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_nm=(r_wl, r_val), response_degree=0)
     plain = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_degree=0)
     assert with_r and with_r.config["n2_tied"] is True
-    err_r = np.abs(composition(with_r) - truth).max()
+    err_r = np.abs(_composition(with_r) - truth).max()
     assert err_r < 0.03
-    assert err_r < np.abs(composition(plain) - truth).max()
+    assert err_r < np.abs(_composition(plain) - truth).max()
 
 
 def test_transmission_of_each_frame_folds_into_one_curve(line_list):
@@ -479,23 +485,14 @@ def test_transmission_of_each_frame_folds_into_one_curve(line_list):
     # second order: var(X) (sigma dtau/dlambda)^2 / 2 = 0.5 % at 362 nm for these airmasses
     assert np.abs(folded - whole.flux).max() < 0.01 * whole.flux.max()
     assert np.abs(folded - whole.flux).max() < 0.1 * np.abs(r_only_sum - whole.flux).max()
-    err = np.full(wl.size, whole.flux.max() / 300.0)
-    noisy = whole.flux + np.random.default_rng(3).normal(0, err)
-    spec = SimpleNamespace(wavelength_nm=wl, bin_width_nm=bw, flux=noisy, flux_err=err,
-                           mask=np.zeros(wl.size, bool))
-    truth = np.array([energy[metal.group == g].sum() for g in plasma.GROUPS])
-    truth = truth / truth.sum()
-
-    def composition(fit):
-        got = np.array([fit.group_intensity[g] for g in plasma.GROUPS])
-        return got / got.sum()
+    spec, truth = _noisy_spectrum_and_truth(wl, bw, whole.flux, metal, energy, seed=3)
 
     folded_fit = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_nm=curve, response_degree=0)
     r_only = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_nm=(r_wl, r_val), response_degree=0)
     assert folded_fit and r_only
-    err_folded = np.abs(composition(folded_fit) - truth).max()
+    err_folded = np.abs(_composition(folded_fit) - truth).max()
     assert err_folded < 0.03
-    assert err_folded < np.abs(composition(r_only) - truth).max()
+    assert err_folded < np.abs(_composition(r_only) - truth).max()
 
 
 def test_air_multiplet_amplitudes_shape_their_own_lines(line_list):

@@ -3,6 +3,7 @@
 Usage (from the top of the repository)::
 
     OPENBLAS_NUM_THREADS=1 python bench/bench_batch.py [--night sample_events] [--copies 4] [--repeat 2] [--ceiling]
+    OPENBLAS_NUM_THREADS=1 python bench/bench_batch.py --copies 20 --repeat 1 --configs serial,workers   (100 events)
 
 One sample event takes 1-13 s (about 32 s for the five, serially, on the 2-core machine), so
 ``--copies 4 --repeat 2 --ceiling`` (20 events) takes about 12 minutes.
@@ -31,6 +32,7 @@ assertions: the ratio is a target for the machine, not a test.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import csv
 import logging
 import os
@@ -128,7 +130,13 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--repeat", type=int, default=2, help="rounds; the best run of each configuration is reported")
     parser.add_argument("--ceiling", action="store_true",
                         help="also run the events on plain processes without Dask (the machine's own ceiling)")
+    parser.add_argument("--configs", default="serial,workers,warm",
+                        help="comma list of serial, workers (--workers 2), warm (--scheduler on a running "
+                             "cluster); e.g. 'serial,workers' for a long night in reasonable time")
     args = parser.parse_args(argv)
+    configs = {c.strip() for c in args.configs.split(",") if c.strip()}
+    if not configs <= {"serial", "workers", "warm"} or "serial" not in configs:
+        parser.error("--configs: a comma list of serial, workers, warm that includes serial")
 
     night = Path(args.night)
     if not list(night.rglob("event.toml")):
@@ -148,14 +156,20 @@ def main(argv: list[str] | None = None) -> int:
         # meet the same conditions, and the best of each over the rounds is compared. Each run is
         # the command line in a fresh process, so no configuration inherits another's state.
         runs: dict[str, list[tuple[float, int]]] = {}
-        with start_local_cluster(2) as cluster:  # the cluster --workers 2 would start, kept warm
-            address = cluster.scheduler_address
-            command(root, Path(tmp) / "warmup", "--scheduler", address)  # workers have run every stage once
+        with contextlib.ExitStack() as stack:
+            address = None
+            if "warm" in configs:  # the cluster --workers 2 would start, kept warm
+                cluster = stack.enter_context(start_local_cluster(2))
+                address = cluster.scheduler_address
+                command(root, Path(tmp) / "warmup", "--scheduler", address)  # workers have run every stage once
             for k in range(args.repeat):
                 out = Path(tmp) / f"round{k}"
                 runs.setdefault("serial", []).append(command(root, out / "serial"))
-                runs.setdefault("2 workers", []).append(command(root, out / "two", "--workers", "2"))
-                runs.setdefault("2 workers, warm", []).append(command(root, out / "warm", "--scheduler", address))
+                if "workers" in configs:
+                    runs.setdefault("2 workers", []).append(command(root, out / "two", "--workers", "2"))
+                if address is not None:
+                    runs.setdefault("2 workers, warm", []).append(
+                        command(root, out / "warm", "--scheduler", address))
                 if args.ceiling:
                     runs.setdefault("2 plain processes", []).append(
                         plain_processes(events, out / "plain", workers=2))

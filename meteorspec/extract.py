@@ -1295,6 +1295,12 @@ def _total_snr(fs: FrameSpectra) -> float:
 
 
 _N_LIGHT_STEPS = 16
+# Step edges over the exposure and, per step, 8 Gauss-Legendre nodes and weights of the light's
+# rate; fixed, so computed once (numpy solves an eigenproblem for them at every call).
+_STEP_EDGES = np.linspace(-0.5, 0.5, _N_LIGHT_STEPS + 1)
+_GL8_NODES, _GL8_WEIGHTS = np.polynomial.legendre.leggauss(8)
+_STEP_NODES = (0.5 * (_STEP_EDGES[:-1, None] + _STEP_EDGES[1:, None])
+               + 0.5 * (_STEP_EDGES[1:, None] - _STEP_EDGES[:-1, None]) * _GL8_NODES[None, :])
 
 
 def _streak_profile(x: np.ndarray, centre: float, sigma: float, streak_n: np.ndarray | float,
@@ -1315,14 +1321,12 @@ def _streak_profile(x: np.ndarray, centre: float, sigma: float, streak_n: np.nda
     x = np.asarray(x, dtype=float)
     m = np.broadcast_to(np.asarray(streak_n, dtype=float), x.shape)
     se = np.sqrt(sigma**2 + 1.0 / 12.0)
-    edges = np.linspace(-0.5, 0.5, _N_LIGHT_STEPS + 1)
+    edges = _STEP_EDGES
     # light of each step: 8-point Gauss-Legendre of the rate (exact enough for |b|, |c| <= 50)
-    g, gw = np.polynomial.legendre.leggauss(8)
-    lo, hi = edges[:-1, None], edges[1:, None]
-    ss = 0.5 * (lo + hi) + 0.5 * (hi - lo) * g[None, :]
+    ss = _STEP_NODES
     lr = light_b * ss + light_c * ss * ss
     rate = np.exp(lr - lr.max())
-    wstep = (rate * gw[None, :]).sum(axis=1)
+    wstep = (rate * _GL8_WEIGHTS[None, :]).sum(axis=1)
     wstep = wstep / wstep.sum()
     moving = np.abs(m) > 1e-3
     out = np.exp(-0.5 * ((x - centre) / se) ** 2) / (np.sqrt(2.0 * np.pi) * se)

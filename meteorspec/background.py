@@ -25,7 +25,7 @@ from scipy import ndimage
 
 from .config import Camera
 
-__all__ = ["Background", "BinnedFrames", "bin_frames", "estimate_background", "refine_background", "meteor_mask", "bin_rows", "frame_rows",
+__all__ = ["Background", "BinnedFrames", "StoredFrameBinner", "bin_frames", "estimate_background", "refine_background", "meteor_mask", "bin_rows", "frame_rows",
            "BIN_PX"]
 
 #: Block size (pixels, both axes, in image coordinates) of the binned copy used for selection and detection.
@@ -516,13 +516,16 @@ def _clipped_stats(data: list[np.ndarray], clip_sigma: float, *, read_noise_adu:
         mean[r0:r0 + block_rows] = m
         var[r0:r0 + block_rows] = (dev * dev).sum(axis=0) / np.maximum(cnt - 1, 1)
 
-    for r0 in range(0, rows, block_rows):
+    def ordered(r0: int) -> None:
         d = np.sort(np.stack([a[r0:r0 + block_rows] for a in data]), axis=0)
         m0 = med[r0:r0 + block_rows] = _order_stat(d, (n - 1) * 0.5)
         s0 = sig[r0:r0 + block_rows] = (_order_stat(d, q3) - _order_stat(d, q1)) * np.float32(1.0 / 1.349)
         if per_pixel:  # the mean and variance of the kept samples do not need them in order
             clipped(d, m0, clip_sigma * np.maximum(s0, _clip_floor(m0, s0, n, read_noise_adu=read_noise_adu,
                                                                    gain_e_per_adu=gain_e_per_adu)), r0)
+
+    for r0 in range(0, rows, block_rows):
+        ordered(r0)
     if not per_pixel:
         lim_all = clip_sigma * np.maximum(sig, _clip_floor(med, sig, n, read_noise_adu=read_noise_adu,
                                                            gain_e_per_adu=gain_e_per_adu))
@@ -838,7 +841,21 @@ def refine_background(frames: Sequence, background: Background, track, geometry,
 
 
 def _bin_stored(stack, stored: np.ndarray, camera: Camera) -> BinnedFrames:
-    """:func:`bin_frames` of a decoded stack of stored integer values (``FrameStack``), faster.
+    """:func:`bin_frames` of a decoded stack of stored integer values (``FrameStack``), faster."""
+    h, w = camera.height, camera.width
+    if stored.shape[1:] != (h, w):
+        raise ValueError(f"stored frames are {stored.shape[2]}x{stored.shape[1]}; the camera is {w}x{h}")
+    binner = StoredFrameBinner(camera, float(stack.fps))
+    for k in range(stored.shape[0]):
+        binner.add(k, stored[k])
+    return binner.result()  # never None: the shape is checked above, the caller checked the type
+
+
+class StoredFrameBinner:
+    """:func:`bin_frames` one stored frame at a time, as the video reader delivers them.
+
+    Fed by :func:`meteorspec.video.read_stack` (``on_frame``) while the decoder
+    works on the next frames, so the binned copy costs no pass of its own.
 
     A linear camera (``gamma = 1``) needs no lookup: the block mean of
     ``stored - black`` is the block mean of the stored values minus the black
@@ -847,43 +864,81 @@ def _bin_stored(stack, stored: np.ndarray, camera: Camera) -> BinnedFrames:
     stored values are linearised through a table of all possible values; the
     saturation mask is not needed here. Fields are split as the video reader
     does (contract section 1: ``field_order = "top"``: even rows first).
-    """
-    h, w = camera.height, camera.width
-    n_stored = stored.shape[0]
-    if stored.shape[1:] != (h, w):
-        raise ValueError(f"stored frames are {stored.shape[2]}x{stored.shape[1]}; the camera is {w}x{h}")
-    from .video import linearize  # the one definition of the pixel-value transfer (contract section 3)
 
-    lut = linearize(np.arange(2 ** (8 * stored.dtype.itemsize)), camera)[0]
-    black = camera.black_level_adu
-    linear = camera.gamma == 1.0
-    fpf = 2 if camera.interlaced else 1
-    if fpf == 2:
-        first_row = 0 if camera.field_order == "top" else 1
-        starts = (first_row, 1 - first_row)
-    else:
-        starts = (0,)
-    step = fpf
-    by = max(BIN_PX // step, 1)
-    data = []
-    meta = []
-    fps = float(stack.fps)
-    for k in range(n_stored):
-        raw = stored[k]
-        for half, y0 in enumerate(starts):
+    Parameters
+    ----------
+    camera : Camera
+    fps : float
+        Stored frames per second (the event's ``fps``).
+    """
+
+    def __init__(self, camera: Camera, fps: float) -> None:
+        self.camera = camera
+        self.fps = float(fps)
+        self._fpf = 2 if camera.interlaced else 1
+        if self._fpf == 2:
+            first_row = 0 if camera.field_order == "top" else 1
+            self._starts: tuple[int, ...] = (first_row, 1 - first_row)
+        else:
+            self._starts = (0,)
+        self._by = max(BIN_PX // self._fpf, 1)
+        self._lut: dict[np.dtype, np.ndarray] = {}
+        self._data: list[np.ndarray] = []
+        self._meta: list[tuple] = []
+        self._next = 0
+        self.usable = True
+
+    def add(self, k: int, raw: np.ndarray) -> None:
+        """Bin stored frame ``k`` (frames must come in order 0, 1, 2, ...).
+
+        A frame that is not of stored integer values in the camera's size ends the
+        binning (:meth:`result` then returns None, and :func:`bin_frames` does the
+        pass with its own checks and messages).
+
+        Raises
+        ------
+        ValueError
+            A frame out of order.
+        """
+        cam = self.camera
+        if k != self._next:
+            raise ValueError(f"stored frame {k} arrived, expected frame {self._next}")
+        self._next += 1
+        if not self.usable or raw.shape != (cam.height, cam.width) or raw.dtype.kind != "u":
+            self.usable = False
+            return
+        lut = self._lut.get(raw.dtype)
+        if lut is None:
+            from .video import linearize  # the one definition of the pixel-value transfer (contract section 3)
+
+            lut = self._lut[raw.dtype] = linearize(np.arange(2 ** (8 * raw.dtype.itemsize)), cam)[0]
+        black = cam.black_level_adu
+        step = self._fpf
+        for half, y0 in enumerate(self._starts):
             rows = raw[y0::step]
-            if linear and int(rows.min()) >= black:
-                b = bin_rows(rows, by, BIN_PX)
+            if cam.gamma == 1.0 and int(rows.min()) >= black:
+                b = bin_rows(rows, self._by, BIN_PX)
                 b -= np.float32(black)
             else:
-                b = bin_rows(np.take(lut, rows), by, BIN_PX)
-            data.append(b)
-            j = fpf * k + half
-            meta.append(((j + 0.5) / (fpf * fps), 1.0 / (fpf * fps), j, y0, step, rows.shape[0]))
-    cols = list(zip(*meta))
-    return BinnedFrames(data=data, time_s=np.array(cols[0], float), exposure_s=np.array(cols[1], float),
-                        index=np.array(cols[2], int), y_start_px=np.array(cols[3], int),
-                        y_step_px=np.array(cols[4], int), n_rows=np.array(cols[5], int))
+                b = bin_rows(np.take(lut, rows), self._by, BIN_PX)
+            self._data.append(b)
+            j = step * k + half
+            self._meta.append(((j + 0.5) / (step * self.fps), 1.0 / (step * self.fps), j, y0, step,
+                               rows.shape[0]))
+
+    def __len__(self) -> int:
+        """Frames (or fields) binned so far."""
+        return len(self._data)
+
+    def result(self) -> BinnedFrames | None:
+        """The binned copy of every frame added so far; None if a frame could not be binned here."""
+        if not self.usable:
+            return None
+        cols = list(zip(*self._meta)) if self._meta else [()] * 6
+        return BinnedFrames(data=list(self._data), time_s=np.array(cols[0], float),
+                            exposure_s=np.array(cols[1], float), index=np.array(cols[2], int),
+                            y_start_px=np.array(cols[3], int), y_step_px=np.array(cols[4], int),
+                            n_rows=np.array(cols[5], int))
 
 
 @dataclass(frozen=True)

@@ -15,7 +15,8 @@ from pathlib import Path
 import numpy as np
 
 from .atomic import load_line_list
-from .background import Background, bin_frames, estimate_background, refine_background
+from .background import (Background, BinnedFrames, StoredFrameBinner, bin_frames, estimate_background,
+                         refine_background)
 from .calibrate import apply_response, calibrate_event, station_solution
 from .classify import (LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify, composition_from_groups,
                        light_curve_from_spectra, time_resolved_from_fits, window_light_curves)
@@ -69,7 +70,7 @@ def station_values(station: Station) -> dict[str, object]:
 
 def frame_times(stack: FrameStack) -> FrameTimes:
     """Frame (or field) times and saturated-pixel counts of a decoded video."""
-    n_sat = np.array([int(np.count_nonzero(frame.saturated)) for frame in stack])
+    n_sat = stack.saturated_px_counts()
     return FrameTimes(time_s=stack.time_s, exposure_s=stack.exposure_s, n_saturated_px=n_sat,
                       interlaced=stack.camera.interlaced)
 
@@ -177,7 +178,8 @@ def process_event(event_path: str | Path, *, stations_dir: str | Path | None = N
             result.inputs.append(_input_record("response", station.response.path))
         else:
             result.add_flag("uncalibrated_flux")
-        stack = read_stack(event, station)
+        binner = StoredFrameBinner(station.camera, float(event.fps))
+        stack = read_stack(event, station, on_frame=binner.add)  # binned while the decoder runs ahead
         result.frames = frame_times(stack)
     except InputError as exc:
         result.status = "failed"
@@ -186,7 +188,7 @@ def process_event(event_path: str | Path, *, stations_dir: str | Path | None = N
 
     if result.frames.n_saturated_px.any():
         result.add_flag("saturated")
-    _reduce(result, event, station, stack, refine_geometry=refine_geometry)
+    _reduce(result, event, station, stack, refine_geometry=refine_geometry, binned=binner.result())
     result.status = "partial" if any(f.startswith("stage_missing:") for f in result.flags) else "ok"
     return result
 
@@ -196,17 +198,20 @@ def recorded_orders(station: Station) -> list[int]:
     return [o for o in station.grating.orders if o != 0]
 
 
-def locate_meteor(stack: FrameStack, station: Station) -> tuple[Background, Track]:
+def locate_meteor(stack: FrameStack, station: Station, *,
+                  binned: BinnedFrames | None = None) -> tuple[Background, Track]:
     """Background and zeroth-order track of a decoded event (the stages before calibration).
 
-    One binned pass feeds both the background model and the tracker; when a meteor
-    is found, the background is re-estimated with its light masked frame by frame
-    and the light curve is measured again against it.
+    One binned copy (``binned``, made while decoding, or one pass here) feeds both the
+    background model and the tracker; when a meteor is found, the background is
+    re-estimated with its light masked frame by frame and the light curve is measured
+    again against it.
     """
     camera = station.camera
     geometry = SpectralGeometry.from_station(station)
     orders = recorded_orders(station)
-    binned = bin_frames(stack, camera=camera)  # the one full pass, shared by background and tracker
+    if binned is None or len(binned) != len(stack):
+        binned = bin_frames(stack, camera=camera)  # the one full pass, shared by background and tracker
     background = estimate_background(stack, camera=camera, seed=0, binned=binned)
     track = find_track(stack, background, geometry, camera=camera, orders=orders, seed=0, binned=binned)
     del binned
@@ -218,7 +223,7 @@ def locate_meteor(stack: FrameStack, station: Station) -> tuple[Background, Trac
 
 
 def _reduce(result: EventResult, event: Event, station: Station, stack: FrameStack, *,
-            refine_geometry: bool = True) -> None:
+            refine_geometry: bool = True, binned: BinnedFrames | None = None) -> None:
     """The science stages in data-flow order; each adds its part and flags to ``result``.
 
     A stage that cannot run (no meteor, failed plasma fit) leaves its part out and
@@ -228,7 +233,7 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     camera = station.camera
     station_geometry = SpectralGeometry.from_station(station)
     order = recorded_orders(station)[0]
-    background, track = locate_meteor(stack, station)
+    background, track = locate_meteor(stack, station, binned=binned)
     result.parts["track"] = track_part(track)
     _add_flags(result, track.flags)
     if not track:

@@ -14,7 +14,9 @@ never escape. Readers stream: one frame in memory at a time.
 
 from __future__ import annotations
 
+import math
 import os
+import queue
 
 # OpenCV and its FFmpeg backend print decoder complaints straight to stderr; the
 # reader reports problems itself, so keep them quiet unless the user asked for logs.
@@ -23,6 +25,7 @@ os.environ.setdefault("OPENCV_FFMPEG_LOGLEVEL", "-8")  # AV_LOG_QUIET
 
 import re
 import shutil
+import threading
 import warnings
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
@@ -332,6 +335,26 @@ class FrameStack:
         for k in range(self.stored.shape[0]):
             yield from _frames_of(k, self.stored[k], self.camera, self.fps, self._lut)
 
+    def saturated_px_counts(self) -> np.ndarray:
+        """Saturated pixels of every frame (or field), counted on the stored values.
+
+        The same count as ``Frame.saturated`` (``stored >= saturation_adu``) without
+        linearising every frame.
+        """
+        sat = self.camera.saturation_adu
+        if self.stored.dtype.kind == "u":  # an integer threshold keeps the comparison in the stored type
+            sat = math.ceil(sat)
+            if sat > np.iinfo(self.stored.dtype).max:
+                return np.zeros(len(self), dtype=np.int64)
+            sat = self.stored.dtype.type(sat)
+        fpf = self.fields_per_frame
+        starts = (0,) if fpf == 1 else ((0, 1) if self.camera.field_order == "top" else (1, 0))
+        counts = np.empty(len(self), dtype=np.int64)
+        for k in range(self.stored.shape[0]):
+            for half, start in enumerate(starts):
+                counts[fpf * k + half] = np.count_nonzero(self.stored[k, start::fpf] >= sat)
+        return counts
+
     @property
     def time_s(self) -> np.ndarray:
         """Mid-exposure time of every frame (or field)."""
@@ -343,8 +366,20 @@ class FrameStack:
         return 1.0 / (self.fps * self.fields_per_frame)
 
 
-def read_stack(event: Event, station: Station) -> FrameStack:
+def read_stack(event: Event, station: Station, *,
+               on_frame: Callable[[int, np.ndarray], None] | None = None) -> FrameStack:
     """Decode the event's video once into a :class:`FrameStack` (stored values, no float copy).
+
+    Parameters
+    ----------
+    event, station : Event, Station
+    on_frame : callable, optional
+        ``on_frame(k, stored_frame)`` is called in the caller's thread for every
+        stored frame ``k`` in order, while a second thread decodes the frames after
+        it: per-frame work (such as the background's binned copy,
+        :class:`meteorspec.background.StoredFrameBinner`) then overlaps with the
+        decoding instead of needing a pass of its own. The array is the frame's
+        place in the stack; it must not be modified.
 
     Raises
     ------
@@ -360,20 +395,72 @@ def read_stack(event: Event, station: Station) -> FrameStack:
     def slot(k: int) -> np.ndarray | None:
         return cube[k] if cube is not None and cube.dtype == np.uint8 and k < cube.shape[0] else None
 
-    for raw in read_raw_frames(event.video, camera=station.camera, slot=slot):
-        if cube is None:
-            n_hint = max(count_frames(event.video), 1)
-            cube = np.empty((n_hint,) + raw.shape, dtype=raw.dtype)
-        if n < cube.shape[0]:
-            if not np.may_share_memory(raw, cube):  # not decoded in place
-                cube[n] = raw
-        else:
-            extra.append(raw)
-        n += 1
+    def decode() -> Iterator[tuple[int, np.ndarray]]:
+        nonlocal cube, n
+        for raw in read_raw_frames(event.video, camera=station.camera, slot=slot):
+            if cube is None:
+                n_hint = max(count_frames(event.video), 1)
+                cube = np.empty((n_hint,) + raw.shape, dtype=raw.dtype)
+            if n < cube.shape[0]:
+                if not np.may_share_memory(raw, cube):  # not decoded in place
+                    cube[n] = raw
+                kept = cube[n]
+            else:
+                extra.append(raw)
+                kept = raw
+            n += 1
+            yield n - 1, kept
+
+    if on_frame is None:
+        for _ in decode():
+            pass
+    else:
+        for k, frame in _decoded_ahead(decode()):
+            on_frame(k, frame)
     if n < 2:
         raise InputError(event.video, f"needs at least 2 frames, found {n}")
     stored = np.concatenate([cube, np.stack(extra)]) if extra else cube[:n]
     return FrameStack(stored=stored, camera=station.camera, fps=float(event.fps))
+
+
+def _decoded_ahead(frames: Iterator[tuple[int, np.ndarray]]) -> Iterator[tuple[int, np.ndarray]]:
+    """Run ``frames`` (the decoder) in a thread of its own and hand its items over in order.
+
+    OpenCV and FFmpeg release the GIL while they decode, so the caller's per-frame
+    work runs beside the decoding. The queue is unbounded: every decoded frame
+    already has its place in the stack, so running ahead costs no memory. An
+    error in the decoder is raised here, in the caller's thread; if the caller
+    stops early (an error of its own), the decoder stops after its current frame.
+    """
+    items: queue.SimpleQueue = queue.SimpleQueue()
+    stop = threading.Event()
+    done = object()
+
+    def produce() -> None:
+        try:
+            for item in frames:
+                if stop.is_set():
+                    return
+                items.put((item, None))
+            items.put((done, None))
+        except BaseException as exc:  # noqa: BLE001 - handed to the caller's thread
+            items.put((done, exc))
+        finally:
+            frames.close()
+
+    thread = threading.Thread(target=produce, name="meteorspec-decode", daemon=True)
+    thread.start()
+    try:
+        while True:
+            item, exc = items.get()
+            if exc is not None:
+                raise exc
+            if item is done:
+                return
+            yield item
+    finally:
+        stop.set()
+        thread.join()
 
 
 def count_frames(video: str | Path) -> int:

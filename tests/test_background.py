@@ -216,6 +216,36 @@ def test_binned_copy_of_a_stored_stack_equals_the_linearised_frames():
             np.testing.assert_array_equal(getattr(fast, name), getattr(slow, name))
 
 
+def test_binning_frame_by_frame_equals_the_pass_over_the_stack():
+    """Frames binned one at a time as the reader delivers them equal :func:`bin_frames` of the stack.
+
+    Bit for bit: the same block sums in the same order. A frame that is not stored integers
+    ends the frame-by-frame binning (the caller then bins the stack with full checks).
+    """
+    from meteorspec.background import StoredFrameBinner, bin_frames
+    from meteorspec.video import FrameStack
+
+    rng = np.random.default_rng(8)
+    cam = Camera(width=64, height=48, bit_depth=8, gamma=0.45, saturation_adu=255.0, interlaced=True,
+                 field_order="top", black_level_adu=4.0)
+    stored = rng.integers(0, 256, (5, 48, 64), dtype=np.uint8)
+    stack = FrameStack(stored=stored, camera=cam, fps=25.0)
+    binner = StoredFrameBinner(cam, 25.0)
+    for k, raw in enumerate(stored):
+        binner.add(k, raw)
+    whole, streamed = bin_frames(stack, camera=cam), binner.result()
+    assert len(streamed) == len(whole) == 10
+    for a, b in zip(streamed.data, whole.data):
+        np.testing.assert_array_equal(a, b)
+    for name in ("time_s", "exposure_s", "index", "y_start_px", "y_step_px", "n_rows"):
+        np.testing.assert_array_equal(getattr(streamed, name), getattr(whole, name))
+    floats = StoredFrameBinner(cam, 25.0)
+    floats.add(0, stored[0].astype(np.float64))
+    assert floats.result() is None
+    with pytest.raises(ValueError, match="expected frame 1"):
+        floats.add(2, stored[2])
+
+
 def test_sample_matches_whole_frame_residual_and_variance():
     """``Background.sample`` at chosen pixels equals the whole-frame methods there (star pixels included)."""
     frames, _, _ = make_frames()

@@ -278,6 +278,57 @@ def test_grey_avi_decodes_into_the_callers_buffer(tmp_path):
         assert_array_equal(stack[k].saturated, sat)
 
 
+def test_read_stack_hands_each_frame_over_while_decoding(tmp_path):
+    # on_frame runs in the caller's thread, in frame order, on the frames as stored; the stack
+    # is the same as without it. Errors of the decoder and of the caller both reach the caller,
+    # and the decoding thread ends either way.
+    import threading
+
+    cam = make_camera()
+    frames = random_frames(np.random.default_rng(21), cam, n=12)
+    video = write_video(tmp_path / "v.avi", frames, camera=cam, fps=25.0)
+    event, station = make_event(video, cam)
+    seen = []
+
+    def on_frame(k, raw):
+        assert threading.current_thread() is threading.main_thread()
+        seen.append((k, raw.copy()))
+
+    stack = read_stack(event, station, on_frame=on_frame)
+    assert [k for k, _ in seen] == list(range(12))
+    assert_array_equal(np.stack([r for _, r in seen]), frames)
+    assert_array_equal(stack.stored, read_stack(event, station).stored)
+
+    cut = tmp_path / "cut.avi"
+    cut.write_bytes(video.read_bytes()[: video.stat().st_size // 2])
+    cut_event, _ = make_event(cut, cam)
+    with pytest.raises(InputError) as info:
+        read_stack(cut_event, station, on_frame=lambda k, raw: None)
+    assert_one_line_error(info, "cut.avi")
+
+    def fail_at_3(k, raw):
+        if k == 3:
+            raise RuntimeError("caller stops")
+
+    with pytest.raises(RuntimeError, match="caller stops"):
+        read_stack(event, station, on_frame=fail_at_3)
+    assert not any(t.name == "meteorspec-decode" for t in threading.enumerate())
+
+
+@pytest.mark.parametrize("bit_depth,saturation,interlaced", [(8, 250.0, False), (8, 200.5, True), (12, 4000.0, False)])
+def test_saturated_counts_from_stored_values(bit_depth, saturation, interlaced):
+    # The per-frame (per-field) count taken on the stored values equals the count of each
+    # linearised frame's saturation mask, including a threshold between two stored values.
+    from meteorspec.video import FrameStack
+
+    cam = make_camera(bit_depth=bit_depth, saturation=saturation, interlaced=interlaced, gamma=0.6)
+    stored = random_frames(np.random.default_rng(bit_depth), cam, n=6)
+    stack = FrameStack(stored=stored, camera=cam, fps=25.0)
+    expected = [int(np.count_nonzero(f.saturated)) for f in stack]
+    assert sum(expected) > 0
+    assert_array_equal(stack.saturated_px_counts(), expected)
+
+
 @pytest.mark.parametrize("field_order", ["top", "bottom"])
 def test_interlaced_fields(tmp_path, field_order):
     cam = make_camera(interlaced=True, field_order=field_order)

@@ -45,16 +45,24 @@ def frame_rows(full: np.ndarray, frame) -> np.ndarray:
 def bin_rows(img: np.ndarray, by: int, bx: int) -> np.ndarray:
     """Block mean over ``by`` rows x ``bx`` columns; trailing partial blocks are dropped.
 
-    Strided slice sums: about 7x faster than a reshape-mean on a 1280x960 frame.
+    Strided slice sums: about 7x faster than a reshape-mean on a 1280x960 frame. Stored
+    8- and 16-bit values are summed in an integer type wide enough for the block (0.5 ms
+    against 0.85 ms per 8-bit 1280x960 frame) and give the same float32 means: float32
+    holds every such sum exactly.
     """
     hb, wb = img.shape[0] // by, img.shape[1] // bx
     a = img[: hb * by, : wb * bx]
-    rows = a[0::by].astype(np.float32, copy=True)
+    acc = np.float32
+    if a.dtype.kind == "u" and a.dtype.itemsize <= 2 and by * bx * np.iinfo(a.dtype).max < 2**24:
+        acc = np.uint16 if by * bx * np.iinfo(a.dtype).max <= np.iinfo(np.uint16).max else np.uint32
+    rows = a[0::by].astype(acc, copy=True)
     for i in range(1, by):
         rows += a[i::by]
     out = rows[:, 0::bx].copy()
     for j in range(1, bx):
         out += rows[:, j::bx]
+    if acc is not np.float32:
+        out = out.astype(np.float32)
     out *= 1.0 / (by * bx)
     return out
 

@@ -216,6 +216,18 @@ def test_binned_copy_of_a_stored_stack_equals_the_linearised_frames():
             np.testing.assert_array_equal(getattr(fast, name), getattr(slow, name))
 
 
+@pytest.mark.parametrize("dtype,top", [(np.uint8, 255), (np.uint16, 4095), (np.uint16, 65535)])
+@pytest.mark.parametrize("by", [2, 4])
+def test_block_means_of_stored_integers_are_exact(dtype, top, by):
+    """Integer frames summed in an integer type give exactly the float32 block means (no rounding)."""
+    from meteorspec.background import bin_rows
+
+    img = np.random.default_rng(top + by).integers(0, top + 1, (50, 66)).astype(dtype)
+    img[:by, :4] = top  # a block at the top of the range
+    np.testing.assert_array_equal(bin_rows(img, by, 4), bin_rows(img.astype(np.float32), by, 4))
+    assert bin_rows(img, by, 4)[0, 0] == top
+
+
 def test_binning_frame_by_frame_equals_the_pass_over_the_stack():
     """Frames binned one at a time as the reader delivers them equal :func:`bin_frames` of the stack.
 

@@ -18,6 +18,7 @@ re-estimates the pixels the meteor reaches with its light masked frame by frame.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -32,6 +33,9 @@ __all__ = ["Background", "BinnedFrames", "StoredFrameBinner", "bin_frames", "est
 BIN_PX = 4
 # Block size of the copy used to choose the meteor-free frames (kept for the whole clip).
 _SELECT_BIN_PX = 8
+# Threads for the per-pixel temporal statistics (row blocks); more gain nothing on the
+# 2-core machine this is measured on, where a batch runs one event per core anyway.
+_STATS_THREADS = 2
 # MAD -> Gaussian sigma (common practice: 1 / Phi^-1(3/4)).
 _MAD_TO_SIGMA = 1.4826
 
@@ -532,8 +536,10 @@ def _clipped_stats(data: list[np.ndarray], clip_sigma: float, *, read_noise_adu:
             clipped(d, m0, clip_sigma * np.maximum(s0, _clip_floor(m0, s0, n, read_noise_adu=read_noise_adu,
                                                                    gain_e_per_adu=gain_e_per_adu)), r0)
 
-    for r0 in range(0, rows, block_rows):
-        ordered(r0)
+    # Row blocks are independent and numpy's sort and sums release the GIL: two threads
+    # halve the wall time on an otherwise idle machine (each writes its own rows).
+    with ThreadPoolExecutor(max_workers=_STATS_THREADS) as pool:
+        list(pool.map(ordered, range(0, rows, block_rows)))
     if not per_pixel:
         lim_all = clip_sigma * np.maximum(sig, _clip_floor(med, sig, n, read_noise_adu=read_noise_adu,
                                                            gain_e_per_adu=gain_e_per_adu))

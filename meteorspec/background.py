@@ -945,11 +945,16 @@ class StoredFrameBinner:
         return len(self._data)
 
     def result(self) -> BinnedFrames | None:
-        """The binned copy of every frame added so far; None if a frame could not be binned here."""
+        """Hand over the binned copy of every frame added so far; None if a frame could not be binned here.
+
+        The binner keeps no reference afterwards (it is empty), so the copy is freed as soon as
+        its new owner drops it.
+        """
         if not self.usable:
             return None
         cols = list(zip(*self._meta)) if self._meta else [()] * 6
-        return BinnedFrames(data=list(self._data), time_s=np.array(cols[0], float),
+        data, self._data, self._meta = self._data, [], []
+        return BinnedFrames(data=data, time_s=np.array(cols[0], float),
                             exposure_s=np.array(cols[1], float), index=np.array(cols[2], int),
                             y_start_px=np.array(cols[3], int), y_step_px=np.array(cols[4], int),
                             n_rows=np.array(cols[5], int))

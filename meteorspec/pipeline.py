@@ -234,6 +234,7 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     station_geometry = SpectralGeometry.from_station(station)
     order = recorded_orders(station)[0]
     background, track = locate_meteor(stack, station, binned=binned)
+    del binned  # the binned copy (1/16 of the video) is not needed after tracking
     result.parts["track"] = track_part(track)
     _add_flags(result, track.flags)
     if not track:

@@ -42,7 +42,7 @@ _MAD_TO_SIGMA = 1.4826
 
 def frame_rows(full: np.ndarray, frame) -> np.ndarray:
     """Rows of a full-frame ``(height, width)`` array that ``frame.signal`` holds (a view)."""
-    n_rows = frame.signal.shape[0]
+    n_rows = frame.shape[0]
     return full[frame.y_start_px::frame.y_step_px][:n_rows]
 
 
@@ -214,7 +214,7 @@ class Background:
         self._check(frame)
         y = frame.y_start_px + frame.y_step_px * np.asarray(rows)
         level = self.level_adu[y, cols]
-        resid = frame.signal[rows, cols] - level
+        resid = frame.pixels(rows, cols)[0] - level
         inv_gain = np.float32(1.0 / self.gain_e_per_adu)
         read2 = np.float32(self.read_noise_adu**2)
         var = np.maximum(level + resid, 0.0) * inv_gain + read2
@@ -228,7 +228,7 @@ class Background:
 
     def _check(self, frame) -> None:
         h, w = self.level_adu.shape
-        n_rows, width = frame.signal.shape
+        n_rows, width = frame.shape
         last = frame.y_start_px + frame.y_step_px * (n_rows - 1)
         if width != w or frame.y_start_px < 0 or last >= h:
             raise ValueError(f"frame {frame.index} ({n_rows} rows from y={frame.y_start_px} step "
@@ -432,16 +432,14 @@ def estimate_background(frames: Sequence, *, camera: Camera, seed: int | None = 
         chosen = positions[select_quiet_frames(stack, max_frames=per_group)]
         del stack
         items.clear()  # the 8x8 copies are no longer needed
-        full = []  # signals only: the saturation masks are not used here
-        for p in chosen:
-            f = frames[int(p)]
-            used.append(int(f.index))
-            full.append(f.signal)
-            del f
-        dof.append(len(full) - 1)
-        lv, vr = _clipped_stats(full, clip_sigma, read_noise_adu=camera.read_noise_adu,
+        # the frames themselves: each row block is linearised as the statistics read it, so a
+        # frame of stored values never needs a whole-frame float copy
+        quiet = [frames[int(p)] for p in chosen]
+        used.extend(int(f.index) for f in quiet)
+        dof.append(len(quiet) - 1)
+        lv, vr = _clipped_stats(quiet, clip_sigma, read_noise_adu=camera.read_noise_adu,
                                 gain_e_per_adu=camera.gain_e_per_adu)
-        del full
+        del quiet
         rows = np.arange(y0, h, step)[: lv.shape[0]]
         level[rows] = lv
         var[rows] = vr
@@ -497,20 +495,25 @@ def _check_frame(frame, h: int, w: int) -> None:
         raise ValueError(f"frame {frame.index} holds NaN or infinite values")
 
 
-def _clipped_stats(data: list[np.ndarray], clip_sigma: float, *, read_noise_adu: float | None = None,
+def _clipped_stats(frames: list, clip_sigma: float, *, read_noise_adu: float | None = None,
                    gain_e_per_adu: float | None = None,
                    block_rows: int = 96) -> tuple[np.ndarray, np.ndarray]:
-    """Per-pixel sigma-clipped temporal mean and variance of ``n`` images (rows, width), in row blocks.
+    """Per-pixel sigma-clipped temporal mean and variance of ``n`` frames' signals, in row blocks.
 
     The samples are sorted along time (the fastest robust route in numpy): the
     median and the interquartile range (sigma = IQR / 1.349 for a Gaussian, common
     practice) set the clipping limits, never tighter than the noise floor of
     :func:`_clip_floor` (the camera's read and photon noise when both are known,
     else the pooled interquartile sigma of the frame). Row blocks keep
-    temporaries small.
+    temporaries small; ``frames`` are :class:`~meteorspec.video.Frame` objects, read
+    one row block at a time through ``Frame.pixels``.
     """
-    n = len(data)
-    rows, width = data[0].shape
+    n = len(frames)
+    rows, width = frames[0].shape
+
+    def block(r0: int) -> np.ndarray:
+        return np.stack([f.pixels(slice(r0, r0 + block_rows), slice(None))[0] for f in frames])
+
     med = np.empty((rows, width), np.float32)
     sig = np.empty((rows, width), np.float32)
     mean = np.empty((rows, width), np.float32)
@@ -529,7 +532,7 @@ def _clipped_stats(data: list[np.ndarray], clip_sigma: float, *, read_noise_adu:
         var[r0:r0 + block_rows] = (dev * dev).sum(axis=0) / np.maximum(cnt - 1, 1)
 
     def ordered(r0: int) -> None:
-        d = np.sort(np.stack([a[r0:r0 + block_rows] for a in data]), axis=0)
+        d = np.sort(block(r0), axis=0)
         m0 = med[r0:r0 + block_rows] = _order_stat(d, (n - 1) * 0.5)
         s0 = sig[r0:r0 + block_rows] = (_order_stat(d, q3) - _order_stat(d, q1)) * np.float32(1.0 / 1.349)
         if per_pixel:  # the mean and variance of the kept samples do not need them in order
@@ -544,7 +547,7 @@ def _clipped_stats(data: list[np.ndarray], clip_sigma: float, *, read_noise_adu:
         lim_all = clip_sigma * np.maximum(sig, _clip_floor(med, sig, n, read_noise_adu=read_noise_adu,
                                                            gain_e_per_adu=gain_e_per_adu))
         for r0 in range(0, rows, block_rows):
-            clipped(np.stack([a[r0:r0 + block_rows] for a in data]), med[r0:r0 + block_rows],
+            clipped(block(r0), med[r0:r0 + block_rows],
                     lim_all[r0:r0 + block_rows], r0)
     return mean, var
 
@@ -820,9 +823,9 @@ def refine_background(frames: Sequence, background: Background, track, geometry,
         samples = np.empty((len(pos_list), rr.size), np.float32)
         for i, p in enumerate(pos_list):
             f = frames[p]
-            if (f.y_start_px, f.y_step_px) != key or f.signal.shape[0] != union[key].shape[0]:
+            if (f.y_start_px, f.y_step_px) != key or f.shape[0] != union[key].shape[0]:
                 raise ValueError(f"frame {f.index} does not have the rows of field parity {key}")
-            samples[i] = f.signal[rr, cc]
+            samples[i] = f.pixels(rr, cc)[0]
             if p in masks:
                 samples[i][masks[p][rr, cc]] = np.nan
         lv, vr, cnt = _clipped_stats_masked(samples, clip_sigma, read_noise_adu=background.read_noise_adu,

@@ -784,7 +784,7 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
             v[on_grid] for v in (px, py, u, a, b, off, disp, incomplete, drift, streak_n))
         b = b * scale
         rows = (py - frame.y_start_px) // frame.y_step_px
-        off_sensor = (px < 0) | (px >= w) | (py < 0) | (py >= h) | (rows < 0) | (rows >= frame.signal.shape[0])
+        off_sensor = (px < 0) | (px >= w) | (py < 0) | (py >= h) | (rows < 0) | (rows >= frame.shape[0])
         off_sensor |= incomplete  # beyond the lens field for part of the exposure: not recorded
         on = ~off_sensor
         n = px.size
@@ -808,7 +808,7 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
             data[on] = resid[r_on, x_on]
             var[on] = var_full[r_on, x_on]
             var_sky[on] = var_sky_full[r_on, x_on]
-        sat[on] = frame.saturated[r_on, x_on]
+        sat[on] = frame.pixels(r_on, x_on)[1]
         level_px = np.zeros(0)
         if floor_ok:
             level_px = np.zeros(n, np.float32)

@@ -328,11 +328,11 @@ def _measure(frame, background: Background, x0: float, y0: float, half_dx: float
     y_lo, y_hi = int(np.floor(y0 - reach)) - 2, int(np.ceil(y0 + reach)) + 3
     x_lo, x_hi = max(x_lo, 0), min(x_hi, width)
     r_lo = max(int(np.floor(frame.row_of_y(y_lo))), 0)
-    r_hi = min(int(np.ceil(frame.row_of_y(y_hi))) + 1, frame.signal.shape[0])
+    r_hi = min(int(np.ceil(frame.row_of_y(y_hi))) + 1, frame.shape[0])
     if x_hi - x_lo < 3 or r_hi - r_lo < 2:
         res.edge = True
         return res
-    sig = frame.signal[r_lo:r_hi, x_lo:x_hi]
+    sig, sat = frame.pixels(slice(r_lo, r_hi), slice(x_lo, x_hi))
     rows = slice(frame.y_start_px + frame.y_step_px * r_lo, None, frame.y_step_px)
     level = background.level_adu[rows][: r_hi - r_lo, x_lo:x_hi]
     r = sig - level
@@ -368,7 +368,7 @@ def _measure(frame, background: Background, x0: float, y0: float, half_dx: float
     res.flux, res.flux_err = flux * frame.y_step_px, err * frame.y_step_px
     res.snr = flux / err if err > 0 else np.nan
     core = d <= max(aperture_px * 0.6, 1.5)
-    res.saturated = bool(frame.saturated[r_lo:r_hi, x_lo:x_hi][core].any())
+    res.saturated = bool(sat[core].any())
     res.ok = True
     return res
 

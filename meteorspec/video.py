@@ -46,6 +46,8 @@ except AttributeError:  # pragma: no cover - very old builds without cv2.utils.l
 
 __all__ = [
     "Frame",
+    "StoredFrame",
+    "FrameStack",
     "linearize",
     "encode",
     "read_raw_frames",
@@ -108,9 +110,22 @@ class Frame:
         if self.y_step_px < 1:
             raise ValueError(f"y_step_px must be >= 1, got {self.y_step_px}")
 
+    @property
+    def shape(self) -> tuple[int, int]:
+        """``(n_rows, width)`` of ``signal``."""
+        return self.signal.shape
+
+    def pixels(self, rows, cols) -> tuple[np.ndarray, np.ndarray]:
+        """``signal`` and ``saturated`` at ``[rows, cols]`` (slices or integer index arrays).
+
+        Stages that read a few pixels of a frame ask for them here, so that a
+        :class:`StoredFrame` linearises only those.
+        """
+        return self.signal[rows, cols], self.saturated[rows, cols]
+
     def y_px(self) -> np.ndarray:
         """Image y of every row of ``signal``, ndarray of shape (n_rows,)."""
-        return self.y_start_px + self.y_step_px * np.arange(self.signal.shape[0], dtype=float)
+        return self.y_start_px + self.y_step_px * np.arange(self.shape[0], dtype=float)
 
     def row_of_y(self, y_px: float | np.ndarray) -> np.ndarray:
         """Fractional row index into ``signal`` for image ``y_px`` (vectorised).
@@ -252,16 +267,77 @@ def _lookup_table(camera: Camera, dtype: np.dtype) -> tuple[np.ndarray, np.ndarr
     return linearize(np.arange(2 ** (8 * dtype.itemsize)), camera)
 
 
+def _linearized(raw: np.ndarray, camera: Camera,
+                lut: tuple[np.ndarray, np.ndarray] | None) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`linearize` of stored values, through the table of all stored values when there is one."""
+    if lut is None:
+        return linearize(raw, camera)
+    # OpenCV's table lookup is about 3x numpy's gather on 8-bit frames; a comparison is
+    # 40x cheaper than gathering the saturation table (same values: both are exact).
+    signal = cv2.LUT(raw, lut[0]) if raw.dtype == np.uint8 else lut[0][raw]
+    return signal, raw >= camera.saturation_adu
+
+
+class StoredFrame(Frame):
+    """A :class:`Frame` of a :class:`FrameStack`, linearised when its pixels are read.
+
+    ``signal`` and ``saturated`` are computed from the stored values on first
+    access (and kept); :meth:`pixels` linearises only the pixels asked for. The
+    tracker, the background refit and the extraction read a small window or band
+    of each frame: a whole 1280x960 frame costs a 5 MB float32 copy and its page
+    faults, the band a few thousand values. The values are those of
+    :func:`linearize` either way.
+
+    Parameters
+    ----------
+    index, time_s, exposure_s, y_start_px, y_step_px
+        As :class:`Frame`.
+    stored : ndarray of shape (n_rows, width)
+        The frame's (or field's) stored values; a view into the stack.
+    camera : Camera
+    lut : tuple of ndarray or None
+        Linear value and saturation of every possible stored integer, or None.
+    """
+
+    def __init__(self, index: int, time_s: float, exposure_s: float, stored: np.ndarray, camera: Camera,
+                 lut: tuple[np.ndarray, np.ndarray] | None, y_start_px: int = 0, y_step_px: int = 1) -> None:
+        # Frame is a frozen dataclass; signal and saturated are the lazy attributes below
+        for name, value in (("index", index), ("time_s", time_s), ("exposure_s", exposure_s),
+                            ("stored", stored), ("camera", camera), ("_table", lut),
+                            ("y_start_px", y_start_px), ("y_step_px", y_step_px)):
+            object.__setattr__(self, name, value)
+        if stored.ndim != 2 or y_step_px < 1:
+            raise ValueError("stored must be 2-D and y_step_px >= 1")
+
+    @cached_property
+    def _linear(self) -> tuple[np.ndarray, np.ndarray]:
+        return _linearized(np.ascontiguousarray(self.stored), self.camera, self._table)
+
+    @property
+    def signal(self) -> np.ndarray:  # type: ignore[override]
+        return self._linear[0]
+
+    @property
+    def saturated(self) -> np.ndarray:  # type: ignore[override]
+        return self._linear[1]
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.stored.shape
+
+    def pixels(self, rows, cols) -> tuple[np.ndarray, np.ndarray]:
+        if "_linear" in self.__dict__:
+            return super().pixels(rows, cols)
+        values = self.stored[rows, cols]
+        if self._table is None or values.ndim == 2:  # a window: OpenCV's lookup on a contiguous copy
+            return _linearized(np.ascontiguousarray(values), self.camera, self._table)
+        return self._table[0][values], values >= self.camera.saturation_adu
+
+
 def _frames_of(k: int, raw: np.ndarray, camera: Camera, fps: float,
                lut: tuple[np.ndarray, np.ndarray] | None) -> list[Frame]:
-    """The frame, or its two fields in time order, of stored frame ``k``."""
-    if lut is not None:
-        # OpenCV's table lookup is about 3x numpy's gather on 8-bit frames; a comparison is
-        # 40x cheaper than gathering the saturation table (same values: both are exact).
-        signal = cv2.LUT(raw, lut[0]) if raw.dtype == np.uint8 else lut[0][raw]
-        saturated = raw >= camera.saturation_adu
-    else:
-        signal, saturated = linearize(raw, camera)
+    """The frame, or its two fields in time order, of stored frame ``k`` (linearised now)."""
+    signal, saturated = _linearized(raw, camera, lut)
     if not camera.interlaced:
         return [Frame(index=k, time_s=(k + 0.5) / fps, exposure_s=1.0 / fps,
                       signal=signal, saturated=saturated)]
@@ -329,11 +405,22 @@ class FrameStack:
             raise IndexError(f"frame {index} out of range for {n} frames")
         index %= n
         k, half = divmod(index, self.fields_per_frame)
-        return _frames_of(k, self.stored[k], self.camera, self.fps, self._lut)[half]
+        return self._frame(k, half)
 
     def __iter__(self) -> Iterator[Frame]:
         for k in range(self.stored.shape[0]):
-            yield from _frames_of(k, self.stored[k], self.camera, self.fps, self._lut)
+            for half in range(self.fields_per_frame):
+                yield self._frame(k, half)
+
+    def _frame(self, k: int, half: int) -> StoredFrame:
+        """Stored frame ``k`` (``half`` 0), or its field ``half`` in time order, as :func:`_frames_of` gives it."""
+        if not self.camera.interlaced:
+            return StoredFrame(k, (k + 0.5) / self.fps, 1.0 / self.fps, self.stored[k], self.camera, self._lut)
+        first = 0 if self.camera.field_order == "top" else 1
+        start = first if half == 0 else 1 - first
+        j = 2 * k + half
+        return StoredFrame(j, (j + 0.5) / (2.0 * self.fps), 1.0 / (2.0 * self.fps), self.stored[k, start::2],
+                           self.camera, self._lut, y_start_px=start, y_step_px=2)
 
     def saturated_px_counts(self) -> np.ndarray:
         """Saturated pixels of every frame (or field), counted on the stored values.

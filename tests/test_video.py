@@ -329,6 +329,48 @@ def test_saturated_counts_from_stored_values(bit_depth, saturation, interlaced):
     assert_array_equal(stack.saturated_px_counts(), expected)
 
 
+@pytest.mark.parametrize("bit_depth,gamma,interlaced,field_order,as_float", [
+    (8, 0.6, False, "top", False), (8, 1.0, True, "bottom", False), (12, 0.45, True, "top", False),
+    (12, 1.0, False, "top", True)])
+def test_stack_frames_linearise_on_demand(bit_depth, gamma, interlaced, field_order, as_float):
+    # A FrameStack's frames read a window or scattered pixels without linearising the whole
+    # frame; every way of reading gives the values of linearize() (contract section 3) on the
+    # frame's (field's) stored rows. as_float: stored values without a lookup table.
+    from meteorspec.video import FrameStack, StoredFrame
+
+    cam = make_camera(bit_depth=bit_depth, gamma=gamma, black=3.0, saturation=2**bit_depth - 9.5,
+                      interlaced=interlaced, field_order=field_order)
+    stored = random_frames(np.random.default_rng(bit_depth), cam, n=3)
+    if as_float:
+        stored = stored.astype(np.float32)
+    stack = FrameStack(stored=stored, camera=cam, fps=25.0)
+    rng = np.random.default_rng(1)
+    step = 2 if interlaced else 1
+    first = 0 if field_order == "top" else 1
+    n_saturated = 0
+    for j in range(len(stack)):
+        k, second = divmod(j, step)
+        start = (first if not second else 1 - first) if interlaced else 0
+        signal, saturated = linearize(stored[k, start::step], cam)
+        frame = stack[j]
+        assert isinstance(frame, StoredFrame) and frame.shape == signal.shape
+        assert "_linear" not in frame.__dict__  # nothing linearised yet
+        rows, cols = rng.integers(0, signal.shape[0], 50), rng.integers(0, W, 50)
+        for index in ((rows, cols), (slice(2, 7), slice(5, 20))):
+            got_signal, got_saturated = frame.pixels(*index)
+            assert_array_equal(got_signal, signal[index])
+            assert_array_equal(got_saturated, saturated[index])
+        assert "_linear" not in frame.__dict__
+        assert frame.signal.dtype == np.float32
+        assert_array_equal(frame.signal, signal)
+        assert_array_equal(frame.saturated, saturated)
+        assert_array_equal(frame.pixels(rows, cols)[0], signal[rows, cols])
+        assert (frame.index, frame.y_start_px, frame.y_step_px) == (j, start, step)
+        assert frame.time_s == pytest.approx((j + 0.5) / (25.0 * step))
+        n_saturated += int(saturated.sum())
+    assert n_saturated > 0  # the saturation mask was exercised
+
+
 @pytest.mark.parametrize("field_order", ["top", "bottom"])
 def test_interlaced_fields(tmp_path, field_order):
     cam = make_camera(interlaced=True, field_order=field_order)

@@ -821,21 +821,26 @@ def _central_velocity(gc: GreatCircle, t: float, exposure: float) -> tuple[float
     return float(x1 - x0) / (2 * h), float(y1 - y0) / (2 * h)
 
 
-def _spectrum_profile(geometry, orders, frame, residual, x0, y0, wl):
-    """Residual sampled (bilinear) along the predicted spectra of zeroth positions (x0, y0) (k,) -> (k, n_wl)."""
+def _spectrum_profile(geometry, orders, frame, background, x0, y0, wl):
+    """Residual sampled (bilinear) along the predicted spectra of zeroth positions (x0, y0) (k,) -> (k, n_wl).
+
+    Only the pixels around the samples are read (``Background.sample``), not the whole frame.
+    """
     out = []
+    n_rows, width = frame.shape
     for m in orders:
         xs, ys = geometry.spectrum_pixel(np.asarray(x0)[:, None], np.asarray(y0)[:, None], wl[None, :], m)
         rows = frame.row_of_y(ys)
-        ok = np.isfinite(xs) & np.isfinite(rows) & (xs >= 0) & (xs <= residual.shape[1] - 1) & \
-            (rows >= 0) & (rows <= residual.shape[0] - 1)
+        ok = np.isfinite(xs) & np.isfinite(rows) & (xs >= 0) & (xs <= width - 1) & \
+            (rows >= 0) & (rows <= n_rows - 1)
         xs_c = np.where(ok, xs, 0.0)
         r_c = np.where(ok, rows, 0.0)
-        i0 = np.minimum(np.floor(r_c).astype(int), residual.shape[0] - 2)
-        j0 = np.minimum(np.floor(xs_c).astype(int), residual.shape[1] - 2)
+        i0 = np.minimum(np.floor(r_c).astype(int), n_rows - 2)
+        j0 = np.minimum(np.floor(xs_c).astype(int), width - 2)
         fi, fj = r_c - i0, xs_c - j0
-        val = (residual[i0, j0] * (1 - fi) * (1 - fj) + residual[i0 + 1, j0] * fi * (1 - fj)
-               + residual[i0, j0 + 1] * (1 - fi) * fj + residual[i0 + 1, j0 + 1] * fi * fj)
+        corners = background.sample(frame, np.stack([i0, i0 + 1, i0, i0 + 1]), np.stack([j0, j0, j0 + 1, j0 + 1]))[0]
+        val = (corners[0] * (1 - fi) * (1 - fj) + corners[1] * fi * (1 - fj)
+               + corners[2] * (1 - fi) * fj + corners[3] * fi * fj)
         out.append(np.where(ok, val, np.nan))
     return np.concatenate(out, axis=1)
 
@@ -869,8 +874,8 @@ def _locate_from_spectrum(frames, background, geometry, gc, orders, times, expos
     count = np.zeros_like(template)
     for p in good:
         frame = frames[int(p)]
-        res = background.residual(frame)
-        prof = _spectrum_profile(geometry, orders, frame, res, np.array([meas[p].x]), np.array([meas[p].y]), wl)[0]
+        prof = _spectrum_profile(geometry, orders, frame, background, np.array([meas[p].x]), np.array([meas[p].y]),
+                                 wl)[0]
         ok = np.isfinite(prof)
         norm = float(np.sum(np.clip(prof[ok], 0.0, None)))
         if norm <= 0:
@@ -889,12 +894,19 @@ def _locate_from_spectrum(frames, background, geometry, gc, orders, times, expos
     # short span must not be extrapolated far), shifted by the offsets the last located frames had
     last: dict[str, float] = {}
     offsets: list[float] = []
+    noise_of: dict[tuple[int, int, int], float] = {}
+
+    def median_noise(frame) -> float:
+        # the same for every frame of a field parity: one median of the whole noise map each
+        key = (frame.y_start_px, frame.y_step_px, frame.shape[0])
+        if key not in noise_of:
+            noise_of[key] = float(np.median(frame_rows(background.noise_adu, frame)))
+        return noise_of[key]
 
     def try_frame(p: int) -> bool:
         if not (np.isfinite(fx[p]) and np.isfinite(fy[p])):
             return False
         frame = frames[int(p)]
-        res = background.residual(frame)
         if last:
             # straight extrapolation from the span end, shifted by the recent located offsets
             a_lin = last["a"] + last["w"] * (times[p] - last["t"])
@@ -912,14 +924,14 @@ def _locate_from_spectrum(frames, background, geometry, gc, orders, times, expos
         a = a0 + offs
         u = np.cos(a)[:, None] * gc.e1 + np.sin(a)[:, None] * gc.e2
         x0, y0 = gc.lens.direction_to_pixel(u)
-        prof = _spectrum_profile(geometry, orders, frame, res, x0, y0, wl)
+        prof = _spectrum_profile(geometry, orders, frame, background, x0, y0, wl)
         # samples valid for every trial position, so that all trials compare the same wavelengths
         common = np.all(np.isfinite(prof), axis=0) & np.isfinite(template)
         if common.sum() < 10:
             return False
         pc, tc = prof[:, common], template[common]
         # significance of the spectrum's presence: matched filter against the background noise
-        noise = float(np.median(frame_rows(background.noise_adu, frame)))
+        noise = median_noise(frame)
         z = (pc @ tc) / max(noise * float(np.sqrt(np.sum(tc**2))), 1e-12)
         # position: normalised cross-correlation (shape, not brightness, decides)
         pz = pc - pc.mean(axis=1, keepdims=True)

@@ -350,8 +350,10 @@ def _composition_error(fit: PlasmaFit) -> float:
 def na_peak_saturated(spectra: FrameSpectra, fwhm_nm: np.ndarray, peak_time_s: float) -> bool:
     """Whether the Na I D lines are masked (saturated) in a frame next to the Na peak.
 
-    There the per-frame Na intensity rests on the weak Na I lines and the plasma model, not on
-    the D lines, so the peak time is uncertain by more than the per-frame errors suggest.
+    There the Na light curve rests on the unsaturated wings of the D lines' profile
+    (:func:`meteorspec.classify.window_light_curves`, up to 80 % of their light lost) or is
+    bridged over the frames that lost more, so the peak time is uncertain by more than the
+    per-frame noise suggests.
     """
     if not np.isfinite(peak_time_s) or spectra.n_frames == 0:
         return False

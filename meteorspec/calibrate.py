@@ -53,12 +53,15 @@ Steps of :func:`calibrate_event`
 6. **Whole spectrum** (where steps 4-5 fall back on a coarse spectrum, > 3.5 nm/px, and
    the station response is given). :mod:`meteorspec.calfit` predicts every frame's whole
    first-order spectrum along its curve from the NIST lines of each species (free
-   non-negative intensities shared by all frames), the N2 bands and a per-frame continuum,
+   non-negative intensities shared by all frames, one brightness factor per frame), the N2
+   bands and a per-frame continuum,
    and fits groove density, dispersion angle and tilt to all frames at once, from the best
    three stretches of step 3 (the tilt is held at the station's where the spectra fix it
    worse than 0.36 deg). A solution is kept only if the line model explains the light
    (chi-square drop over a continuum alone), no other start reaches a different solution
-   with a similar chi-square on the same pixels, and fits to each half of the track agree
+   with a similar chi-square on the same pixels (chi-square differences weighed by the
+   reduced chi-square and the residuals' correlation, ``SpectrumFit.chi2_scale``), and fits
+   to each half of the track agree
    with it (``max_halves_nm``); else ``calibration_ambiguous``. Flag of kept solutions:
    ``calibration_whole_spectrum``. Such a solution measures no single line; for the night
    fit (:func:`calibrate_night`) it states where its geometry puts a few wavelengths in a few
@@ -144,6 +147,12 @@ _PRIOR_SIGMA = {"grooves_frac": 0.06, "dispersion_angle_deg": 8.0, "tilt_deg": 3
 #: deg: accepted 1.7 nm off instead of flagged ambiguous); on the narrow 300 grooves/mm QM04
 #: camera 0.42-0.96 deg, where a free tilt ran 2.6-4.7 deg off and dragged the groove density
 #: (up to -1.2 %; held: three of four events met all four figures instead of one).
+#: Those errors were scaled by a reduced chi-square that a misfit of frames with saturated
+#: stretches inflated (9-19); since :mod:`meteorspec.calfit` refines each frame's brightness
+#: (reduced chi-square 1.4-5.9) and scales the errors by the residuals' correlation along the
+#: spectra instead (2.3-5.5 on the same benches), the all-sky free fits give 0.11-0.18 deg
+#: (``--allsky 8 --seed 7``, events 1, 4, 5, 7) and the QM04 events 0.56 and 0.88 deg
+#: (``--n 30 --seed 4``, events 10 and 25): the same two groups on either side.
 _MAX_TILT_ERR_DEG = 0.36
 
 
@@ -1631,7 +1640,8 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
 #: A start converging elsewhere with a chi-square within this many units of the reduced
 #: chi-square of the best makes a whole-spectrum solution ambiguous (Delta chi2 = 25: a 5 sigma
 #: preference for one parameter, common practice; scaled by the reduced chi-square since the
-#: model does not fit to the noise).
+#: model does not fit to the noise, and by the residuals' correlation since neighbouring
+#: samples share pixels and misfit: ``SpectrumFit.chi2_scale``).
 _AMBIGUOUS_CHI2 = 25.0
 #: Least drop of chi-square that the line model must bring over a continuum alone (a 10 sigma
 #: detection of line structure, common practice for "significant"); noise alone gives ~n_comp.
@@ -1679,9 +1689,9 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
                                         angle_range_deg=angle_range_deg, grooves_range_frac=grooves_range_frac,
                                         max_halves_nm=max_halves_nm, fit_tilt=False, n_starts=n_starts,
                                         tilt_sigma_deg=tilt_sigma_deg, event=event, starts=starts)
-    scale = max(1.0, best.reduced_chi2)
-    _log.debug("whole-spectrum fit: chi2/n %.3f n %d line_chi2 %.0f errors %s tilt err %.3f; starts chi2 %s",
-               best.reduced_chi2, best.n_data, best.line_chi2, best.errors, best.tilt_err_deg,
+    scale = best.chi2_scale
+    _log.debug("whole-spectrum fit: chi2/n %.3f corr %.2f n %d line_chi2 %.0f errors %s tilt err %.3f; starts chi2 %s",
+               best.reduced_chi2, best.correlation, best.n_data, best.line_chi2, best.errors, best.tilt_err_deg,
                [round(f.chi2 - best.chi2, 1) for f in fits])
     if not best.line_chi2 > _MIN_LINE_CHI2 * scale:
         return None, "calibration_few_lines"

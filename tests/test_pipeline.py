@@ -136,3 +136,73 @@ def test_refine_geometry_false_keeps_station_values():
     # the sample station file's grating value, as written (sample_events/stations/QM01.toml)
     station = pipeline.load_station(pipeline.find_station_file(pipeline.load_event(event)))
     assert attrs["grooves_per_mm"] == pytest.approx(station.grating.grooves_per_mm, rel=0, abs=1e-9)
+
+
+def _na_peak_frames(recovered: np.ndarray | None) -> FrameSpectra:
+    """Twelve bright frames of the thin meteor (no bin masked), with the given scaled-up bins."""
+    wl, bw, shape, _ = _thin_meteor()
+    weight = 1.0 + np.exp(-0.5 * ((np.arange(12) - 6.0) / 2.5) ** 2)
+    flux = weight[:, None] * shape[None, :]
+    kw = {} if recovered is None else {"recovered": recovered}
+    return FrameSpectra(wavelength_nm=wl, bin_width_nm=bw, flux=flux, variance=np.full(flux.shape, 1e-6),
+                        mask=np.zeros(flux.shape, bool), time_s=(np.arange(12) + 0.5) / 25.0,
+                        flags=("saturated",), frame_weight=weight, **kw)
+
+
+def test_na_peak_saturated_counts_d_bins_scaled_up_from_their_wings():
+    # Na I D2 / D1 at 588.995 / 589.592 nm (NIST ASD, air; contract section 6); the D window is
+    # pipeline.group_windows_nm with half an instrument FWHM of margin (3 nm here)
+    wl = _na_peak_frames(None).wavelength_nm
+    fwhm = np.full(wl.size, FWHM_NM)
+    d_bins = np.abs(wl - 589.3) < 1.0
+    other = np.abs(wl - 656.3) < 1.0  # H-alpha region, outside the D window
+    peak_s = (6 + 0.5) / 25.0
+    assert not pipeline.na_peak_saturated(_na_peak_frames(None), fwhm, peak_s)
+    # no saturated bins recorded (an empty array, the FrameSpectra default)
+    assert not pipeline.na_peak_saturated(_na_peak_frames(np.zeros((0, 0), bool)), fwhm, peak_s)
+    rec = np.zeros((12, wl.size), bool)
+    rec[7, d_bins] = True  # the frame after the peak: its D bins rest on the cross profile's wings
+    assert pipeline.na_peak_saturated(_na_peak_frames(rec), fwhm, peak_s)
+    far = np.zeros((12, wl.size), bool)
+    far[2, d_bins] = True  # four frames before the peak: the top is measured in full
+    far[6, other] = True   # the peak frame, but away from the D lines
+    assert not pipeline.na_peak_saturated(_na_peak_frames(far), fwhm, peak_s)
+    # a frame without meteor light (weight 0) does not count, as for masked bins
+    dark = _na_peak_frames(rec)
+    dark.frame_weight[7] = 0.0
+    assert not pipeline.na_peak_saturated(dark, fwhm, peak_s)
+    assert not pipeline.na_peak_saturated(_na_peak_frames(rec), fwhm, math.nan)
+
+
+class _LineTrack:
+    """A zeroth order moving at constant velocity (the attributes _instrument_fwhm reads)."""
+
+    def __init__(self, x0_px: float, vx_px_s: float, n: int = 9, exposure_s: float = 0.04) -> None:
+        self.time_s = (np.arange(n) + 0.5) * exposure_s
+        self.x_px = x0_px + vx_px_s * (self.time_s - self.time_s.mean())
+        self.y_px = np.full(n, 240.0)
+        self.luminous = np.ones(n, bool)
+        self.exposure_s, self.psf_sigma_px, self._v = exposure_s, 1.0, vx_px_s
+
+    def velocity_px_s(self, time_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        return np.full(np.shape(time_s), self._v), np.zeros(np.shape(time_s))
+
+
+def test_instrument_fwhm_when_550_nm_lies_beyond_the_lens_field():
+    from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
+    # orthographic lens, f = 300 px: the field ends 300 px from the centre (theta = 90 deg).
+    # 600 grooves/mm dispersing along +x: the first order at 550 nm lands ~99 px from the zeroth
+    # order, beyond the field for a zeroth order at x = 525 px, while 500 nm (~90 px) is recorded
+    geo = SpectralGeometry(LensModel("orthographic", 300.0, 320.0, 240.0), GratingModel(600.0, 0.0))
+    wl = np.arange(400.0, 620.0, 2.0)
+    track = _LineTrack(525.0, 300.0)
+    assert not np.isfinite(geo.direction(525.0, 240.0, 550.0, 1)[0])
+    fwhm = pipeline._instrument_fwhm(geo, track, wl, order=1)
+    disp = geo.dispersion_nm_per_px(525.0, 240.0, wl, 1)
+    # lines.instrument_fwhm_nm: PSF FWHM (2.3548 sigma) and the streak along the dispersion
+    # (300 px/s x 0.04 s = 12 px, a box of equal variance: FWHM 0.680 L) in quadrature,
+    # times the local dispersion (common practice: independent blurs add in variance)
+    expected = math.hypot(2.3548 * 1.0, 0.680 * 12.0) * disp
+    ok = np.isfinite(disp)
+    assert ok.any() and not ok.all()
+    assert_allclose(fwhm[ok], expected[ok], rtol=2e-3)  # 0.680 is sqrt(8 ln 2 / 12) to 3 digits

@@ -63,7 +63,7 @@ from meteorspec.config import load_event, load_station
 from meteorspec.extinction import ExtinctionModel, extinction_correction, pixel_altaz
 from meteorspec.extract import extract_spectra
 from meteorspec.optics import SpectralGeometry
-from meteorspec.pipeline import locate_meteor
+from meteorspec.pipeline import locate_meteor, remasked_background
 from meteorspec.simulate import (FIRST_ORDER_SHARE, EventSpec, NuisanceStrengths, peak_for_line_snr, random_specs,
                                  render_event, simulate_event)
 from meteorspec.video import read_stack
@@ -261,12 +261,11 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
         # as meteorspec.pipeline.locate_meteor: the background re-estimated with the meteor masked
         # (the first estimate keeps faint lines such as O I 777 below its clip: 5-14 % of them,
         # bench/flux_ratio.py)
-        bg0 = estimate_background(stack, camera=station.camera, seed=0)
-        bg = refine_background(stack, bg0, track, geo, camera=station.camera,
+        bg = estimate_background(stack, camera=station.camera, seed=0)
+        bg = refine_background(stack, bg, track, geo, camera=station.camera,
                                orders=[o for o in station.grating.orders if o != 0])
     else:
         bg, track = locate_meteor(stack, station)
-        bg0 = None
     t1 = time.perf_counter()
     c1 = time.process_time()
     sol = calibrate_event(stack, bg, track, geo, camera=station.camera, event=event.id,
@@ -298,12 +297,9 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
     out["line_median_nm"] = float(np.median(err)) if err.size else math.nan
     out["line_max_nm"] = float(np.max(err)) if err.size else math.nan
     if background_after_calibration and sol.source == "event":
-        # the meteor's light masked where the refined geometry puts it (the station values can put
-        # the red end of a long spectrum many pixels beside its mask, where the background keeps it)
-        if bg0 is None:
-            bg0 = estimate_background(stack, camera=station.camera, seed=0)
-        bg = refine_background(stack, bg0, track, sol.geometry, camera=station.camera,
-                               orders=[o for o in station.grating.orders if o != 0])
+        # as the pipeline: the meteor's light masked where the refined geometry puts it (the station
+        # values can put the red end of a long spectrum many pixels beside its mask)
+        bg = remasked_background(stack, bg, track, sol.geometry, station)
     try:
         fs = extract_spectra(stack, bg, track, sol.geometry, camera=station.camera)
         spec_c = _whole_flight_corrected(fs, station, sol.geometry, track)

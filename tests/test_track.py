@@ -371,6 +371,43 @@ def test_refined_background_and_light_curve_drop_the_light_of_a_meteor_lit_in_ev
     np.testing.assert_array_equal(relit.x_px, track.x_px)
 
 
+def test_background_masked_along_a_wrong_grating_is_mended_along_the_calibrated_one():
+    """The pipeline masks the meteor along the station's grating, then again along the event's own.
+
+    The mask is a band of 9 px half-width around each predicted spectrum curve. A station
+    dispersion angle 4 deg off (the issue's range of station errors) moves the red end of a
+    resolved camera's 300-400 px long spectrum 20-28 px sideways; this scene's spectrum is
+    only ~100 px long, so an 8 deg error does the same here (~14 px), and the background
+    there keeps part of the meteor's light. Refining that background once more with
+    the right geometry (``pipeline.remasked_background``) must bring it back to the true sky
+    (a flat 8 ADU, noise-free truth of the synthetic scene).
+    """
+    from meteorspec.background import meteor_mask, refine_background
+    from meteorspec.optics import GratingModel
+
+    kw = dict(t_on=0.03, t_off=0.93, n_frames=24, zeroth_adu_s=1.5e5, spectrum_adu_s=2.0e5,
+              start_px=(60.0, 80.0), end_px=(200.0, 130.0))
+    frames, truth, geo = make_event(**kw)
+    cam = _camera()
+    wrong = SpectralGeometry(geo.lens, GratingModel(geo.grating.grooves_per_mm, 8.0))
+    bg = estimate_background(frames, camera=cam)
+    track = find_track(frames, bg, geo, camera=cam)
+    assert track
+    first = refine_background(frames, bg, track, wrong, camera=cam)
+    clean, _, _ = make_event(**kw, noise=False)
+    light = np.max([f.signal for f in clean], axis=0) - 8.0 > 1.0
+    # pixels lit in some frame where that frame's wrong mask does not reach
+    missed = np.zeros((H, W), bool)
+    for f, c in zip(frames, clean):
+        missed |= (c.signal - 8.0 > 1.0) & ~meteor_mask(f, track, wrong, height=H, width=W)
+    assert missed.sum() > 50  # the wrong mask leaves part of the spectrum out
+    # the same bias as the first estimate's in the test above (~0.2 ADU) where the mask missed
+    assert float(np.mean(first.level_adu[missed] - 8.0)) > 0.15
+    mended = refine_background(frames, first, track, geo, camera=cam)
+    # as above: the clip's own small bias, well under the 0.15 ADU the meteor left
+    assert abs(float(np.mean(mended.level_adu[light] - 8.0))) < 0.05
+
+
 def test_refine_keeps_a_background_built_from_meteor_free_frames():
     """When every frame of the first estimate is far from the meteor, nothing is re-read or changed."""
     from meteorspec.background import refine_background

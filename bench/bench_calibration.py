@@ -35,9 +35,9 @@ Run:  python bench/bench_calibration.py --n 30 --seed 4
       from the tracker: uses the simulator's zeroth-order positions)
       ... --whole-spectrum off   (the feature method alone, as before meteorspec.calfit)
       ... --only 5,8 --verbose   (a subset, with the whole-spectrum fit's diagnostics)
-      ... --background-after-calibration   (the background re-estimated with the meteor masked along
-      the refined geometry before extraction; the pipeline masks it along the station values, which
-      for long spectra can miss the red end by many pixels and leave its light in the background)
+      ... --station-mask-only   (skip what the pipeline does after a refined calibration: the
+      background masked again along the refined geometry, meteorspec.pipeline.remasked_background;
+      the station values can miss the red end of a long spectrum by many pixels)
 
 calibrate_event gets the station response (its whole-spectrum fit needs it); ``tilt_err_deg``
 is listed per event.
@@ -238,7 +238,7 @@ def add_interpolated_motion(track) -> None:
 
 def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fallback",
               whole_spectrum_tilt: bool = True, tilt_sigma_deg: float | None = None,
-              max_tilt_err_deg: float | None = None, background_after_calibration: bool = False) -> dict:
+              max_tilt_err_deg: float | None = None, station_mask_only: bool = False) -> dict:
     t0 = time.perf_counter()
     sim = simulate_event(spec, work / "events", truth_dir=work / "truth")
     event_dir = work / "events" / spec.event_id(spec.true_station().id)
@@ -296,7 +296,7 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
     err = _line_errors(sol.geometry, true_geo, xt[lum], yt[lum], station.camera)
     out["line_median_nm"] = float(np.median(err)) if err.size else math.nan
     out["line_max_nm"] = float(np.max(err)) if err.size else math.nan
-    if background_after_calibration and sol.source == "event":
+    if not station_mask_only and sol.source == "event":
         # as the pipeline: the meteor's light masked where the refined geometry puts it (the station
         # values can put the red end of a long spectrum many pixels beside its mask)
         bg = remasked_background(stack, bg, track, sol.geometry, station)
@@ -362,9 +362,9 @@ def main(argv=None) -> int:
     ap.add_argument("--only", type=str, default=None, metavar="I,J,...",
                     help="run only these event indices of the set (development subsets)")
     ap.add_argument("--verbose", action="store_true", help="log the calibrator's whole-spectrum fit diagnostics")
-    ap.add_argument("--background-after-calibration", action="store_true",
-                    help="re-estimate the background with the meteor masked along the REFINED geometry before "
-                         "extracting (refined events; the pipeline masks along the station values only)")
+    ap.add_argument("--station-mask-only", action="store_true",
+                    help="extract with the background masked along the station geometry only (the pipeline masks "
+                         "it again along the refined geometry)")
     args = ap.parse_args(argv)
     if args.verbose:
         import logging
@@ -382,7 +382,7 @@ def main(argv=None) -> int:
                 row = run_event(spec, Path(tmp), truth_track=args.truth_track, whole_spectrum=args.whole_spectrum,
                                 whole_spectrum_tilt=not args.hold_tilt, tilt_sigma_deg=args.tilt_sigma,
                                 max_tilt_err_deg=args.max_tilt_err,
-                                background_after_calibration=args.background_after_calibration)
+                                station_mask_only=args.station_mask_only)
             except Exception as exc:
                 row = {"event": spec.event_id(spec.true_station().id), "error": f"{exc.__class__.__name__}: {exc}"}
             rows.append(row)

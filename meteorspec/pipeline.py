@@ -232,9 +232,10 @@ def remasked_background(stack: FrameStack, background: Background, track: Track,
     at the red end of a resolved spectrum, beside the mask, and the temporal statistics
     there keep part of the meteor's light, which the extraction then subtracts. On 29
     seeded simulator events with perturbed station files (``bench/bench_calibration.py
-    --n 30 --seed 4 --truth-track``, with and without ``--background-after-calibration``)
-    the Na 589 / O I 777 ratio met 5 % on 16 events against 13 (the red window of event 4
-    had kept 21-35 % of its light). Pixels outside both masks keep their values.
+    --n 30 --seed 4 --truth-track``, and with ``--station-mask-only`` for the mask along
+    the station values alone) the Na 589 / O I 777 ratio met 5 % on 16 events against 13
+    (the red window of event 4 had kept 21-35 % of its light). Pixels outside both masks
+    keep their values.
     """
     return refine_background(stack, background, track, geometry, camera=station.camera,
                              orders=recorded_orders(station))

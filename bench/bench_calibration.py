@@ -318,6 +318,8 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
         e = [_window_energy(spec_c, *w) for w in wins]
         et = [_expected_window_energy(spec, rendered, spec_c, *w, xm, ym) for w in wins]
         out["ratio_err_pct"] = 100 * ((e[0] / e[1]) / (et[0] / et[1]) - 1) if et[1] > 0 and e[1] > 0 else math.nan
+        # each window's energy against the truth's, to tell which line moved a ratio
+        out["window_energy_rel"] = [float(x / y) if y > 0 else math.nan for x, y in zip(e, et)]
         e_raw = [_window_energy(spec_raw, *w) for w in wins]
         out["ratio_err_no_ext_pct"] = (100 * ((e_raw[0] / e_raw[1]) / (et[0] / et[1]) - 1)
                                        if et[1] > 0 and e_raw[1] > 0 else math.nan)

@@ -58,6 +58,9 @@ _FE_TEMPERATURES_K = (3500.0, 6000.0)
 #: Hot-component species (~10 000 K, same source) and the rest at 4500 K.
 #: Floor of the cross-dispersion centroid error (px): sampling and PSF-shape effects left aside.
 _CROSS_FLOOR_PX = 0.05
+#: Normalised residual given to every sample of a frame the trial geometry's model cannot reach
+#: (its curve off the sensor, fewer than 20 usable samples): a constant penalty, 30 sigma.
+_UNFIT_RESIDUAL = 30.0
 _HOT = ("Ca II", "Mg II", "Si II", "Fe II", "H I", "O I", "N I")
 
 
@@ -266,7 +269,7 @@ class _Model:
             t = self.lines(k, lam)
             if t is None or good.sum() < 20:
                 t_rows.append(None)
-                b_rows.append(np.full(d.value.size, 30.0))
+                b_rows.append(np.full(d.value.size, _UNFIT_RESIDUAL))
             else:
                 aw = np.where(good[:, None], t / d.error[:, None], 0.0)
                 q, bw = self._continuum(k, good)
@@ -306,6 +309,14 @@ class _Model:
                     if s_k > 0:
                         scale[k] = s_k
         return b - a @ coef, np.asarray(cross_r, float), [coef]
+
+    def fitted_series(self, residuals: NDArray) -> list[NDArray]:
+        """Each frame's sample residuals (of :meth:`solve`), without the frames the model did not reach.
+
+        Their constant penalty would read as perfectly correlated residuals
+        (:func:`residual_correlation`) and inflate the fit's errors.
+        """
+        return [f for f in np.split(residuals, self.cut) if not np.all(f == _UNFIT_RESIDUAL)]
 
     def residuals(self, geo: SpectralGeometry) -> NDArray:
         r, rc, _ = self.solve(geo)
@@ -445,7 +456,7 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
     r = np.concatenate([r_s, r_c])
     n_data = int(np.count_nonzero(r))
     chi2 = float(np.sum(r**2))
-    corr = residual_correlation(np.split(r_s, model.cut))
+    corr = residual_correlation(model.fitted_series(r_s))
     errors = {"grooves_per_mm": math.nan, "dispersion_angle_deg": math.nan}
     tilt_err = math.nan
     try:

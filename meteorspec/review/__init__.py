@@ -170,10 +170,13 @@ def compare_text(outcome: ReviewOutcome) -> str:
             if view.wavelength_nm.size else "no spectrum")
     out = [f"event      {view.event_id}   ({span})"]
     out.append("corrections " + ("; ".join(outcome.entry["attrs"]["corrections"])))
-    if auto and str(auto.get("source", "")).startswith("unsaturated"):
+    source = str(auto.get("source", "")) if auto else ""
+    if source.startswith(("unsaturated", "least saturated")):
         frames = auto.get("source_frames")
         which = f" ({', '.join(str(int(k)) for k in frames)})" if frames is not None and len(frames) else ""
-        out.append(f"note       the automatic composition used only the unsaturated frames{which}; a re-derivation "
+        kind = ("the unsaturated frames" if source.startswith("unsaturated")
+                else "the least saturated frames, whose group lines are still partly saturated")
+        out.append(f"note       the automatic composition used only {kind}{which}; a re-derivation "
                    "uses the frames chosen here (all by default)")
     if rework is not None:
         out.append(f"frames     {rework.frames_kept.size} of {view.n_frames} used"

@@ -19,7 +19,8 @@ from .background import (Background, BinnedFrames, StoredFrameBinner, bin_frames
                          refine_background)
 from .calibrate import apply_response, calibrate_event, station_solution
 from .classify import (LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify, composition_from_groups,
-                       light_curve_from_spectra, time_resolved_from_fits, window_light_curves)
+                       light_curve_from_spectra, time_resolved_from_fits, weak_line_curves,
+                       window_light_curves)
 from .config import Event, Station, find_station_file, load_event, load_station
 from .errors import InputError
 from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
@@ -345,8 +346,10 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     # monochromatic group light curves (line profile over the rest, per frame) give the peak times
     window = window_light_curves(spectra, group_templates(fit, spectra.wavelength_nm, spectra.bin_width_nm,
                                                           fwhm_nm=fwhm_nm), fwhm_nm=fwhm_nm)
+    # where Na I D saturates over the top, the weaker Na I lines (818/819 nm, ...) may time it
     timeline = time_resolved_from_fits(spectra.time_s, frame_fits, o777_per_frame=o777, o777_err=o777_err,
-                                       window_curves=window)
+                                       window_curves=window,
+                                       weak_curves=weak_line_curves(spectra, fit, fwhm_nm=fwhm_nm))
     if na_peak_saturated(spectra, fwhm_nm, timeline.peak_time_s.get("Na I", np.nan)):
         timeline = dataclasses.replace(timeline, flags=tuple(timeline.flags) + ("na_peak_saturated",))
     _add_flags(result, timeline.flags)

@@ -1773,3 +1773,67 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
                            hot_temperature_err_k=whole_flight_fit.hot_temperature_err_k)
         out.append(fit)
     return out
+
+
+def multiplet_templates(whole_flight_fit: PlasmaFit, wavelength_nm: ArrayLike, bin_width_nm: ArrayLike,
+                        *, fwhm_nm: float | ArrayLike | Callable, species: str,
+                        line_list: LineList | None = None) -> dict[str, tuple[NDArray, NDArray, float]]:
+    """Shape of each multiplet of one species outside the composition groups, from a whole-flight fit.
+
+    :func:`group_templates` for the other lines of a species (e.g. Na I 818.3/819.5 nm beside
+    the D doublet), for :func:`meteorspec.classify.weak_line_curve`.
+
+    Parameters
+    ----------
+    whole_flight_fit : PlasmaFit
+        A successful :func:`fit_plasma` result on this grid.
+    wavelength_nm, bin_width_nm : array_like of shape (n_bins,)
+    fwhm_nm : float, array or callable
+        As for :func:`fit_plasma`.
+    species : str
+        E.g. ``"Na I"``; only its main-component lines that belong to no composition group.
+    line_list : LineList, optional
+        The list the fit used (default: project line list).
+
+    Returns
+    -------
+    dict
+        Multiplet label (line-list ``multiplet`` column) -> ``(profile, rest, energy)``:
+        ``profile`` (n_bins,) the multiplet's lines for a unit summed energy as observed (relative
+        strengths from the fit, else thin LTE at the fitted temperature), ``rest`` (n_bins,) the
+        fit's model flux without them, ``energy`` the fit's summed model energy of the multiplet
+        (data flux units x nm; the same unit as ``group_intensity``). Empty when the model holds
+        no such line.
+    """
+    if not whole_flight_fit:
+        raise ValueError(f"whole-flight fit failed ({whole_flight_fit.reason})")
+    wl = np.asarray(wavelength_nm, dtype=float)
+    bw = np.broadcast_to(np.asarray(bin_width_nm, dtype=float), wl.shape).astype(float)
+    if whole_flight_fit.model_flux.shape != wl.shape:
+        raise ValueError("whole-flight fit was made on another wavelength grid")
+    cfg = whole_flight_fit.config
+    line_list = _default_lines() if line_list is None else line_list
+    model = _Model(wl, bw, _fwhm_function(fwhm_nm, wl), line_list.select(cfg["line_index"]),
+                   cfg["component"], self_absorption=cfg["self_absorption"],
+                   continuum_degree=cfg["continuum_degree"],
+                   response_degree=cfg.get("response_degree", 0),
+                   n2_tied=cfg.get("n2_tied", False), response_table=cfg.get("response_table"))
+    for name, q in model.params.items():
+        q.value = whole_flight_fit.parameters[name]
+    p_metal = model.profiles()[0]
+    energy = model.line_state()[0]
+    thin1, _ = model._unit_lines(10.0 ** model.value("log_t"), 10.0 ** model.value("log_t_hot"))
+    response = model.response_factor(model.metal.wavelength_nm)
+    candidate = (model.metal.species == species) & ~model.metal_hot & (model.metal.group == "")
+    out = {}
+    for label in dict.fromkeys(model.metal.multiplet[candidate].tolist()):
+        member = candidate & (model.metal.multiplet == label)
+        e_m = np.where(member, energy, 0.0)
+        weight = e_m if e_m.sum() > 0 else np.where(member, thin1, 0.0)
+        if not weight.sum() > 0:
+            continue
+        seen = float(np.sum(weight * response))
+        profile = np.asarray(p_metal @ (weight / seen), dtype=float)
+        rest = whole_flight_fit.model_flux - np.asarray(p_metal @ e_m, dtype=float)
+        out[str(label)] = (profile, rest, float(np.sum(e_m * response)))
+    return out

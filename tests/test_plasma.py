@@ -315,6 +315,61 @@ def test_short_multi_starts_pick_the_fully_converged_best(bright_fit, monkeypatc
             < 0.1 * thorough.group_intensity_err[g], g
 
 
+def test_temperature_prior_combines_with_the_data_as_gaussians(bright_fit):
+    # Where the likelihood in ln T is Gaussian (mean l_d, sigma s_d), a Gaussian prior
+    # (l_p, s_p) gives the posterior mean (l_d / s_d^2 + l_p / s_p^2) / (1 / s_d^2 + 1 / s_p^2)
+    # and sigma (1 / s_d^2 + 1 / s_p^2)^-1/2 (product of two Gaussians, e.g. Sivia, *Data
+    # Analysis: A Bayesian Tutorial*, ch. 2; from memory). A prior as narrow as the data and
+    # 2 sigma away must land halfway with sigma / sqrt(2); tolerances 0.15 s_d and 5 %, for the
+    # model's nonlinearity over 2 sigma (measured: 0.03 s_d and 0.7 %).
+    spec, _, default = bright_fit
+    free = plasma.fit_plasma(spec, fwhm_nm=2.5, temperature_prior_k=None)
+    assert free and free.config["temperature_prior_k"] is None
+    l_d = math.log(free.temperature_k)
+    s_d = free.temperature_err_k / free.temperature_k
+    t_p = math.exp(l_d + 2.0 * s_d)
+    fit = plasma.fit_plasma(spec, fwhm_nm=2.5, temperature_prior_k=(t_p, s_d * t_p))
+    assert abs(math.log(fit.temperature_k) - (l_d + s_d)) < 0.15 * s_d
+    assert fit.temperature_err_k / fit.temperature_k == pytest.approx(s_d / math.sqrt(2), rel=0.05)
+    # The default prior (4500 +- 500 K) beside ~45 K of data at 2.5 nm FWHM: the same formula
+    # predicts a pull of ~0.02 s_d; it must not move a well-measured temperature more.
+    t0, sd0 = plasma.MAIN_TEMPERATURE_PRIOR_K
+    s_p = sd0 / t0
+    pull = (math.log(t0) - l_d) * s_d**2 / (s_d**2 + s_p**2)
+    assert abs(math.log(default.temperature_k) - l_d - pull) < 0.02 * s_d
+
+
+def test_temperature_prior_bounds_a_loose_coarse_temperature(line_list):
+    # At 30 nm FWHM (5 nm bins, S/N 300, the coarse scene above without a response) with the
+    # free response tilt, the blended lines barely fix T: the data alone give sigma(T) of
+    # thousands of K. The covariance with the prior must be the product of the two Gaussians
+    # in ln T, 1 / s^2 = 1 / s_d^2 + 1 / s_p^2 (as above; from memory), times the fit's
+    # sqrt(chi^2_red) scaling; 5 % for the two fits' different solutions (measured: 0.1 %).
+    # The composition stays where the data put it (0.01, a third of the issue-5 target).
+    fwhm, _, wl, bw, _, _, metal, energy = _coarse_scene(line_list)
+    flux = _render(wl, bw, metal.wavelength_nm, energy, fwhm, step_nm=0.05)
+    spec, truth = _noisy_spectrum_and_truth(wl, bw, flux, metal, energy, seed=2)
+    free = plasma.fit_plasma(spec, fwhm_nm=fwhm, temperature_prior_k=None)
+    fit = plasma.fit_plasma(spec, fwhm_nm=fwhm)
+    assert free and fit
+    s_d = free.temperature_err_k / free.temperature_k / math.sqrt(max(1.0, free.chi2_reduced))
+    assert s_d > 0.3  # loose: more than +-30 % in T
+    t0, sd0 = plasma.MAIN_TEMPERATURE_PRIOR_K
+    s_post = (1.0 / s_d**2 + (t0 / sd0) ** 2) ** -0.5 * math.sqrt(max(1.0, fit.chi2_reduced))
+    assert fit.temperature_err_k / fit.temperature_k == pytest.approx(s_post, rel=0.05)
+    assert np.abs(_composition(fit) - truth).max() < 0.01
+    assert abs(fit.temperature_k - 4600.0) < 2.0 * fit.temperature_err_k
+
+
+@pytest.mark.parametrize("prior", [(4500.0, 0.0), (-1.0, 500.0), (np.nan, 500.0)])
+def test_temperature_prior_validation(prior):
+    wl = np.arange(400.0, 500.0)
+    spec = SimpleNamespace(wavelength_nm=wl, bin_width_nm=1.0, flux=np.ones(wl.size),
+                           flux_err=np.ones(wl.size), mask=np.zeros(wl.size, bool))
+    with pytest.raises(ValueError, match="temperature_prior_k"):
+        plasma.fit_plasma(spec, fwhm_nm=2.0, temperature_prior_k=prior)
+
+
 def test_analytic_position_derivatives_match_finite_differences(line_list):
     # d flux / d (shift, stretch, width) comes from the Gaussian pdf at the bin edges;
     # central differences of the model itself are the reference (step error ~1e-8).

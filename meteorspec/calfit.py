@@ -8,10 +8,13 @@ predicted as
 
 * the NIST lines (:mod:`meteorspec.atomic`) of each meteor species with LTE weights, one
   free non-negative intensity per species (Fe I twice, at a cool and a warm temperature, so
-  that the shape of its blends is not fixed by one assumed temperature),
+  that the shape of its blends is not fixed by one assumed temperature), and for each of the
+  strongest multiplets a change of its strength, held near its LTE share by a Gaussian prior
+  (real spectra depart from optically thin LTE most in those: self-absorption),
 * the N2 first-positive bands (the band samples of :mod:`meteorspec.plasma`) with free
   non-negative intensities,
-* a smooth continuum (Legendre polynomial in the position along the curve, free sign),
+* a smooth continuum (Legendre polynomial in the position along the curve times the station
+  response, free sign),
 
 each line spread by the PSF convolved with the exposure's motion streak along the spectrum.
 The intensities are solved linearly (non-negative least squares, shared by all frames, with
@@ -62,16 +65,37 @@ _CROSS_FLOOR_PX = 0.05
 #: (its curve off the sensor, fewer than 20 usable samples): a constant penalty, 30 sigma.
 _UNFIT_RESIDUAL = 30.0
 _HOT = ("Ca II", "Mg II", "Si II", "Fe II", "H I", "O I", "N I")
+#: A multiplet gets a strength of its own (on top of its species' LTE share) when it carries at
+#: least this much of a typical meteor's line light: the species' template weight
+#: (``calibrate._TEMPLATE_WEIGHT``, Fe I = 1) times the multiplet's share of the species' light
+#: as the camera sees it (after the response). The strongest features are the ones whose
+#: wrong relative strength moves a blend centroid by most.
+_MULTIPLET_MIN_LIGHT = 0.02
+#: ... unless it is nearly all of its species (then the species' own strength is that multiplet's).
+_MULTIPLET_MAX_SHARE = 0.9
+#: 1-sigma of that change, as a fraction of the multiplet's LTE strength (Gaussian prior about
+#: it). Real meteor spectra depart from optically thin one-temperature LTE mostly by
+#: self-absorption of the strongest low-excitation multiplets (central optical depths of a few
+#: in bright meteors: Borovicka 1993, A&A 279, 627; from memory): the curve of growth
+#: (``plasma.growth_ratio``) leaves a line at tau0 = 2-3 with 0.56-0.45 of its thin energy, so
+#: departures of ~50 %; a multiplet's upper-level population away from the fitted temperatures
+#: (the main component spans 3500-5500 K, see above) moves it by the same order. The prior's
+#: chi-square is then raised as the samples' is overstated (:meth:`_Model.weigh_prior`).
+_MULTIPLET_SIGMA = 0.5
+#: Degree of each frame's continuum: a Legendre polynomial along the curve times the station
+#: response at each sample's wavelength (when the response is given). The camera sees a smooth
+#: emitted continuum times the response, which peaks mid-range; a bare quadratic over 370-890 nm
+#: cannot follow that, and a strong multiplet near the peak then fills the difference (a test
+#: spectrum with a flat continuum times a Gaussian response, ``tests/test_calfit.py``: reduced
+#: chi-square 26 with a bare quadratic, 2.2 with the response's shape; stretch -0.18 % against
+#: -0.04 %). A bare polynomial of degree 3 or 4 followed it too, but let a wrong stretch (-2.4 %)
+#: hold there or another start's solution come within the ambiguity threshold on a bench event.
+_CONTINUUM_DEGREE = 2
 
 
 @functools.lru_cache(maxsize=4)
-def spectrum_components(lo_nm: float = 340.0, hi_nm: float = 930.0) -> tuple[tuple[str, NDArray, NDArray], ...]:
-    """Line components of the emission model: ``(name, air wavelengths nm, relative weights)``.
-
-    One component per meteor species of the calibrator's template (LTE line energies at
-    4500 K, or 10 000 K for hot-component species, from the NIST line list), Fe I at two
-    temperatures, and one per N2 band parameter of :mod:`meteorspec.plasma`.
-    """
+def _components(lo_nm: float, hi_nm: float) -> tuple[tuple[str, str, NDArray, NDArray, NDArray], ...]:
+    """``(name, species, air wavelengths nm, relative weights, multiplet labels)`` of every component."""
     lines_all = _line_list()
     comps = []
     for species in _TEMPLATE_WEIGHT:
@@ -85,13 +109,26 @@ def spectrum_components(lo_nm: float = 340.0, hi_nm: float = 930.0) -> tuple[tup
             keep = e > 1e-4 * e.max()
             if keep.any():
                 w = e[keep] / e[keep].sum()
-                comps.append((f"{species} {t:.0f} K", np.asarray(lines.wavelength_nm[keep], float), w))
+                comps.append((f"{species} {t:.0f} K", species, np.asarray(lines.wavelength_nm[keep], float), w,
+                              np.asarray(lines.multiplet[keep], str)))
     wl, weights, names = n2_band_samples()
     for j, name in enumerate(names):
         sel = (weights[:, j] > 0) & (wl >= lo_nm) & (wl <= hi_nm)
         if sel.any():
-            comps.append((name, np.asarray(wl[sel], float), weights[sel, j] / weights[sel, j].sum()))
+            comps.append((name, "N2", np.asarray(wl[sel], float), weights[sel, j] / weights[sel, j].sum(),
+                          np.full(int(sel.sum()), name, dtype=str)))
     return tuple(comps)
+
+
+def spectrum_components(lo_nm: float = 340.0, hi_nm: float = 930.0) -> tuple[tuple[str, NDArray, NDArray], ...]:
+    """Line components of the emission model: ``(name, air wavelengths nm, relative weights)``.
+
+    One component per meteor species of the calibrator's template (LTE line energies at
+    4500 K, or 10 000 K for hot-component species, from the NIST line list), Fe I at two
+    temperatures, and one per N2 band parameter of :mod:`meteorspec.plasma`. The strongest
+    multiplets get a regularised free strength on top (:class:`_Model`).
+    """
+    return tuple((c[0], c[2], c[3]) for c in _components(lo_nm, hi_nm))
 
 
 @dataclass(frozen=True, eq=False)
@@ -166,22 +203,28 @@ def _prepare(cuts: list[_FrameCut], geo: SpectralGeometry, *, psf_px: float, ord
 class _Model:
     """Variable-projection residuals of a set of frames for trial geometries."""
 
-    def __init__(self, data: list[_FrameData], *, order: int, continuum_degree: int = 2,
-                 response: Callable[[NDArray], NDArray] | None = None, brightness_rounds: int = 2):
+    def __init__(self, data: list[_FrameData], *, order: int, continuum_degree: int = _CONTINUUM_DEGREE,
+                 response: Callable[[NDArray], NDArray] | None = None, brightness_rounds: int = 2,
+                 multiplet_sigma: float = _MULTIPLET_SIGMA):
         self.data = data
         self.brightness_rounds = int(brightness_rounds)
         self.order = order
-        comps = spectrum_components()
+        comps = _components(340.0, 930.0)
         self.names = [c[0] for c in comps]
-        self.centres = np.concatenate([c[1] for c in comps])
-        self.weights = np.concatenate([c[2] for c in comps])
+        self.centres = np.concatenate([c[2] for c in comps])
+        self.weights = np.concatenate([c[3] for c in comps])
+        self.response = response
         if response is not None:
             # the camera sees the emitted lines times the station response: within a species
             # that reweights lines far apart, and so where its blends have their centroids
             r = np.asarray(response(self.centres), float)
             self.weights = self.weights * np.where(np.isfinite(r) & (r > 0), r, 0.0)
-        self.comp = np.concatenate([np.full(c[1].size, j) for j, c in enumerate(comps)])
-        self.n_comp = len(comps)
+        self.comp = np.concatenate([np.full(c[2].size, j) for j, c in enumerate(comps)])
+        self.n_base = len(comps)
+        self._add_multiplets(np.concatenate([np.full(c[2].size, c[1]) for c in comps]),
+                             np.concatenate([c[4] for c in comps]), multiplet_sigma)
+        self.n_comp = self.n_base + self.n_dev
+        self.prior_weight = 1.0  # see weigh_prior
         self.degree = continuum_degree
         self.kernels = []
         for d in data:
@@ -198,6 +241,35 @@ class _Model:
         self.ys = np.concatenate([d.y_px for d in data])
         self.cut = np.cumsum([d.x_px.size for d in data])[:-1]
         self._cont_cache: dict[int, tuple[bytes, NDArray, NDArray]] = {}
+
+    def _add_multiplets(self, species: NDArray, multiplet: NDArray, sigma: float) -> None:
+        """Columns of a free strength change of each strong multiplet, and the LTE strength the
+        species components predict for it (``self.share``: component x multiplet)."""
+        self.multiplet_sigma = float(sigma)
+        picked = []
+        if self.multiplet_sigma > 0:
+            for sp, tw in _TEMPLATE_WEIGHT.items():
+                on = species == sp
+                total = float(self.weights[on].sum())
+                if not total > 0:
+                    continue
+                for label in np.unique(multiplet[on]):
+                    share = float(self.weights[on & (multiplet == label)].sum()) / total
+                    if share <= _MULTIPLET_MAX_SHARE and tw * share >= _MULTIPLET_MIN_LIGHT:
+                        picked.append((sp, str(label)))
+        self.n_dev = len(picked)
+        self.share = np.zeros((self.n_base, self.n_dev))
+        centres, weights, comp = [self.centres], [self.weights], [self.comp]
+        for m, (sp, label) in enumerate(picked):
+            sel = (species == sp) & (multiplet == label)
+            # the multiplet's lines with the mean of its species' components' weights: within a
+            # multiplet the upper levels lie close, so its shape hardly depends on the temperature
+            self.share[:, m] = np.bincount(self.comp[sel], self.weights[sel], minlength=self.n_base)
+            centres.append(self.centres[sel])
+            weights.append(self.weights[sel] / self.weights[sel].sum())
+            comp.append(np.full(int(sel.sum()), self.n_base + m))
+            self.names.append(f"{sp} {label}")
+        self.centres, self.weights, self.comp = (np.concatenate(v) for v in (centres, weights, comp))
 
     def locate(self, geo: SpectralGeometry) -> tuple[list[NDArray], list[NDArray]]:
         lam, off = geo.locate(self.x0, self.y0, self.xs, self.ys, order=self.order)
@@ -225,11 +297,15 @@ class _Model:
         dep = dep[: self.n_comp * n_ext].reshape(self.n_comp, n_ext)
         return ndimage.convolve1d(dep, kern, axis=1, mode="constant")[:, nk: nk + n].T
 
-    def _continuum(self, k: int, good: NDArray) -> tuple[NDArray, NDArray]:
-        """Orthonormal continuum basis of frame ``k`` on its ``good`` samples, and the data with
-        the continuum projected out: the same for every trial geometry that keeps the same
-        samples, so kept for the last mask of each frame."""
-        key = good.tobytes()
+    def _continuum(self, k: int, good: NDArray, lam: NDArray | None = None) -> tuple[NDArray, NDArray]:
+        """Orthonormal continuum basis of frame ``k`` on its ``good`` samples (times the response at
+        the samples' wavelengths ``lam``, see ``_CONTINUUM_DEGREE``), and the data with the
+        continuum projected out; kept for the last mask and response of each frame."""
+        rk = None
+        if self.response is not None and lam is not None:
+            rk = np.asarray(self.response(np.where(np.isfinite(lam), lam, 600.0)), float)
+            rk = np.where(np.isfinite(rk) & (rk > 0), rk, 0.0)
+        key = good.tobytes() + (b"" if rk is None else rk.tobytes())
         hit = self._cont_cache.get(k)
         if hit is not None and hit[0] == key:
             return hit[1], hit[2]
@@ -237,13 +313,34 @@ class _Model:
         bw = np.where(good, d.value / d.error, 0.0)
         u = np.linspace(-1.0, 1.0, good.size)
         cont = np.polynomial.legendre.legvander(u, self.degree) / np.where(good, d.error, np.inf)[:, None]
+        if rk is not None:
+            cont = cont * rk[:, None]
         q, _ = np.linalg.qr(cont)
         bw = bw - q @ (q.T @ bw)
         self._cont_cache[k] = (key, q, bw)
         return q, bw
 
-    def solve(self, geo: SpectralGeometry, *, lines: bool = True) -> tuple[NDArray, NDArray, list[NDArray]]:
-        """Normalised residuals of all samples, of the cross positions, and the fitted intensities.
+    def weigh_prior(self, geo: SpectralGeometry) -> float:
+        """Weigh the multiplets' prior as the data count at ``geo`` (returns the factor on its chi-square).
+
+        The samples' chi-square overstates what they know by the reduced chi-square (when
+        above 1) times the residuals' correlation along the spectra (as in
+        :attr:`SpectrumFit.chi2_scale`); the prior on the multiplets' strengths is physics, not
+        samples, so its chi-square is raised by the same factor, measured once with every
+        multiplet at its LTE share (one factor for all trial geometries: a smooth objective).
+        """
+        self.prior_weight = 1.0
+        r, _, _ = self.solve(geo, multiplets=False)
+        fitted = self.fitted_series(r)
+        n = sum(int(np.count_nonzero(f)) for f in fitted)
+        chi2 = float(sum(np.sum(f * f) for f in fitted))
+        self.prior_weight = max(1.0, chi2 / max(n, 1)) * residual_correlation(fitted) if n else 1.0
+        return self.prior_weight
+
+    def solve(self, geo: SpectralGeometry, *, lines: bool = True,
+              multiplets: bool = True) -> tuple[NDArray, NDArray, list[NDArray]]:
+        """Normalised residuals of all samples, of the cross positions and strength priors, and the
+        fitted intensities (species and N2 components, then the multiplets' changes up, then down).
 
         The line intensities (the relative spectrum) are shared by all frames, so that a
         frame's spectrum cannot bend its own lines into place; each frame has one free
@@ -260,6 +357,10 @@ class _Model:
         --truth-track``, events 8, 18, 25: 23-40 frames with saturated pixels) that left a
         reduced chi-square of 9-19 (50 in the brightest frames) and, with the tilt free,
         pulled the groove density by +0.1 to +0.2 %; refined, 1.4-2.7.
+
+        The strongest multiplets' changes (``_MULTIPLET_SIGMA``) enter from the first brightness
+        round on: their prior's scale is the LTE strength the species' components give them,
+        taken from the round before.
         """
         lams, offs = self.locate(geo)
         t_rows, b_rows = [], []
@@ -272,7 +373,7 @@ class _Model:
                 b_rows.append(np.full(d.value.size, _UNFIT_RESIDUAL))
             else:
                 aw = np.where(good[:, None], t / d.error[:, None], 0.0)
-                q, bw = self._continuum(k, good)
+                q, bw = self._continuum(k, good, lam)
                 aw = aw - q @ (q.T @ aw)
                 t_rows.append(aw)
                 b_rows.append(bw)
@@ -287,14 +388,30 @@ class _Model:
                 o = float(np.sum(w * off[sel]) / w.sum())
                 cross_r.append((o + d.cross_px[j]) / d.cross_err_px[j])
         b = np.concatenate(b_rows)
+        # a multiplet's change enters with either sign: two non-negative columns (+, -), each
+        # with its own prior row, so that at most one of them carries light
+        nb, nd = self.n_base, self.n_dev
+        t_rows = [None if t is None else np.hstack([t, -t[:, nb:]]) for t in t_rows]
+        ncol = nb + 2 * nd
         scale = self.scale.copy()
+        expected = np.zeros(nd)  # each multiplet's LTE strength from the species components
         for rnd in range(1 + (self.brightness_rounds if lines else 0)):
-            a = np.vstack([np.zeros((bk.size, self.n_comp)) if t is None else t * s
+            a = np.vstack([np.zeros((bk.size, ncol)) if t is None else t * s
                            for t, s, bk in zip(t_rows, scale, b_rows)])
             live = np.any(a != 0, axis=0) & lines
-            coef = np.zeros(self.n_comp)
+            # the changes only once the species' strengths are known (their prior's scale)
+            live[nb:] &= np.tile(expected > 0, 2) & multiplets
+            coef = np.zeros(ncol)
+            prior = np.zeros(2 * nd)  # a fixed length: the residual vector of every trial geometry
             if live.any():
-                coef[live], _ = optimize.nnls(a[:, live], b, maxiter=50 * self.n_comp)
+                dev = np.flatnonzero(live[nb:])
+                inv = math.sqrt(self.prior_weight) / (self.multiplet_sigma * np.tile(expected, 2)[dev])
+                rows = np.zeros((dev.size, ncol))
+                rows[np.arange(dev.size), nb + dev] = inv
+                coef[live], _ = optimize.nnls(np.vstack([a, rows])[:, live], np.concatenate([b, np.zeros(dev.size)]),
+                                              maxiter=50 * ncol)
+                prior[dev] = coef[nb + dev] * inv
+                expected = coef[:nb] @ self.share
             if rnd == self.brightness_rounds or not live.any():
                 break
             # each frame's brightness given the shared spectrum: linear least squares
@@ -308,7 +425,7 @@ class _Model:
                     s_k = float(pk @ bk) / norm
                     if s_k > 0:
                         scale[k] = s_k
-        return b - a @ coef, np.asarray(cross_r, float), [coef]
+        return b - a @ coef, np.concatenate([np.asarray(cross_r, float), prior]), [coef]
 
     def fitted_series(self, residuals: NDArray) -> list[NDArray]:
         """Each frame's sample residuals (of :meth:`solve`), without the frames the model did not reach.
@@ -381,7 +498,8 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
                           wl_range_nm: tuple[float, float] = (370.0, 890.0), rounds: int = 2,
                           reference: SpectralGeometry | None = None, max_nfev: int = 60,
                           response: Callable[[NDArray], NDArray] | None = None,
-                          tilt_sigma_deg: float | None = None) -> SpectrumFit:
+                          tilt_sigma_deg: float | None = None,
+                          multiplet_sigma: float = _MULTIPLET_SIGMA) -> SpectrumFit:
     """Fit groove density, dispersion angle and tilt to the frames' whole spectra.
 
     Parameters
@@ -410,6 +528,9 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
     tilt_sigma_deg : float, optional
         1-sigma of the prior on each tilt component about the prior's (default
         ``calibrate._PRIOR_SIGMA["tilt_deg"]``).
+    multiplet_sigma : float
+        1-sigma of the strongest multiplets' strength changes, as a fraction of their LTE
+        strength (default ``_MULTIPLET_SIGMA``); 0 holds every multiplet at its LTE share.
 
     Returns
     -------
@@ -438,7 +559,8 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
         data = _prepare(cuts, ref, psf_px=psf_px, order=order, wl_range_nm=wl_range_nm)
         if len(data) == 0:
             return fail
-        model = _Model(data, order=order, response=response)
+        model = _Model(data, order=order, response=response, multiplet_sigma=multiplet_sigma)
+        model.weigh_prior(ref)
 
         def fun(q: NDArray, _model=model) -> NDArray:
             full = p.copy()
@@ -472,8 +594,8 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
         pass
     # status 0 (evaluation budget used up) still returns the best point found
     ok = bool(res.status >= 0) and bool(np.all(np.isfinite(p)))
-    return SpectrumFit(geo, chi2, n_data, errors, len(model.data), ok, int(np.count_nonzero(coefs[0] > 0)),
-                       line_chi2, tilt_err, corr)
+    n_comp = int(np.count_nonzero(coefs[0][:model.n_base] > 0))
+    return SpectrumFit(geo, chi2, n_data, errors, len(model.data), ok, n_comp, line_chi2, tilt_err, corr)
 
 
 def residual_correlation(frames: list[NDArray], max_lag: int = 60) -> float:
@@ -511,6 +633,7 @@ def spectrum_chi2(cuts: list[_FrameCut], reference: SpectralGeometry, geometries
     if not data:
         return np.full(len(geometries), np.nan)
     model = _Model(data, order=order, response=response)
+    model.weigh_prior(reference)
     return np.array([float(np.sum(model.residuals(g) ** 2)) for g in geometries])
 
 

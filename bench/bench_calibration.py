@@ -18,6 +18,15 @@ geometry -> response correction. Printed per event and summarised:
   pipeline does (meteorspec.pipeline: per frame, ``extinction_correction`` at
   ``pixel_altaz`` of the track, default ``ExtinctionModel``) before the ratio is taken;
   ``ratio_err_no_ext_pct`` is the same ratio without that correction.
+  ``window_snr`` is each window's energy over its 1-sigma (the extraction's covariance),
+  ``ratio_sigma_pct`` the ratio's 1-sigma and ``ratio_err_z`` the error in those sigmas;
+  ``ratio_testable`` marks events where 5 % is at least a 2-sigma test (1-sigma <= 2.5 %).
+  A faint O I 777 on a bright sky is not: seed-4 events 19 and 29 (O I 777 window at SNR 4.9
+  and 7.2, ratio 1-sigma 21 % and 15 %) read +39 % and +21 % on the bench's noise draw
+  (+1.4 and +1.2 sigma), -0.2 % and +4.7 % on the same scenes rendered noise-free (029: the
+  integer rounding of faint pixels without a sky), and over 20 fresh noise draws their
+  O I 777 energy (true geometry, a 760-795 nm window) averages 0.94 +- 0.03 and 1.00 +- 0.03
+  of the truth and scatters by 14 % and 12 %, as the extraction's own errors state.
 
 The issue asks for meteors up to 70 deg off axis; random events that reach farther are run
 and listed but left out of the acceptance figures (``--max-off-axis``).
@@ -72,6 +81,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 import extract_acceptance as EA  # noqa: E402  (expected spectrum from the truth, shared with issue 3)
 
 RATIO_WINDOWS_NM = {"Na I 589": (585.0, 594.0), "O I 777": (773.0, 781.5)}
+#: Largest 1-sigma (%) of the measured ratio at which its 5 % acceptance is a >= 2-sigma test.
+RATIO_TESTABLE_SIGMA_PCT = 2.5
 
 
 def perturbed_specs(n: int, seed: int) -> list:
@@ -181,11 +192,18 @@ def _line_errors(sol_geo, true_geo, x0, y0, camera) -> np.ndarray:
 
 def _window_energy(spec, lo: float, hi: float) -> float:
     """Energy of the response-corrected spectrum in [lo, hi] (NaN if a bin is masked)."""
+    return _window_energy_err(spec, lo, hi)[0]
+
+
+def _window_energy_err(spec, lo: float, hi: float) -> tuple[float, float]:
+    """Energy in [lo, hi] and its 1-sigma from the spectrum's covariance (bins share pixels:
+    neighbours correlate at ~0.9, so a plain quadrature sum would be 1.5-3x too small)."""
     wl, f = spec.wavelength_nm, spec.flux
     sel = (wl >= lo) & (wl <= hi)
     if sel.sum() < 2 or np.any(spec.mask[sel]) or not np.all(np.isfinite(f[sel])):
-        return math.nan
-    return float(np.sum(f[sel] * spec.bin_width_nm[sel]))
+        return math.nan, math.nan
+    w = spec.bin_width_nm[sel]
+    return float(np.sum(f[sel] * w)), float(np.sqrt(max(w @ spec.covariance(sel) @ w, 0.0)))
 
 
 def _expected_window_energy(spec, r, spec_out, lo: float, hi: float, x0: float, y0: float, *,
@@ -315,17 +333,31 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
                       * true_geo.dispersion_nm_per_px(xm, ym, c))
             half = max(0.5 * (hi - lo), 3.0 * s) if np.isfinite(s) else 0.5 * (hi - lo)
             wins.append((c - half, c + half))
-        e = [_window_energy(spec_c, *w) for w in wins]
+        e, e_sd = (list(v) for v in zip(*[_window_energy_err(spec_c, *w) for w in wins]))
         et = [_expected_window_energy(spec, rendered, spec_c, *w, xm, ym) for w in wins]
         out["ratio_err_pct"] = 100 * ((e[0] / e[1]) / (et[0] / et[1]) - 1) if et[1] > 0 and e[1] > 0 else math.nan
         # each window's energy against the truth's, to tell which line moved a ratio
         out["window_energy_rel"] = [float(x / y) if y > 0 else math.nan for x, y in zip(e, et)]
+        # the noise of that test: each window's SNR (its 1-sigma from the extraction's covariance),
+        # the ratio's 1-sigma (% of the ratio; the windows' pixels do not overlap, so their errors
+        # add in quadrature) and the error in those sigmas. A faint red window on a bright sky
+        # (seed-4 events 19, 29: O I 777 at SNR 6-8) cannot test 5 %: over 10-20 fresh noise
+        # draws of the same scene its energy scatters by the 1-sigma stated here
+        out["window_snr"] = [float(x / s) if s > 0 else math.nan for x, s in zip(e, e_sd)]
+        out["ratio_sigma_pct"] = float(100 * math.hypot(e_sd[0] / e[0], e_sd[1] / e[1])) if e[0] > 0 and e[1] > 0 \
+            else math.nan
+        out["ratio_err_z"] = (out["ratio_err_pct"] / (100 + out["ratio_err_pct"]) * 100 / out["ratio_sigma_pct"]
+                              if out["ratio_sigma_pct"] > 0 else math.nan)
         e_raw = [_window_energy(spec_raw, *w) for w in wins]
         out["ratio_err_no_ext_pct"] = (100 * ((e_raw[0] / e_raw[1]) / (et[0] / et[1]) - 1)
                                        if et[1] > 0 and e_raw[1] > 0 else math.nan)
         airmass = np.array(fr.get("airmass", [math.nan] * lum.size), float)
         out["airmass_median"] = float(np.nanmedian(airmass[lum]))
-        out["ratio_true_snr_ok"] = bool(et[0] > 0 and et[1] > 0)
+        # the expected energies are positive (both windows on the grid): NOT a signal-to-noise test,
+        # see ratio_sigma_pct / ratio_testable for that
+        out["ratio_expected_ok"] = bool(et[0] > 0 and et[1] > 0)
+        # a 5 % test is at least a 2-sigma one only when the ratio's 1-sigma is <= 2.5 %
+        out["ratio_testable"] = bool(out["ratio_sigma_pct"] <= RATIO_TESTABLE_SIGMA_PCT)
         # the same with the TRUE geometry: what extraction and response alone give, so that the
         # calibration's share of the ratio error can be told apart
         fs_t = extract_spectra(stack, bg, track, true_geo, camera=station.camera)
@@ -426,6 +458,14 @@ def main(argv=None) -> int:
           f"without the extinction correction: |err| median "
           f"{stat('ratio_err_no_ext_pct', lambda v: np.median(np.abs(v))):.1f} %, within 5 %: "
           f"{sum(abs(r.get('ratio_err_no_ext_pct', math.nan)) <= 5 for r in ok)}/{len(ok)}")
+    testable = [r for r in ok if r.get("ratio_testable")]
+    noisy = [r for r in ok if np.isfinite(r.get("ratio_sigma_pct", math.nan)) and not r.get("ratio_testable")]
+    print(f"flux ratio, by its noise: {len(testable)} events with the ratio's 1-sigma <= "
+          f"{RATIO_TESTABLE_SIGMA_PCT} % (5 % is >= 2 sigma), within 5 %: "
+          f"{sum(abs(r['ratio_err_pct']) <= 5 for r in testable)}/{len(testable)}, within 2 sigma: "
+          f"{sum(abs(r['ratio_err_z']) <= 2 for r in testable)}/{len(testable)}; {len(noisy)} noisier (1-sigma "
+          f"{', '.join('%.0f' % r['ratio_sigma_pct'] for r in noisy)} %), within 2 sigma: "
+          f"{sum(abs(r['ratio_err_z']) <= 2 for r in noisy)}/{len(noisy)}")
     if ev:
         med = np.array([r["line_median_nm"] for r in ev])
         print(f"refined events only ({len(ev)}): median of line medians {np.median(med):.3f} nm, median <= 0.5: "

@@ -58,6 +58,7 @@ import functools
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -1643,6 +1644,27 @@ def group_templates(whole_flight_fit: PlasmaFit, wavelength_nm: ArrayLike, bin_w
         through the fit's shift, width and response factor; ``rest`` (n_bins,) is the fit's
         model flux without the group's lines. A group with no line in the model is left out.
     """
+    state = _fitted_lines(whole_flight_fit, wavelength_nm, bin_width_nm, fwhm_nm=fwhm_nm, line_list=line_list)
+    out = {}
+    for g in GROUPS:
+        member = state[0].group_of_line == g
+        if not np.any(member):
+            continue
+        template = _lines_template(member, *state, whole_flight_fit.model_flux)
+        if template is not None:
+            out[g] = template[:2]
+    return out
+
+
+def _fitted_lines(whole_flight_fit: PlasmaFit, wavelength_nm: ArrayLike, bin_width_nm: ArrayLike, *,
+                  fwhm_nm: float | ArrayLike | Callable, line_list: LineList | None,
+                  ) -> tuple[_Model, Any, NDArray, NDArray]:
+    """The fit's model rebuilt on the grid at the fitted values.
+
+    Returns ``(model, profiles, energy, thin)``: the metal lines' profile matrix (bins x lines),
+    their fitted energies and their thin-LTE energies per unit column at the fitted
+    temperatures (for lines the fit gave no light).
+    """
     if not whole_flight_fit:
         raise ValueError(f"whole-flight fit failed ({whole_flight_fit.reason})")
     wl = np.asarray(wavelength_nm, dtype=float)
@@ -1661,21 +1683,27 @@ def group_templates(whole_flight_fit: PlasmaFit, wavelength_nm: ArrayLike, bin_w
     p_metal = model.profiles()[0]
     energy = model.line_state()[0]
     thin1, _ = model._unit_lines(10.0 ** model.value("log_t"), 10.0 ** model.value("log_t_hot"))
-    out = {}
-    for g in GROUPS:
-        member = model.group_of_line == g
-        if not np.any(member):
-            continue
-        e_g = np.where(member, energy, 0.0)
-        weight = e_g if e_g.sum() > 0 else np.where(member, thin1, 0.0)
-        if not weight.sum() > 0:
-            continue
-        # unit energy as observed (through the response factor), like group_intensity
-        seen = float(np.sum(weight * model.response_factor(model.metal.wavelength_nm)))
-        profile = np.asarray(p_metal @ (weight / seen), dtype=float)
-        rest = whole_flight_fit.model_flux - np.asarray(p_metal @ e_g, dtype=float)
-        out[g] = (profile, rest)
-    return out
+    return model, p_metal, energy, thin1
+
+
+def _lines_template(member: NDArray, model: _Model, p_metal: Any, energy: NDArray, thin1: NDArray,
+                    model_flux: NDArray) -> tuple[NDArray, NDArray, float] | None:
+    """``(profile, rest, energy)`` of the metal lines ``member`` (see :func:`group_templates`), or None.
+
+    ``profile``: their lines for a unit summed energy as observed (through the response factor,
+    like ``group_intensity``), relative strengths from the fit or, when the fit gave them no
+    light, from thin LTE; ``rest``: the model flux without them; ``energy``: their fitted energy
+    as observed. None when they carry no light either way.
+    """
+    e_m = np.where(member, energy, 0.0)
+    weight = e_m if e_m.sum() > 0 else np.where(member, thin1, 0.0)
+    if not weight.sum() > 0:
+        return None
+    response = model.response_factor(model.metal.wavelength_nm)
+    seen = float(np.sum(weight * response))
+    profile = np.asarray(p_metal @ (weight / seen), dtype=float)
+    rest = model_flux - np.asarray(p_metal @ e_m, dtype=float)
+    return profile, rest, float(np.sum(e_m * response))
 
 
 def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
@@ -1830,35 +1858,13 @@ def multiplet_templates(whole_flight_fit: PlasmaFit, wavelength_nm: ArrayLike, b
         (data flux units x nm; the same unit as ``group_intensity``). Empty when the model holds
         no such line.
     """
-    if not whole_flight_fit:
-        raise ValueError(f"whole-flight fit failed ({whole_flight_fit.reason})")
-    wl = np.asarray(wavelength_nm, dtype=float)
-    bw = np.broadcast_to(np.asarray(bin_width_nm, dtype=float), wl.shape).astype(float)
-    if whole_flight_fit.model_flux.shape != wl.shape:
-        raise ValueError("whole-flight fit was made on another wavelength grid")
-    cfg = whole_flight_fit.config
-    line_list = _default_lines() if line_list is None else line_list
-    model = _Model(wl, bw, _fwhm_function(fwhm_nm, wl), line_list.select(cfg["line_index"]),
-                   cfg["component"], self_absorption=cfg["self_absorption"],
-                   continuum_degree=cfg["continuum_degree"],
-                   response_degree=cfg.get("response_degree", 0),
-                   n2_tied=cfg.get("n2_tied", False), response_table=cfg.get("response_table"))
-    for name, q in model.params.items():
-        q.value = whole_flight_fit.parameters[name]
-    p_metal = model.profiles()[0]
-    energy = model.line_state()[0]
-    thin1, _ = model._unit_lines(10.0 ** model.value("log_t"), 10.0 ** model.value("log_t_hot"))
-    response = model.response_factor(model.metal.wavelength_nm)
+    state = _fitted_lines(whole_flight_fit, wavelength_nm, bin_width_nm, fwhm_nm=fwhm_nm, line_list=line_list)
+    model = state[0]
     candidate = (model.metal.species == species) & ~model.metal_hot & (model.metal.group == "")
     out = {}
     for label in dict.fromkeys(model.metal.multiplet[candidate].tolist()):
-        member = candidate & (model.metal.multiplet == label)
-        e_m = np.where(member, energy, 0.0)
-        weight = e_m if e_m.sum() > 0 else np.where(member, thin1, 0.0)
-        if not weight.sum() > 0:
-            continue
-        seen = float(np.sum(weight * response))
-        profile = np.asarray(p_metal @ (weight / seen), dtype=float)
-        rest = whole_flight_fit.model_flux - np.asarray(p_metal @ e_m, dtype=float)
-        out[str(label)] = (profile, rest, float(np.sum(e_m * response)))
+        template = _lines_template(candidate & (model.metal.multiplet == label), *state,
+                                   whole_flight_fit.model_flux)
+        if template is not None:
+            out[str(label)] = template
     return out

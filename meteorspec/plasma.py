@@ -1838,15 +1838,10 @@ def multiplet_templates(whole_flight_fit: PlasmaFit, wavelength_nm: ArrayLike, b
 
     Parameters
     ----------
-    whole_flight_fit : PlasmaFit
-        A successful :func:`fit_plasma` result on this grid.
-    wavelength_nm, bin_width_nm : array_like of shape (n_bins,)
-    fwhm_nm : float, array or callable
-        As for :func:`fit_plasma`.
+    whole_flight_fit, wavelength_nm, bin_width_nm, fwhm_nm, line_list
+        As for :func:`group_templates`.
     species : str
         E.g. ``"Na I"``; only its main-component lines that belong to no composition group.
-    line_list : LineList, optional
-        The list the fit used (default: project line list).
 
     Returns
     -------

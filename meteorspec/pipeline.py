@@ -18,9 +18,9 @@ from .atomic import load_line_list
 from .background import (Background, BinnedFrames, StoredFrameBinner, bin_frames, estimate_background,
                          refine_background)
 from .calibrate import apply_response, calibrate_event, station_solution
-from .classify import (LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify, composition_from_groups,
-                       light_curve_from_spectra, time_resolved_from_fits, weak_line_curves,
-                       window_light_curves)
+from .classify import (DEEP_SATURATED_SHARE, LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify,
+                       composition_from_groups, deep_wing_peak, light_curve_from_spectra, time_resolved_from_fits,
+                       weak_line_curves, window_light_curves)
 from .config import Event, Station, find_station_file, load_event, load_station
 from .errors import InputError
 from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
@@ -350,6 +350,17 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     timeline = time_resolved_from_fits(spectra.time_s, frame_fits, o777_per_frame=o777, o777_err=o777_err,
                                        window_curves=window,
                                        weak_curves=weak_line_curves(spectra, fit, fwhm_nm=fwhm_nm))
+    if "na_peak_unbounded_saturated" in timeline.flags:
+        # D saturated over the top: time it from a deeper scale-up of its bins (peak time only)
+        deep, _ = apply_response(extract_spectra(stack, background, track, solution.geometry, camera=camera,
+                                                 order=order, max_saturated_fraction=DEEP_SATURATED_SHARE),
+                                 station.response)
+        if station.pointing is not None:
+            deep, _ = extinction_correction(deep, altitude_deg, model=ExtinctionModel.for_station(station))
+        templates = group_templates(fit, deep.wavelength_nm, deep.bin_width_nm, fwhm_nm=fwhm_nm)
+        deep_window = window_light_curves(deep, {"na": templates["na"]}, fwhm_nm=fwhm_nm)
+        if "na" in deep_window:
+            timeline = deep_wing_peak(timeline, "na", deep_window["na"], window["na"][2])
     if na_peak_saturated(spectra, fwhm_nm, timeline.peak_time_s.get("Na I", np.nan)):
         timeline = dataclasses.replace(timeline, flags=tuple(timeline.flags) + ("na_peak_saturated",))
     _add_flags(result, timeline.flags)

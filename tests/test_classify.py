@@ -937,3 +937,48 @@ def test_weak_line_curves_from_a_plasma_fit_time_a_self_absorbed_saturated_d():
     assert "na_peak_weak_lines" in tr.flags
     peak, sigma = tr.peak_time_s["Na I"] / 0.04, tr.peak_time_err_s["Na I"] / 0.04
     assert abs(peak - 13.6) < 1.0 and abs(peak - 13.6) < 2.5 * sigma
+
+
+def test_deep_wing_scale_up_times_a_top_saturated_too_long():
+    # Na peaks at frame 14.6, its D core masked over frames 10-19 (unbounded: no time). A deeper
+    # scale-up of the same bins reads them back, low by a share that grows with the brightness
+    # (up to 10 % at the peak, as the extraction's recovered bins read on noise-free truth,
+    # meteorspec.extract notes): a monotone function of the brightness keeps its maximum where
+    # the brightness peaks (common practice), so the time is within one frame (issue 5) and
+    # within 2.5 sigma (one seeded draw), flag na_peak_deep_wings, and the saturated frames of
+    # the light curve are filled. A deep curve still saturated over the top, or one whose maximum
+    # lies outside the saturated run (contradicting the measured frames), changes nothing.
+    n = 30
+    na, other = _bell(n, 14.6, 5.0, 3.5, 600.0), _bell(n, 15.0, 5.0, 3.5, 300.0)
+    frames, templates, fwhm = _coarse_frames(na, other, seed=5)
+    core = np.flatnonzero(np.abs(frames.wavelength_nm - 589.3) < 20.0)
+    run = np.arange(10, 20)
+    clean_flux = frames.flux.copy()
+    frames.mask[np.ix_(run, core)] = True
+    window = cl.window_light_curves(frames, templates, fwhm_nm=fwhm)
+    t = frames.time_s
+    flat = {g: np.full(n, 100.0) for g in ("na", "mg", "fe")}
+    errs = {g: np.full(n, 1.0) for g in ("na", "mg", "fe")}
+    base = cl.time_resolved(t, flat, errs, window_curves=window)
+    assert "na_peak_unbounded_saturated" in base.flags and math.isnan(base.peak_time_s["Na I"])
+
+    deep = SimpleNamespace(**vars(frames))
+    deep.mask = np.zeros_like(frames.mask)
+    low = 1.0 - 0.1 * na / na.max()
+    deep.flux = clean_flux.copy()
+    deep.flux[np.ix_(run, core)] *= low[run, None]
+    curve = cl.window_light_curves(deep, templates, fwhm_nm=fwhm)["na"]
+    tr = cl.deep_wing_peak(base, "na", curve, window["na"][2])
+    assert "na_peak_deep_wings" in tr.flags and "na_peak_unbounded_saturated" not in tr.flags
+    peak, sigma = tr.peak_time_s["Na I"] / 0.04, tr.peak_time_err_s["Na I"] / 0.04
+    assert abs(peak - 14.6) < 1.0 and abs(peak - 14.6) < 2.5 * sigma
+    assert np.all(np.isfinite(tr.light_curves["Na I"][run]))
+    assert np.isfinite(tr.na_peak_lead_s)
+
+    still = (np.where(np.isin(np.arange(n), run), np.nan, curve[0]), curve[1], window["na"][2])
+    assert cl.deep_wing_peak(base, "na", still, window["na"][2]) is base
+    late = _bell(n, 25.0, 3.0, 3.0, 900.0)  # a maximum after the run, where D was measured below it
+    assert cl.deep_wing_peak(base, "na", (late, np.full(n, 5.0), np.zeros(n, bool)),
+                             window["na"][2]) is base
+    unchanged = cl.time_resolved(t, flat, errs)
+    assert cl.deep_wing_peak(unchanged, "na", curve, window["na"][2]) is unchanged

@@ -1721,7 +1721,8 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
                                          max_halves_nm=max_halves_nm, fit_tilt=whole_spectrum_tilt,
                                          tilt_sigma_deg=whole_spectrum_tilt_sigma_deg, event=event,
                                          max_tilt_err_deg=whole_spectrum_max_tilt_err_deg,
-                                         starts=coarse.get("starts"))
+                                         starts=coarse.get("starts"),
+                                         refine_rivals=sol is None or "calibration_fit_poor" not in sol.flags)
     if new is not None:
         return new
     if sol is None:
@@ -1747,11 +1748,14 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
                              grooves_range_frac: float, max_halves_nm: float, fit_tilt: bool = True,
                              n_starts: int = 3, tilt_sigma_deg: float | None = None, event: str = "",
                              max_tilt_err_deg: float = math.inf,
-                             starts: list[SpectralGeometry] | None = None) -> tuple[WavelengthSolution | None, str]:
+                             starts: list[SpectralGeometry] | None = None,
+                             refine_rivals: bool = True) -> tuple[WavelengthSolution | None, str]:
     """The whole-spectrum fit (:mod:`meteorspec.calfit`) from the coarse search, validated.
 
     ``starts``: the coarse search's stretches when already found (they do not depend on the tilt
-    being free or held).
+    being free or held). ``refine_rivals``: a start whose short fit ends far from the best with
+    a chi-square close to it is refined before it makes the solution ambiguous (else it does so
+    at once): not where the feature fit found the lines' positions beyond their errors.
     """
     from .calfit import fit_spectrum_geometry, spectrum_chi2, wavelength_disagreement_nm
 
@@ -1781,7 +1785,8 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
         return _whole_spectrum_solution(cuts, station_geometry, psf_px=psf_px, order=order, response=response,
                                         angle_range_deg=angle_range_deg, grooves_range_frac=grooves_range_frac,
                                         max_halves_nm=max_halves_nm, fit_tilt=False, n_starts=n_starts,
-                                        tilt_sigma_deg=tilt_sigma_deg, event=event, starts=starts)
+                                        tilt_sigma_deg=tilt_sigma_deg, event=event, starts=starts,
+                                        refine_rivals=refine_rivals)
     scale = best.chi2_scale
     _log.debug("whole-spectrum fit: chi2/n %.3f corr %.2f n %d line_chi2 %.0f errors %s tilt err %.3f; starts chi2 %s",
                best.reduced_chi2, best.correlation, best.n_data, best.line_chi2, best.errors, best.tilt_err_deg,
@@ -1795,7 +1800,30 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
         apart = wavelength_disagreement_nm(best.geometry, f.geometry, cuts, order=order)
         _log.debug("whole-spectrum fit: start at dchi2 %.1f is %.2f nm apart", c - chi2[0], apart)
         if apart > max_halves_nm and c - chi2[0] < _AMBIGUOUS_CHI2 * scale:
-            return None, "calibration_ambiguous"
+            # a rival is judged only once refined as far as the best was: the starts' short fits
+            # stop in the groove-tilt valley. On the seed-5 composition bench
+            # (plasma_end_to_end.py --n 36 --seed 5, perturbed) rivals 1.5-3.2 nm from the best
+            # (events 0 and 15) came within 0.07 nm of it so refined, and the best was right
+            # (line max 0.18 and 0.26 nm; the station's 9.9 and 12.9); event 17's (2.4 nm) joined
+            # a wrong best (2.2 nm), which the halves below still flag ambiguous. Event 34 (a
+            # saturated fireball whose feature fit left its isolated lines at 6.8 times their
+            # errors: calibration_fit_poor) had its rival join a best 7.9 nm off (a wrong tilt the
+            # halves cannot see): where the features say the spectrum departs from the model,
+            # starts agreeing is no evidence, and a near rival stays a reason to fall back
+            if not refine_rivals:
+                return None, "calibration_ambiguous"
+            f = fit_spectrum_geometry(cuts, f.geometry, psf_px=psf_px, prior=station_geometry, fit_tilt=fit_tilt,
+                                      order=order, rounds=2, max_nfev=40, response=response,
+                                      tilt_sigma_deg=tilt_sigma_deg)
+            if not f:
+                return None, "calibration_ambiguous"
+            c_best, c = spectrum_chi2(cuts, best.geometry, [best.geometry, f.geometry], psf_px=psf_px, order=order,
+                                      response=response)
+            apart = wavelength_disagreement_nm(best.geometry, f.geometry, cuts, order=order)
+            _log.debug("whole-spectrum fit: refined, the start is at dchi2 %.1f, %.2f nm apart", c - c_best, apart)
+            # a refined rival better than the best by any margin leaves it ambiguous too
+            if apart > max_halves_nm and c - c_best < _AMBIGUOUS_CHI2 * scale:
+                return None, "calibration_ambiguous"
     # the two halves of the track, each fitted on its own from the solution
     half = len(cuts) // 2
     diffs = []

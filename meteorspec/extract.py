@@ -62,9 +62,15 @@ nm-per-pixel. The steps, per frame:
    ``_LOST_SHARE_ERR / (1 - L)``. In a field of an interlaced camera the
    pixels are the field's own rows (every other one, each standing for
    ``band.scale`` rows), the streak that of the field's exposure and the PSF
-   the flight's: a field's own refit is biased by its row sampling
-   (:func:`_frame_psf`). With too few unsaturated cross-sections (a
-   fireball on a coarse binned camera) a bin is masked as soon as
+   the flight's, fitted to the pixels of the unsaturated cross-sections
+   against the boxcar spectra (:func:`_fit_psf`): a field's own refit, and a
+   mean per offset over the flight, follow the spectrum's stretches that the
+   row sampling puts at each offset (:func:`_frame_psf`; the pooled fit came
+   out 1.30 px for a simulated PSF whose Gaussian equivalent is 1.23 px, and
+   the recovered Na bins of seed-4 event 7 of bench/bench_calibration.py read
+   5.0 % low against the noise-free truth, 1.0 % high with the pixel fit).
+   With too few unsaturated cross-sections (a fireball on a coarse binned
+   camera) a bin is masked as soon as
    saturated pixels carry 0.1 % of it. The shape error is common to the
    frames: :meth:`FrameSpectra.whole_flight` adds it coherently
    (``shape_rel_err``). A bin counts as saturated (flag ``saturated``)
@@ -72,7 +78,8 @@ nm-per-pixel. The steps, per frame:
    noise-free truth (bench/saturation_wings.py --oracle) the recovered bins
    read 2-2.5 % low (median) up to a lost share of 0.7 and 5.7 % between 0.7
    and 0.9, within the stated error; in fields (events 5, 7, 8, 28 of --seed 5,
-   interlaced) 1-3 % low up to 0.7 and 2-7 % between 0.7 and 0.9. Variance is
+   interlaced) 1-3 % low up to 0.7 and 2-7 % between 0.7 and 0.9 (both with
+   the pooled PSF, before the fields' pixel fit). Variance is
    propagated from ``background.variance`` pixel by pixel, and so is the
    covariance of bins that share pixels (a pixel spreads over two to several
    bins; adjacent bins correlate at ~0.9 on the default grid), kept as
@@ -856,6 +863,8 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
     # --modes true, limits 0.7 / 0.8 / 0.9): events without composition 3 / 2 / 2, events with a
     # component off by more than 0.05 8 / 6 / 9, Na peak within one exposure 8 / 9 / 11 of 29.
     sat_limit = max(max_saturated_fraction, max_lost_fraction) if pooled.clean else None
+    # the PSF that weighs a field's saturated pixels: the pooled one until it is fitted to the pixels
+    field_psf = pooled.psf
     for band in bands:
         _set_band_profile(band, None, prof_x, prof)
 
@@ -870,7 +879,7 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
         frac_cache[band.frame] = (jj, fr)
         good = ~band.bad
         s = np.bincount(jj.ravel(), (fr * np.where(good, band.data, 0.0)[:, None]).ravel(), n_wl)
-        wprof = _loss_weights(band, jj, fr, s, widths, pooled.psf, sat_limit)
+        wprof = _loss_weights(band, jj, fr, s, widths, field_psf if band.scale != 1.0 else pooled.psf, sat_limit)
         all_w = np.bincount(jj.ravel(), wprof.ravel(), n_wl)
         bad_w = np.bincount(jj.ravel(), (wprof * band.bad[:, None]).ravel(), n_wl)
         sat_w = np.bincount(jj.ravel(), (wprof * band.sat[:, None]).ravel(), n_wl)
@@ -936,6 +945,25 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
     for fidx, (present, lost, _) in lost_share.items():
         rescaled[fidx] = present & (lost > 1e-3)
     _spectral_weights(frame_weight, flux, variance, mask | rescaled, widths, fixed=measured)
+    # Fields: a mean residual per offset over every other row follows the spectrum as well as the
+    # profile, and the pooled fit comes out wide (seed-4 event 7: sigma 1.30 px where the simulated
+    # PSF's Gaussian equivalent is 1.23), which gives a saturated core too small a share and the
+    # recovered bins read 5-6 % low. The PSF that weighs a field's saturated pixels is fitted to the
+    # pixels of the unsaturated cross-sections against the boxcar spectra (:func:`_fit_psf`; the bins
+    # scaled up for lost pixels left out of the spectrum model), and the saturated fields binned again.
+    sat_fields = [b for b in bands if b.scale != 1.0 and np.any(b.sat)]
+    if sat_limit is not None and sat_fields:
+        fit_f = _fit_psf(bands, frac_cache, _rank1_model(frame_weight, flux, mask | rescaled, widths, box_flux),
+                         psf_sigma_px, hw)
+        if fit_f is not None:
+            field_psf = fit_f
+            for band in sat_fields:
+                boxcar(band)
+                k = band.frame
+                ok = lost_ok[k]
+                flux[k] = np.where(ok, box_flux[k], np.nan)
+                variance[k] = np.where(ok, box_var[k], np.nan)
+                mask[k] = ~ok
     # The light curve within the exposures again, now from these weights: a saturated frame's
     # first estimate counts only its unsaturated pixels and tilts its neighbours' light curves.
     # Frames whose streak centre moves by more than a twentieth of a bin are binned again.
@@ -1537,17 +1565,23 @@ def _loss_profile(band: _Band, psf: tuple[float, float] | None) -> np.ndarray:
     convolved with its frame's streak at its wavelength (:func:`_streak_profile`);
     the pooled profile is a mixture over frames and misplaces a bright frame's
     light (a fireball's saturated frames have their own streak). The streak is
-    taken evenly lit: light-weighting it by the light curve estimated from the
-    frame energies read bins 9 % high at a lost share of 0.75 where the light
-    within the exposures was even (tests/test_extract.py, brightest frames),
-    while on the simulator's smooth light curves it changed nothing
-    (bench/saturation_wings.py --oracle). ``band.prof_px`` (the pooled
-    profile) where no PSF was fitted or the band loses nothing.
+    lit by the light curve within the exposure (``band.light_bc``, as the
+    pixels' own profiles, :func:`_set_band_profile`): along a long streak across
+    the spectrum the light follows the meteor's brightening, the bright end is
+    where pixels saturate, and an evenly lit streak gives them too little of
+    the light. Seed-4 event 15 of bench/bench_calibration.py (10.6 px across,
+    the O I 777 core saturated): its recovered O I bins read 5.0 % low evenly
+    lit, 2.8 % low light-weighted, against the noise-free truth; on seed-5
+    events 2, 6, 31, 35 (bench/saturation_wings.py --oracle), whose light
+    changes little within an exposure, it changes nothing. A light curve
+    uneven within one exposure (a flare) is not followed by the smooth
+    ``exp(b s + c s^2)``: there either model misplaces the light. ``band.prof_px``
+    (the pooled profile) where no PSF was fitted or the band loses nothing.
     """
     if psf is None or band.streak_n_px.size != band.off_px.size or not np.any(band.bad):
         return band.prof_px
     psf = _frame_psf(band, psf)
-    return _streak_profile(band.off_px.astype(float), psf[0], psf[1], band.streak_n_px)
+    return _streak_profile(band.off_px.astype(float), psf[0], psf[1], band.streak_n_px, *band.light_bc)
 
 
 def _frame_psf(band: _Band, psf: tuple[float, float]) -> tuple[float, float]:

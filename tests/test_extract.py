@@ -430,13 +430,15 @@ def test_saturated_na_core_in_the_fields_of_an_interlaced_camera_recovered_again
                           wavelength_grid_nm=fs.wavelength_nm)
     got_sum, want_sum, fields, na = _recovered_na_against_truth(fs, ref)
     # the shape error is common to the fields (FrameSpectra.shape_rel_err, summed coherently by
-    # the whole flight): here 2.8 % of the window, and the fields' sum reads 3.0 % low; it must
-    # agree within 1.5 times that stated error (room for the kept pixels' noise, not for a bias
-    # like the 5-12 % the fields read low with their own refitted PSF)
+    # the whole flight): here 3.0 % of the window. With the PSF that weighs the saturated pixels
+    # fitted to the fields' pixels against their spectra the fields' sum reads 1.7 % low; with
+    # the pooled mean-per-offset fit (too wide on every-other-row sampling) it read 3.0 % low,
+    # and 5-12 % with each field's own refit. It must agree within 0.75 times the stated error:
+    # room for the kept pixels' noise, none for the pooled fit's bias
     shape = sum(float(np.sum((fs.shape_rel_err[k] * fs.flux[k] * fs.bin_width_nm)[na & ~fs.mask[k]]))
                 for k in fields)
     assert 0.0 < shape < 0.05 * want_sum
-    assert abs(got_sum - want_sum) <= 1.5 * shape, (got_sum / want_sum, shape / want_sum)
+    assert abs(got_sum - want_sum) <= 0.75 * shape, (got_sum / want_sum, shape / want_sum)
 
 
 def test_variance_matches_scatter_of_noise_realisations():

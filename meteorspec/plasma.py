@@ -1120,16 +1120,23 @@ class _Problem:
         return jac
 
 
-def _covariance(jac: NDArray) -> NDArray:
-    """(J^T J)^-1 with unconstrained directions given a huge (not infinite) variance."""
-    jtj = jac.T @ jac
-    d = np.diag(jtj)
-    scale = np.sqrt(np.where(d > 0, d, 1.0))  # a parameter without effect: unit scale
-    a = jtj / np.outer(scale, scale)
-    w, v = np.linalg.eigh(a)
+def _covariance(jac: NDArray) -> tuple[NDArray, NDArray]:
+    """(J^T J)^-1 in units of the Jacobian's column norms: ``(C_s, s)``, ``C = C_s / (s s^T)``.
+
+    Unconstrained directions get a huge (not infinite) variance. A parameter with almost no
+    leverage (a component the fit turned off: columns of 1e-150) keeps a finite ``C_s``
+    although its own variance ``C_s / s^2`` is huge or overflows; quantities are propagated as
+    ``(J_q / s) C_s (J_q / s)^T``, finite for those that depend on it as weakly as the data do
+    and exactly independent of it for those that do not depend on it at all.
+    """
+    peak = np.max(np.abs(jac), axis=0) if jac.shape[0] else np.zeros(jac.shape[1])
+    peak = np.where(peak > 0, peak, 1.0)
+    scale = peak * np.linalg.norm(jac / peak, axis=0)  # |column| without squaring 1e-150
+    scale = np.where(scale > 0, scale, 1.0)  # a parameter without effect: unit scale
+    unit = jac / scale
+    w, v = np.linalg.eigh(unit.T @ unit)
     floor = max(float(w.max()), 1e-300) * 1e-13
-    inv = (v / np.maximum(w, floor)) @ v.T
-    return inv / np.outer(scale, scale)
+    return (v / np.maximum(w, floor)) @ v.T, scale
 
 
 def _quantities(model: _Model) -> NDArray:
@@ -1247,16 +1254,18 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
     dof = max(n_data - len(names), 1)
     chi2_red = float(np.sum(problem.residuals(result.x)[:n_data] ** 2) / dof)
     jac = problem.jacobian(result.x)
-    # An unconstrained direction (weak spectrum) makes the covariance overflow; that is a
-    # property of the data, reported as a failed fit below, not a numerical warning.
+    # A parameter without leverage (weak spectrum, a component fitted to nothing) has a huge
+    # or overflowing variance: a property of the data, not a numerical warning. It reaches the
+    # group intensities only through their own dependence on it (_covariance).
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        cov = _covariance(jac) * max(1.0, chi2_red)
-        qj = _quantity_jacobian(model)
-        qcov = qj @ cov @ qj.T
+        cov_unit, col_scale = _covariance(jac)
+        cov_unit = cov_unit * max(1.0, chi2_red)
+        qj = _quantity_jacobian(model) / col_scale
+        qcov = qj @ cov_unit @ qj.T
+        sd = dict(zip(names, np.sqrt(np.clip(np.diag(cov_unit), 0, None)) / col_scale))
     if not np.all(np.isfinite(qcov[-3:, -3:])):
         return PlasmaFit.failed("the fit leaves the Na/Mg/Fe group intensities unconstrained "
                                 "(non-finite covariance)", n_bins)
-    sd = dict(zip(names, np.sqrt(np.clip(np.diag(cov), 0, None))))
     q = _quantities(model)
     q_err = np.sqrt(np.clip(np.diag(qcov), 0, None))
     n_metal, n_air = len(model.metal), len(model.air)

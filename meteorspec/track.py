@@ -503,7 +503,8 @@ def _ransac_link(t, x, y, score, frame_pos, speed_min, tol_px, rng, n_iter=400):
     return best_idx
 
 
-def _parent_link(link, c_pos, c_x, c_y, score, geometry, orders, width, height, frame_dt, *, tol_px=6.0):
+def _parent_link(link, c_pos, c_x, c_y, score, geometry, orders, width, height, frame_dt, *, tol_px=6.0,
+                 angle_offsets_deg=tuple(np.arange(-6.0, 6.01, 1.0))):
     """Candidates that would be the zeroth order if the linked source were a line of its spectrum.
 
     If the linked source is order ``m`` at wavelength ``lam``, its zeroth order is at
@@ -521,8 +522,16 @@ def _parent_link(link, c_pos, c_x, c_y, score, geometry, orders, width, height, 
     starts = np.searchsorted(c_pos, lpos, side="left")
     ends = np.searchsorted(c_pos, lpos, side="right")
     best = (0, None)
-    for m in orders:
-        zx, zy = geometry.zeroth_pixel(lx[:, None], ly[:, None], lam[None, :], m)
+    # the station's dispersion angle may be off by a few degrees: 3.5 deg puts a parent 130 px
+    # away 8 px beside where the station values expect it, beyond ``tol_px`` (seed-5 events 008
+    # and 018 of bench/plasma_end_to_end.py). The trial angles span the event calibration's own
+    # search (calibrate_event's angle_range_deg, +-6 deg) in 1 deg steps, which keep a parent up
+    # to ~680 px away within ``tol_px`` (half a step: 680 px x tan 0.5 deg = 5.9 px)
+    trials = [(m, g) for g in [geometry] + [geometry.with_grating(
+        dispersion_angle_deg=geometry.grating.dispersion_angle_deg + d) for d in angle_offsets_deg if d]
+        for m in orders]
+    for m, geo in trials:
+        zx, zy = geo.zeroth_pixel(lx[:, None], ly[:, None], lam[None, :], m)
         on = (zx >= 2) & (zx <= width - 3) & (zy >= 2) & (zy <= height - 3)
         # a parent must be well away from the source itself (and from its own motion streak)
         far = np.hypot(zx - lx[:, None], zy - ly[:, None]) > streak + 2 * tol_px
@@ -678,7 +687,10 @@ def find_track(frames: Sequence, background: Background, geometry: SpectralGeome
         if link.size < 3:
             return _empty_track(times, index, exposure, "no moving zeroth order after linking")
     # the linked source may be a line of the spectrum: follow "parents" towards the zeroth order
-    for _ in range(4):
+    # each step moves to a bluer line, towards the zeroth order: a bright spectrum shows many
+    # lines (seed-5 event 023 of bench/plasma_end_to_end.py: linked on O I 777, five steps to the
+    # zeroth order; four were allowed before); 12 only bounds the loop
+    for _ in range(12):
         parent = _parent_link(link, c_pos, c_x, c_y, score, geometry, orders, width, height, frame_dt)
         if parent.size < 3:
             break

@@ -2138,7 +2138,126 @@ def _isolated_misfit(fit: GeometryFit, m: LineMeasurements, max_rms_nm: float, *
 # --------------------------------------------------------------------------- flux calibration
 
 
-def apply_response(spectra: Any, response: ResponseCurve | None) -> tuple[Any, tuple[str, ...]]:
+#: Gaussian sigma per FWHM, 1 / sqrt(8 ln 2).
+_SIGMA_PER_FWHM_RESPONSE = 0.42466090014400953
+
+
+def response_blur_terms(wavelength_nm: NDArray, response: ResponseCurve,
+                        fwhm_nm: float | NDArray | None = None
+                        ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64],
+                                   NDArray[np.float64]]:
+    """Local terms that undo a response the camera applied before the instrument blur.
+
+    A camera weighs the light ``S`` by its response ``R`` at each wavelength *before* the
+    instrument profile ``K`` (PSF, motion streak; Gaussian of variance ``s^2``) spreads it:
+    the extracted flux is ``F = K * (S R)``. Dividing ``F`` bin by bin by ``R`` is exact only
+    where ``R`` is flat across the profile: the blurred wings of a line at ``lambda_i`` land
+    in bins ``x`` and are divided by ``R(x)`` instead of ``R(lambda_i)``, which skews every
+    line at first order in ``R'`` and moves light across any window edge. Wanted is the
+    blurred true spectrum ``K * S = K * (g u)`` with ``g = 1/R``, ``u = S R``. About each bin
+    ``x`` write ``ln g(x + t) = ln g(x) + h1 t + h2 t^2 / 2``. A Gaussian times
+    ``exp(h1 t)`` is the same Gaussian moved by ``d = s^2 h1`` and scaled by
+    ``exp(s^2 h1^2 / 2)`` (completing the square), so with ``v = t - d``,
+    ``int K(x+d-y) u(y) v dy = s^2 F'`` and ``int K(x+d-y) u(y) v^2 dy = s^4 F'' + s^2 F``:
+
+        ``K * S (x) = g(x) exp(s^2 h1^2 / 2) [F + (h2 / 2) (s^4 F'' + s^2 F + 2 d s^2 F'
+        + d^2 F)]``, all of ``F`` taken at ``x + d``,
+
+    exact for a locally exponential response (``h2 = 0``) however steep, with an error of
+    order ``h2^2 s^4`` otherwise.
+
+    Parameters
+    ----------
+    wavelength_nm : ndarray
+        Bin centres.
+    response : ResponseCurve
+        Station response (contract 3: linear between rows, unknown outside them).
+    fwhm_nm : float or ndarray, optional
+        Instrument-profile FWHM of the extracted bins (one value or one per bin), e.g.
+        :func:`meteorspec.lines.instrument_fwhm_nm`. None, zero or NaN: no blur.
+
+    Returns
+    -------
+    g, shift_nm, h2, s2 : ndarray
+        Per bin: ``1/R`` (NaN where ``R`` is unknown), ``d``, ``h2`` and ``s^2`` (zeros
+        where there is no blur or ``x +- s`` leaves the curve: plain division there).
+
+    Notes
+    -----
+    ``h1`` and ``h2`` are central differences of ``ln(1/R)`` over ``+-s``: ``R`` is linear
+    between rows (contract 3), so its pointwise second derivative is a train of spikes at the
+    rows; over ``+-s`` it is what the profile averages.
+    """
+    wl = np.asarray(wavelength_nm, dtype=float)
+    r = np.asarray(response(wl), dtype=float)
+    known = np.isfinite(r) & (r > 0)
+    g = np.where(known, 1.0 / np.where(known, r, 1.0), np.nan)
+    zeros = np.zeros(wl.shape)
+    if fwhm_nm is None or wl.size == 0:
+        return g, zeros, zeros.copy(), zeros.copy()
+    s = np.broadcast_to(np.asarray(fwhm_nm, dtype=float), wl.shape) * _SIGMA_PER_FWHM_RESPONSE
+    s = np.where(np.isfinite(s) & (s > 0), s, 0.0)
+    r_hi, r_lo = (np.asarray(response(wl + sign * s), dtype=float) for sign in (1.0, -1.0))
+    ok = known & (s > 0) & np.isfinite(r_hi) & np.isfinite(r_lo) & (r_hi > 0) & (r_lo > 0)
+    s_ok = np.where(ok, s, 1.0)
+    ln_r, ln_hi, ln_lo = (np.log(np.where(ok, v, 1.0)) for v in (r, r_hi, r_lo))
+    h1 = np.where(ok, -(ln_hi - ln_lo) / (2.0 * s_ok), 0.0)  # ln g = -ln R
+    h2 = np.where(ok, -(ln_hi - 2.0 * ln_r + ln_lo) / s_ok**2, 0.0)
+    s2 = np.where(ok, s * s, 0.0)
+    return g, s2 * h1, h2, s2
+
+
+def _undo_response_before_blur(flux: NDArray, variance: NDArray, wavelength_nm: NDArray,
+                               terms: tuple[NDArray, NDArray, NDArray, NDArray]
+                               ) -> tuple[NDArray, NDArray]:
+    """:func:`response_blur_terms` applied along the last axis: corrected flux and variance.
+
+    ``F`` at ``x + d`` is a cubic Hermite interpolation between bins (``F'``, ``F''``
+    linear), a Taylor step of at most one bin beyond the grid's ends; further out, or where
+    a NaN bin is involved, the bin falls back to plain division. Variance: the multiplier
+    squared times the interpolated neighbours' variances, an upper bound for positively
+    correlated neighbours (the extractor's bins share pixels); the small derivative terms
+    are left out.
+    """
+    g, shift, h2, s2 = terms
+    plain = g * flux, g * g * variance
+    n = wavelength_nm.size
+    if n < 3 or not np.any(s2 > 0):
+        return plain
+    target = wavelength_nm + shift
+    j = np.clip(np.searchsorted(wavelength_nm, target) - 1, 0, n - 2)
+    f = (target - wavelength_nm[j]) / (wavelength_nm[j + 1] - wavelength_nm[j])
+    inside = (f >= 0.0) & (f <= 1.0)
+    f = np.clip(f, 0.0, 1.0)
+
+    def at_target(a):
+        return (1.0 - f) * a[..., j] + f * a[..., j + 1]
+
+    d1 = np.gradient(flux, wavelength_nm, axis=-1)
+    d2 = np.gradient(d1, wavelength_nm, axis=-1)
+    # F at x + d: cubic Hermite between bins (a line's wing curves too much for a linear
+    # one: +6 % on the wing beyond 2 sigma of a 31-nm line on 5-nm bins); beyond the grid's
+    # ends, a Taylor step from the end bin
+    h = wavelength_nm[j + 1] - wavelength_nm[j]
+    hermite = ((1.0 + 2.0 * f) * (1.0 - f) ** 2 * flux[..., j] + f * (1.0 - f) ** 2 * h * d1[..., j]
+               + f * f * (3.0 - 2.0 * f) * flux[..., j + 1] - f * f * (1.0 - f) * h * d1[..., j + 1])
+    taylor = flux + shift * d1 + 0.5 * shift * shift * d2
+    ft = np.where(inside, hermite, taylor)
+    d1t = np.where(inside, at_target(d1), d1 + shift * d2)
+    d2t = np.where(inside, at_target(d2), d2)
+    scale = g * np.exp(0.5 * shift * shift / np.where(s2 > 0, s2, 1.0))  # exp(s^2 h1^2 / 2)
+    bracket = ft + 0.5 * h2 * (s2 * s2 * d2t + s2 * ft + 2.0 * shift * s2 * d1t + shift * shift * ft)
+    out = scale * bracket
+    v_target = np.where(inside, at_target(variance), variance)
+    var = (scale * (1.0 + 0.5 * h2 * (s2 + shift * shift))) ** 2 * v_target
+    # a Taylor step from an end bin only as far as one bin width; beyond, plain division
+    near = inside | (np.abs(shift) <= np.abs(np.gradient(wavelength_nm)))
+    use = (s2 > 0) & near & np.isfinite(out) & np.isfinite(var)
+    return np.where(use, out, plain[0]), np.where(use, var, plain[1])
+
+
+def apply_response(spectra: Any, response: ResponseCurve | None, *,
+                   fwhm_nm: float | NDArray | None = None) -> tuple[Any, tuple[str, ...]]:
     """Divide a spectrum (or per-frame spectra) by the station response curve (contract 3).
 
     Parameters
@@ -2149,12 +2268,19 @@ def apply_response(spectra: Any, response: ResponseCurve | None) -> tuple[Any, t
     response : ResponseCurve or None
         Relative sensitivity to energy flux. ``None``: nothing is divided and the result is
         flagged ``uncalibrated_flux``.
+    fwhm_nm : float or ndarray, optional
+        Instrument-profile FWHM per bin. Given, the response is undone as the camera applied
+        it, before the blur (:func:`response_blur_terms`): lines keep their blurred shape and
+        their light stays in the bins it belongs to. None: plain division by ``R`` at each
+        bin centre (skews lines where ``R`` changes across the profile). The plasma fit
+        models the plain division's skew itself (``fit_plasma(response_nm=...)``): feed it
+        plainly divided spectra, or drop the response from its line model.
 
     Returns
     -------
     corrected : same type
-        Flux / R (errors / R, variance / R^2); bins where R is unknown (outside the curve's
-        range) are masked and set to NaN.
+        Flux / R (errors / R, variance / R^2), or the blur-aware form above; bins where R is
+        unknown (outside the curve's range) are masked and set to NaN.
     flags : tuple of str
         ``("uncalibrated_flux",)``, or ``("response_corrected",)`` plus ``"response_partial"``
         when some unmasked bins fell outside the curve.
@@ -2166,19 +2292,22 @@ def apply_response(spectra: Any, response: ResponseCurve | None) -> tuple[Any, t
     changes: dict[str, Any] = {}
     if response is not None:
         wl = np.asarray(spectra.wavelength_nm, float)
-        r = np.asarray(response(wl), float)
-        unknown = ~(np.isfinite(r) & (r > 0))
-        r_safe = np.where(unknown, 1.0, r)
+        terms = response_blur_terms(wl, response, fwhm_nm)
+        unknown = ~(np.isfinite(terms[0]) & (terms[0] > 0))
         old_mask = np.asarray(spectra.mask, bool)
         mask = old_mask | unknown  # broadcasts over frames
         if np.any(unknown & ~old_mask):
             flags = flags + ("response_partial",)
         changes["mask"] = mask
-        changes["flux"] = np.where(mask, np.nan, np.asarray(spectra.flux, float) / r_safe)
-        if hasattr(spectra, "variance"):
-            changes["variance"] = np.where(mask, np.nan, np.asarray(spectra.variance, float) / r_safe**2)
+        flux = np.where(mask, np.nan, np.asarray(spectra.flux, float))
+        has_var = hasattr(spectra, "variance")
+        var = np.asarray(spectra.variance, float) if has_var else np.asarray(spectra.flux_err, float) ** 2
+        out, var = _undo_response_before_blur(flux, np.where(mask, np.nan, var), wl, terms)
+        changes["flux"] = np.where(mask, np.nan, out)
+        if has_var:
+            changes["variance"] = np.where(mask, np.nan, var)
         else:
-            changes["flux_err"] = np.where(mask, np.nan, np.asarray(spectra.flux_err, float) / r_safe)
+            changes["flux_err"] = np.where(mask, np.nan, np.sqrt(var))
     if hasattr(spectra, "flags"):
         changes["flags"] = tuple(dict.fromkeys(tuple(spectra.flags) + flags))
     return (dataclasses.replace(spectra, **changes) if changes else spectra), flags

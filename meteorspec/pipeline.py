@@ -302,12 +302,13 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
                                      extinction=ExtinctionModel.for_station(station))
     fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s, response_nm=response_nm)
     subset_attrs: dict[str, object] = {}
+    why_not_subset: list[str] = []
     if not fit or min(fit.group_coverage.values(), default=0.0) < 0.5:
         # saturated (or off-sensor) group lines in the brightest frames: the whole-flight sum
         # cannot hold them, so measure the composition on the frames that record every group
         fallback = fit_unsaturated_frames(spectra, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s,
                                           response_nm=station_response, altitude_deg=frame_altitude_deg,
-                                          extinction=ExtinctionModel.for_station(station))
+                                          extinction=ExtinctionModel.for_station(station), why=why_not_subset)
         # the whole-flight fit may still measure a group from the unsaturated wings of its
         # lines; keep whichever composition is the more precise
         if fallback is not None and (not fit or _composition_error(fallback[1]) <= _composition_error(fit)):
@@ -319,7 +320,8 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
                              "attrs": {"columns_unit": "lab_nm, measured_nm: nm; intensity: flux x nm"}}
     if not fit:
         result.add_flag("plasma_fit_failed")
-        result.parts["plasma"] = {"attrs": {"success": False, "reason": fit.reason}}
+        reason = fit.reason if not why_not_subset else f"whole flight: {fit.reason}; {why_not_subset[0]}"
+        result.parts["plasma"] = {"attrs": {"success": False, "reason": reason}}
         _flag_missing(result)
         return
     result.parts["plasma"] = plasma_part(fit, whole, flux_unit=flux_unit)
@@ -502,7 +504,7 @@ def unsaturated_frames(spectra: FrameSpectra, fwhm_nm: np.ndarray, *,
 def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_km_s: float | None,
                            min_share: float = 0.0, response_nm: tuple | None = None,
                            altitude_deg: np.ndarray | None = None, extinction: ExtinctionModel | None = None,
-                           min_coverage_saturated: float = 0.25,
+                           min_coverage_saturated: float = 0.25, why: list[str] | None = None,
                            ) -> tuple[Spectrum, PlasmaFit, dict] | None:
     """Plasma fit of the sum of the frames that record every group unsaturated.
 
@@ -528,15 +530,19 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
         The summed spectrum, its successful fit with every group covered, and attributes
         (``frames``, ``time_s``, ``light_share``, ``method``, ``group_lines_saturated``
         (True: the least saturated frames), ``group_coverage`` (na, mg, fe)); None when no
-        frame qualifies or the fit fails.
+        frame qualifies or the fit fails, and then the reason is appended to ``why`` (when
+        given): the event's report says why it has no composition.
     """
+    why = [] if why is None else why
     frames = unsaturated_frames(spectra, fwhm_nm)
     saturated = frames.size == 0
+    # the lost-share estimate is good to ~0.1 (unsaturated_frames): skip sets the fit would reject
+    max_lost = min(1.1 - min_coverage_saturated, 1.0)
     if saturated:
-        # the lost-share estimate is good to ~0.1 (unsaturated_frames): skip sets the fit would reject
-        frames = unsaturated_frames(spectra, fwhm_nm, least_saturated=True,
-                                    max_lost_share=min(1.1 - min_coverage_saturated, 1.0))
+        frames = unsaturated_frames(spectra, fwhm_nm, least_saturated=True, max_lost_share=max_lost)
     if frames.size == 0:
+        why.append(f"no lit frame records every group line unsaturated, nor keeps "
+                   f"{1.0 - max_lost:.0%} of each group's light (saturated or masked bins)")
         return None
     weight = np.asarray(spectra.frame_weight, dtype=float)
     known = np.isfinite(weight) & (weight > 0)
@@ -544,6 +550,7 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
     share = float(weight[frames].sum() / total) if total > 0 else float("nan")
     # frames whose share is unknown (saturated in full) are lit: the share is an upper bound
     if not share >= min_share:
+        why.append(f"the frames that record every group carry {share:.0%} of the light (< {min_share:.0%})")
         return None
     per_bin = {name: getattr(spectra, name)[frames] for name in ("recovered", "shape_rel_err")
                if getattr(spectra, name).shape == spectra.flux.shape}
@@ -560,7 +567,14 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
                                      else np.asarray(altitude_deg, dtype=float)[frames])
     fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=speed_km_s, response_nm=response_nm)
     min_coverage = min_coverage_saturated if saturated else 0.5
-    if not fit or min(fit.group_coverage.values(), default=0.0) < min_coverage:
+    which = "least saturated" if saturated else "unsaturated"
+    if not fit:
+        why.append(f"{which} frames {frames.tolist()}: {fit.reason}")
+        return None
+    group, coverage = min(fit.group_coverage.items(), key=lambda kv: kv[1], default=("any", 0.0))
+    if coverage < min_coverage:
+        why.append(f"{which} frames {frames.tolist()}: only {coverage:.2f} of the {group} group's model light "
+                   f"on measured bins (< {min_coverage:.2f})")
         return None
     attrs = {"frames": frames, "time_s": spectra.time_s[frames], "light_share": share,
              "light_share_note": "share of the light of the frames whose brightness is known; "

@@ -817,7 +817,9 @@ def find_track(frames: Sequence, background: Background, geometry: SpectralGeome
         cosang = abs(vx * ddx + vy * ddy) / np.hypot(vx, vy)
         if cosang >= np.cos(np.radians(_PARALLEL_LIMIT_DEG)):
             flags.append("motion_parallel_to_dispersion")
-    good_snr = snr_all[(status == "measured")]
+    # a saturated frame's SNR (clipped light over its noise) is a lower bound: it counts, else a
+    # fireball saturated in every frame would be flagged as faint
+    good_snr = snr_all[np.isin(status, ("measured", "saturated")) & np.isfinite(snr_all)]
     if good_snr.size == 0 or np.median(good_snr) < _LOW_SNR:
         flags.append("low_snr")
     return Track(time_s=times.copy(), x_px=x_fit_all, y_px=y_fit_all, x_meas_px=x_meas, y_meas_px=y_meas,

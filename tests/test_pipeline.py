@@ -9,6 +9,7 @@ plasma module's profile code; its group energies (contract section 6) are the tr
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from pathlib import Path
 
@@ -123,9 +124,34 @@ def test_fit_unsaturated_frames_none_without_qualifying_frames():
                          flux=spectra.flux, variance=spectra.variance, mask=mask, time_s=spectra.time_s,
                          flags=(), frame_weight=spectra.frame_weight)
     # the least saturated frames (2 and 7) keep only the far wings of Na I D, ~13 % of its model
-    # light, below the 25 % that fit_unsaturated_frames asks of a saturated group
+    # light (below the 25 % that fit_unsaturated_frames asks of a saturated group), which
+    # unsaturated_frames' lost-share estimate already rules out (it keeps >= 15 %)
+    why: list[str] = []
     assert pipeline.fit_unsaturated_frames(blind, fwhm_nm=np.full(blind.wavelength_nm.size, FWHM_NM),
-                                           speed_km_s=None) is None
+                                           speed_km_s=None, why=why) is None
+    # the event's report says why there is no composition
+    assert why == ["no lit frame records every group line unsaturated, nor keeps 15% of each group's light "
+                   "(saturated or masked bins)"]
+
+
+def test_fit_unsaturated_frames_reason_names_frames_and_failing_group(monkeypatch):
+    # the reasons of the two fit outcomes that leave no composition (pipeline logic only: the
+    # plasma fit itself is tested in tests/test_plasma*.py): a failed fit, and one whose weakest
+    # group has too little model light on measured bins
+    spectra, _ = _fireball_frames()
+    fwhm = np.full(spectra.wavelength_nm.size, FWHM_NM)
+    monkeypatch.setattr(pipeline, "fit_plasma", lambda *a, **k: plasma.PlasmaFit.failed("optimiser stopped"))
+    why: list[str] = []
+    assert pipeline.fit_unsaturated_frames(spectra, fwhm_nm=fwhm, speed_km_s=20.0, why=why) is None
+    assert why == ["unsaturated frames [1, 8]: optimiser stopped"]
+    fit = plasma.fit_plasma(spectra.whole_flight(), fwhm_nm=fwhm, speed_km_s=20.0)
+    assert fit
+    low = dataclasses.replace(fit, group_coverage={"na": 0.9, "mg": 0.3, "fe": 0.8})
+    monkeypatch.setattr(pipeline, "fit_plasma", lambda *a, **k: low)
+    why.clear()
+    assert pipeline.fit_unsaturated_frames(spectra, fwhm_nm=fwhm, speed_km_s=20.0, why=why) is None
+    # frames that record every group in full are held to one half (pipeline flag threshold)
+    assert why == ["unsaturated frames [1, 8]: only 0.30 of the mg group's model light on measured bins (< 0.50)"]
 
 
 def _saturating_fireball(seed: int = 5) -> tuple[FrameSpectra, np.ndarray]:

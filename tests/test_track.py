@@ -240,6 +240,18 @@ def test_saturated_zeroth_order():
     assert np.all(np.isnan(track.flux_adu[sat]))
 
 
+def test_zeroth_order_saturated_in_every_frame_is_not_flagged_faint():
+    # a fireball whose zeroth order clips in every lit frame: its clipped light alone is ~240 times
+    # its noise (the saturated frames' SNR is a lower bound), far above the tracker's low-SNR limit
+    # of 10 (module constant _LOW_SNR); "low_snr" would tell the review the opposite of the truth
+    frames, truth, geo = make_event(zeroth_adu_s=1.0e7, spectrum_adu_s=1.0e6)
+    track = run(frames, geo)
+    assert track, track.reason
+    assert set(track.status[track.luminous]) == {"saturated"}
+    assert "saturated" in track.flags
+    assert "low_snr" not in track.flags
+
+
 def test_zeroth_order_off_sensor_located_from_spectrum():
     # the meteor enters from beyond the left edge; the spectrum (dispersed towards +x, 50-100 px
     # away) is on the sensor before the zeroth order is

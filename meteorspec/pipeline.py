@@ -17,11 +17,11 @@ import numpy as np
 from .atomic import load_line_list
 from .background import (Background, BinnedFrames, StoredFrameBinner, bin_frames, estimate_background,
                          refine_background)
-from .calibrate import apply_response, calibrate_event, station_solution
+from .calibrate import _cuts, apply_response, calibrate_event, station_solution
 from .classify import (DEEP_SATURATED_SHARE, LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify,
                        composition_from_groups, deep_wing_peak, light_curve_from_spectra, time_resolved_from_fits,
                        weak_line_curves, window_light_curves)
-from .config import Event, Station, find_station_file, load_event, load_station
+from .config import Camera, Event, Station, find_station_file, load_event, load_station
 from .errors import InputError
 from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
 from .extract import FrameSpectra, Spectrum, extract_spectra
@@ -29,8 +29,9 @@ from .lines import identify_lines, instrument_fwhm_nm
 from .optics import SpectralGeometry
 from .plasma import PlasmaFit, effective_response, fit_plasma, fit_plasma_per_frame, group_templates
 from .result import STAGES, EventResult, FrameTimes, InputRecord
+from .satlines import fit_ridge_angle, saturated_ridge
 from .track import Track, find_track, remeasure_light_curve
-from .wavesol import WavelengthSolution
+from .wavesol import WavelengthSolution, geometry_values
 from .version import software_version
 from .video import FrameStack, read_stack
 
@@ -277,6 +278,12 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
             background, track = remasked, remeasure_light_curve(stack, remasked, track)
 
     spectra = extract_spectra(stack, background, track, solution.geometry, camera=camera, order=order)
+    if refine_geometry and solution.source == "station":
+        moved = aperture_from_light(stack, background, track, solution, spectra, camera=camera, order=order)
+        if moved is not None:
+            solution, spectra = moved
+            result.parts["calibration"] = calibration_part(solution)
+            result.add_flag(APERTURE_FROM_LIGHT)
     _add_flags(result, spectra.flags)
     spectra, flags = apply_response(spectra, station.response)
     _add_flags(result, flags)
@@ -373,6 +380,72 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         source = {"source": label} | {f"source_{k}": v for k, v in subset_attrs.items()}
     result.parts["composition"]["attrs"].update(source)
     _flag_missing(result)
+
+
+APERTURE_FROM_LIGHT = "aperture_angle_from_light"
+"""Flag: the station's wavelength scale kept, the aperture's dispersion angle measured on the light."""
+_MIN_RIDGE_POINTS = 20
+"""Fewest saturated-core middles the angle is fitted to (as the calibration's fireball start,
+``calibrate._saturated_start``): fewer come from one or two short cores and leave it loose."""
+
+
+def aperture_from_light(stack: FrameStack, background: Background, track: Track, solution: WavelengthSolution,
+                        spectra: FrameSpectra, *, camera: Camera, order: int, max_frames: int = 40
+                        ) -> tuple[WavelengthSolution, FrameSpectra] | None:
+    """The station fallback's aperture turned onto the saturated spectrum's ridge, or None.
+
+    Where the calibration falls back to the station file, the station's dispersion angle
+    places the extraction aperture. When that angle is off, the aperture runs beside the
+    spectrum, rotated about the zeroth order: its cross-sections cut the profile's flank, a
+    saturated core sits off their middle, and too few unsaturated cross-sections remain to
+    weigh the saturated bins by (``extract._MIN_CLEAN_SECTIONS``): they are masked, not
+    recovered (flag ``saturated`` without ``saturation_recovered``), and the fireball's
+    brightest lines are lost. The light itself says where the spectrum lies: the middles of
+    the saturated cores lie on the first-order curve whatever the wavelength scale
+    (:func:`meteorspec.satlines.saturated_ridge`), and they fix the dispersion angle
+    (:func:`meteorspec.satlines.fit_ridge_angle`, within 6 deg of the station's, the
+    calibration's search range). The angle is taken only if the extraction along it recovers
+    saturated bins from a clean profile, i.e. the aperture then sits on the spectrum. The
+    wavelength scale stays the station's (the solution keeps ``source = "station"``); only the
+    angle, and its error from the fit, change.
+
+    A blanket rule (the searched angle of every station fallback) moved seeded fireballs
+    whose aperture was already on the spectrum, and made their compositions worse
+    (``bench/plasma_end_to_end.py --seed 5 --modes perturbed``: 005, 017, 029, 034), so the
+    angle is only replaced where the station's aperture demonstrably misses the light.
+
+    Returns
+    -------
+    (solution, spectra) or None
+        The solution with the measured angle and the extraction along it; None when the
+        station's extraction already holds a clean profile (or nothing saturates), when too
+        few ridge points are found, when the fit fails or reaches its bound, or when the
+        extraction along the measured angle still lacks a clean profile.
+    """
+    if "saturated" not in spectra.flags or "saturation_recovered" in spectra.flags:
+        return None
+    station = solution.geometry
+    cuts = _cuts(stack, background, track, max_frames=max_frames)
+    geo, err = station, float("nan")
+    # a core's pixels are told apart step by step along the trial curve, and points beyond 12 px
+    # from it are dropped: a second pass along the fitted curve keeps the far end's cores too
+    for _ in range(2):
+        pts = [saturated_ridge(c.residual, geometry=geo, x0_px=c.x0_px, y0_px=c.y0_px, y_start_px=c.y_start_px,
+                               y_step_px=c.y_step_px, order=order) for c in cuts]
+        if sum(p[0].size for p in pts) < _MIN_RIDGE_POINTS:
+            return None
+        x0 = np.concatenate([np.full(p[0].size, c.x0_px) for p, c in zip(pts, cuts)])
+        y0 = np.concatenate([np.full(p[0].size, c.y0_px) for p, c in zip(pts, cuts)])
+        geo, err = fit_ridge_angle(station, x0, y0, *(np.concatenate([p[i] for p in pts]) for i in (1, 2, 3)),
+                                   order=order)
+    angle_deg = geo.grating.dispersion_angle_deg
+    if not np.isfinite(err) or abs(angle_deg - station.grating.dispersion_angle_deg) >= 6.0 - 1e-6:
+        return None
+    moved = extract_spectra(stack, background, track, geo, camera=camera, order=order)
+    if "saturation_recovered" not in moved.flags:
+        return None
+    errors = dict(solution.errors) | {"dispersion_angle_deg": err}
+    return dataclasses.replace(solution, geometry=geo, values=geometry_values(geo), errors=errors), moved
 
 
 COMPOSITION_UNCERTAIN = 0.1

@@ -285,3 +285,44 @@ def test_instrument_fwhm_when_550_nm_lies_beyond_the_lens_field():
     ok = np.isfinite(disp)
     assert ok.any() and not ok.all()
     assert_allclose(fwhm[ok], expected[ok], rtol=2e-3)  # 0.680 is sqrt(8 ln 2 / 12) to 3 digits
+
+
+def test_aperture_angle_from_light_only_where_the_station_aperture_misses():
+    # A seeded simulator event (QM03, interlaced) bright enough that its group lines saturate,
+    # extracted with the truth track. Station angle 3.4 deg off (as the perturbed station file of
+    # the seed-5 fireball 027 of bench/plasma_end_to_end.py, -11.64 against -15.0 deg): the
+    # aperture runs beside the spectrum, no clean profile is left and the saturated bins are
+    # masked. The middles of the saturated cores put the angle back on the simulator's (the
+    # forward model's known truth) within 0.05 deg (a point 100 px from the zeroth order then
+    # lies within 0.09 px of the curve), and the extraction along it recovers the saturated bins.
+    from meteorspec.calibrate import station_solution
+    from meteorspec.simulate import EventSpec, peak_for_line_snr, render_event
+    from test_extract import FlatBackground
+    from test_flux_ratio import _truth_track
+
+    spec = EventSpec("QM03", n_frames=8, meteor_start_s=0.02, meteor_duration_s=0.2, start_px=(300.0, 250.0),
+                     direction_deg=70.0, speed_deg_s=10.0, na=0.5, mg=0.2, fe=0.3, flat_response=True,
+                     atmosphere=False, n_stars=0, seed=3)
+    r = render_event(dataclasses.replace(spec, peak_energy_adu_s=peak_for_line_snr(spec, 2000.0)))
+    stack, cam, track = r.frame_stack(), r.station.camera, _truth_track(r)
+    bg = FlatBackground(cam.height, cam.width, sky_adu=spec.sky_adu, read_noise_adu=cam.read_noise_adu,
+                        gain_e_per_adu=cam.gain_e_per_adu)
+    true_deg = r.geometry.grating.dispersion_angle_deg
+    for off_deg in (3.4, -3.4):
+        station = r.geometry.with_grating(dispersion_angle_deg=true_deg + off_deg)
+        fs = pipeline.extract_spectra(stack, bg, track, station, camera=cam)
+        assert "saturated" in fs.flags and "saturation_recovered" not in fs.flags
+        moved = pipeline.aperture_from_light(stack, bg, track, station_solution(station), fs, camera=cam, order=1)
+        assert moved is not None
+        solution, spectra = moved
+        assert solution.source == "station" and "calibration_from_station" in solution.flags
+        assert solution.geometry.grating.dispersion_angle_deg == pytest.approx(true_deg, abs=0.05)
+        assert solution.values["dispersion_angle_deg"] == solution.geometry.grating.dispersion_angle_deg
+        # the wavelength scale stays the station's
+        assert solution.geometry.grating.grooves_per_mm == station.grating.grooves_per_mm
+        assert "saturation_recovered" in spectra.flags
+    # the station's own aperture on the spectrum (a clean profile): left as it is
+    fs = pipeline.extract_spectra(stack, bg, track, r.geometry, camera=cam)
+    assert "saturation_recovered" in fs.flags
+    assert pipeline.aperture_from_light(stack, bg, track, station_solution(r.geometry), fs, camera=cam,
+                                        order=1) is None

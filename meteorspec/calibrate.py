@@ -121,6 +121,7 @@ __all__ = [
     "fit_geometry",
     "measure_lines",
     "model_measurements",
+    "ridge_angle",
     "station_solution",
     "write_refined_station",
 ]
@@ -1955,6 +1956,63 @@ def _filled_cuts(cuts: list[_FrameCut], geometry: SpectralGeometry, psf: float, 
     return out
 
 
+def _ridge_angle(cuts: list[_FrameCut], along: SpectralGeometry, start: SpectralGeometry, *, order: int,
+                 min_points: int) -> tuple[SpectralGeometry, float] | None:
+    """The dispersion angle fitted (from ``start``) to the middles of the cuts' saturated cores
+    found along the curves of ``along`` (:func:`~meteorspec.satlines.saturated_ridge`,
+    :func:`~meteorspec.satlines.fit_ridge_angle`): the geometry and the angle's 1-sigma (deg),
+    or None with fewer than ``min_points`` middles."""
+    pts = [saturated_ridge(c.residual, geometry=along, x0_px=c.x0_px, y0_px=c.y0_px, y_start_px=c.y_start_px,
+                           y_step_px=c.y_step_px, order=order) for c in cuts]
+    if sum(p[0].size for p in pts) < min_points:
+        return None
+    x0 = np.concatenate([np.full(p[0].size, c.x0_px) for p, c in zip(pts, cuts)])
+    y0 = np.concatenate([np.full(p[0].size, c.y0_px) for p, c in zip(pts, cuts)])
+    return fit_ridge_angle(start, x0, y0, *(np.concatenate([p[i] for p in pts]) for i in (1, 2, 3)), order=order)
+
+
+def ridge_angle(frames: Sequence, background: Any, track: Any, geometry: SpectralGeometry, *, order: int = 1,
+                max_frames: int = 40, min_points: int = 20, passes: int = 2) -> tuple[SpectralGeometry, float] | None:
+    """The dispersion angle of a saturated first order, measured on its light alone.
+
+    The middles of the saturated cores lie on the first-order curve whatever the wavelength
+    scale; the angle about the zeroth order is fitted to them from ``geometry``'s (groove
+    density and tilt kept). A core's pixels are told apart step by step along a trial curve and
+    points far from it are dropped, so each further pass samples along the previous pass's fit
+    (the far end's cores too).
+
+    Parameters
+    ----------
+    frames, background, track
+        As for :func:`calibrate_event`.
+    geometry : SpectralGeometry
+        Start (and first trial curve).
+    order : int
+        Diffraction order.
+    max_frames : int
+        Brightest frames used.
+    min_points : int
+        Fewest core middles to fit to (fewer come from one or two short cores and leave the
+        angle loose).
+    passes : int
+        Sampling passes.
+
+    Returns
+    -------
+    (SpectralGeometry, float) or None
+        The geometry with the fitted angle and the angle's 1-sigma (deg); None with too few
+        core middles.
+    """
+    cuts = _cuts(frames, background, track, max_frames=max_frames)
+    along, fit = geometry, None
+    for _ in range(passes):
+        fit = _ridge_angle(cuts, along, geometry, order=order, min_points=min_points)
+        if fit is None:
+            return None
+        along = fit[0]
+    return fit
+
+
 def _saturated_start(cuts: list[_FrameCut], geo: SpectralGeometry, cands: list[SpectralGeometry], *,
                      psf: float, order: int, range_frac: float, step_frac: float = 0.005,
                      apart_frac: float = 0.01, margin: int = 2, clear_margin: int = 4,
@@ -1972,13 +2030,10 @@ def _saturated_start(cuts: list[_FrameCut], geo: SpectralGeometry, cands: list[S
     ``clear_margin`` more, only if one of the template's candidates ``cands`` lies within
     ``apart_frac`` of it. Both margins were set on six seeded fireballs (named in the code).
     """
-    pts = [saturated_ridge(c.residual, geometry=geo, x0_px=c.x0_px, y0_px=c.y0_px, y_start_px=c.y_start_px,
-                           y_step_px=c.y_step_px, order=order) for c in cuts]
-    if sum(p[0].size for p in pts) < min_points:
+    ridge = _ridge_angle(cuts, geo, geo, order=order, min_points=min_points)
+    if ridge is None:
         return None
-    x0 = np.concatenate([np.full(p[0].size, c.x0_px) for p, c in zip(pts, cuts)])
-    y0 = np.concatenate([np.full(p[0].size, c.y0_px) for p, c in zip(pts, cuts)])
-    geo, _err = fit_ridge_angle(geo, x0, y0, *(np.concatenate([p[i] for p in pts]) for i in (1, 2, 3)), order=order)
+    geo = ridge[0]
     filled = _filled_cuts(cuts, geo, psf, order)
     g0 = geo.grating.grooves_per_mm
     grid = [geo.with_grating(grooves_per_mm=g0 * (1 + f))

@@ -17,7 +17,7 @@ import numpy as np
 from .atomic import load_line_list
 from .background import (Background, BinnedFrames, StoredFrameBinner, bin_frames, estimate_background,
                          refine_background)
-from .calibrate import _cuts, apply_response, calibrate_event, station_solution
+from .calibrate import apply_response, calibrate_event, ridge_angle, station_solution
 from .classify import (DEEP_SATURATED_SHARE, LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify,
                        composition_from_groups, deep_wing_peak, light_curve_from_spectra, time_resolved_from_fits,
                        weak_line_curves, window_light_curves)
@@ -29,7 +29,6 @@ from .lines import identify_lines, instrument_fwhm_nm
 from .optics import SpectralGeometry
 from .plasma import PlasmaFit, effective_response, fit_plasma, fit_plasma_per_frame, group_templates
 from .result import STAGES, EventResult, FrameTimes, InputRecord
-from .satlines import fit_ridge_angle, saturated_ridge
 from .track import Track, find_track, remeasure_light_curve
 from .wavesol import WavelengthSolution, geometry_values
 from .version import software_version
@@ -425,19 +424,11 @@ def aperture_from_light(stack: FrameStack, background: Background, track: Track,
     if "saturated" not in spectra.flags or "saturation_recovered" in spectra.flags:
         return None
     station = solution.geometry
-    cuts = _cuts(stack, background, track, max_frames=max_frames)
-    geo, err = station, float("nan")
-    # a core's pixels are told apart step by step along the trial curve, and points beyond 12 px
-    # from it are dropped: a second pass along the fitted curve keeps the far end's cores too
-    for _ in range(2):
-        pts = [saturated_ridge(c.residual, geometry=geo, x0_px=c.x0_px, y0_px=c.y0_px, y_start_px=c.y_start_px,
-                               y_step_px=c.y_step_px, order=order) for c in cuts]
-        if sum(p[0].size for p in pts) < _MIN_RIDGE_POINTS:
-            return None
-        x0 = np.concatenate([np.full(p[0].size, c.x0_px) for p, c in zip(pts, cuts)])
-        y0 = np.concatenate([np.full(p[0].size, c.y0_px) for p, c in zip(pts, cuts)])
-        geo, err = fit_ridge_angle(station, x0, y0, *(np.concatenate([p[i] for p in pts]) for i in (1, 2, 3)),
-                                   order=order)
+    ridge = ridge_angle(stack, background, track, station, order=order, max_frames=max_frames,
+                        min_points=_MIN_RIDGE_POINTS)
+    if ridge is None:
+        return None
+    geo, err = ridge
     angle_deg = geo.grating.dispersion_angle_deg
     if not np.isfinite(err) or abs(angle_deg - station.grating.dispersion_angle_deg) >= 6.0 - 1e-6:
         return None

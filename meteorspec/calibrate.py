@@ -2270,12 +2270,13 @@ def response_blur_terms(wavelength_nm: NDArray, response: ResponseCurve,
 
 def _undo_response_before_blur(flux: NDArray, variance: NDArray, wavelength_nm: NDArray,
                                terms: tuple[NDArray, NDArray, NDArray, NDArray]
-                               ) -> tuple[NDArray, NDArray]:
-    """:func:`response_blur_terms` applied along the last axis: corrected flux and variance.
+                               ) -> tuple[NDArray, NDArray, NDArray]:
+    """:func:`response_blur_terms` applied along the last axis: corrected flux and variance,
+    and where the correction was made (bool, the flux's shape).
 
     ``F`` at ``x + d`` is a cubic Hermite interpolation between bins (``F'``, ``F''``
     linear), a Taylor step of at most one bin beyond the grid's ends; further out, or where
-    a NaN bin is involved, the bin falls back to plain division. Variance: the multiplier
+    a NaN bin is involved, the bin is plainly divided and not marked corrected. Variance: the multiplier
     squared times the interpolated neighbours' variances, an upper bound for positively
     correlated neighbours (the extractor's bins share pixels); the small derivative terms
     are left out.
@@ -2284,7 +2285,7 @@ def _undo_response_before_blur(flux: NDArray, variance: NDArray, wavelength_nm: 
     plain = g * flux, g * g * variance
     n = wavelength_nm.size
     if n < 3 or not np.any(s2 > 0):
-        return plain
+        return plain[0], plain[1], np.zeros(np.shape(flux), bool)
     target = wavelength_nm + shift
     j = np.clip(np.searchsorted(wavelength_nm, target) - 1, 0, n - 2)
     f = (target - wavelength_nm[j]) / (wavelength_nm[j + 1] - wavelength_nm[j])
@@ -2314,7 +2315,7 @@ def _undo_response_before_blur(flux: NDArray, variance: NDArray, wavelength_nm: 
     # a Taylor step from an end bin only as far as one bin width; beyond, plain division
     near = inside | (np.abs(shift) <= np.abs(np.gradient(wavelength_nm)))
     use = (s2 > 0) & near & np.isfinite(out) & np.isfinite(var)
-    return np.where(use, out, plain[0]), np.where(use, var, plain[1])
+    return np.where(use, out, plain[0]), np.where(use, var, plain[1]), np.broadcast_to(use, np.shape(flux))
 
 
 def apply_response(spectra: Any, response: ResponseCurve | None, *,
@@ -2341,10 +2342,12 @@ def apply_response(spectra: Any, response: ResponseCurve | None, *,
     -------
     corrected : same type
         Flux / R (errors / R, variance / R^2), or the blur-aware form above; bins where R is
-        unknown (outside the curve's range) are masked and set to NaN.
+        unknown (outside the curve's range) are masked and set to NaN; with ``fwhm_nm``, so
+        are blurred bins the correction cannot reach (the profile runs off the curve or the
+        grid, or a masked neighbour is involved).
     flags : tuple of str
         ``("uncalibrated_flux",)``, or ``("response_corrected",)`` plus ``"response_partial"``
-        when some unmasked bins fell outside the curve.
+        when some unmasked bins were masked so.
     """
     if response is None:
         flags = ("uncalibrated_flux",)
@@ -2363,7 +2366,18 @@ def apply_response(spectra: Any, response: ResponseCurve | None, *,
         flux = np.where(mask, np.nan, np.asarray(spectra.flux, float))
         has_var = hasattr(spectra, "variance")
         var = np.asarray(spectra.variance, float) if has_var else np.asarray(spectra.flux_err, float) ** 2
-        out, var = _undo_response_before_blur(flux, np.where(mask, np.nan, var), wl, terms)
+        out, var, done = _undo_response_before_blur(flux, np.where(mask, np.nan, var), wl, terms)
+        if fwhm_nm is not None:
+            # a blurred bin the correction could not reach (its profile runs off the curve or
+            # the grid, or a masked neighbour is involved) is masked, not plainly divided: its
+            # plainly skewed wings would pass for unskewed ones (near the blue end, where R
+            # falls steeply, a strong line's wing 2-4 x too bright)
+            fw = np.broadcast_to(np.asarray(fwhm_nm, dtype=float), wl.shape)
+            missed = np.isfinite(fw) & (fw > 0) & ~done & ~mask
+            if np.any(missed):
+                flags = flags + ("response_partial",) if "response_partial" not in flags else flags
+                mask = mask | missed
+                changes["mask"] = mask
         changes["flux"] = np.where(mask, np.nan, out)
         if has_var:
             changes["variance"] = np.where(mask, np.nan, var)

@@ -99,3 +99,37 @@ def test_frames_masks_and_plain_division_unchanged():
     # each frame corrected alone gives the same rows: the operation is per frame and linear
     one, _ = apply_response(_spectrum(wl, flux[1]), curve, fwhm_nm=30.0)
     assert_allclose(aware.flux[1], one.flux, equal_nan=True)
+
+
+def test_bins_the_correction_cannot_reach_are_masked_not_plainly_divided():
+    # Where a bin's profile runs off the response curve (its blue end here: rows from 340 nm,
+    # a 33-nm FWHM, s = 14 nm) or a masked neighbour enters its interpolation, the blur-aware
+    # form cannot be made. Plainly divided instead, such a bin would carry the full skew of
+    # plain division while passing for corrected (a strong blue line's wing 2-4 x too bright
+    # where R falls steeply), so it must be masked and the spectrum flagged response_partial.
+    rows = np.arange(340.0, 1001.0, 1.0)
+    curve = ResponseCurve(rows, np.exp(-((rows - 650.0) / 180.0) ** 2), path=None)  # steep in the blue
+    wl = np.arange(350.0, 900.1, BIN_NM)
+    flux = np.ones(wl.size)
+    fwhm_nm = 33.0
+    s = fwhm_nm / FWHM_PER_SIGMA
+    aware, flags = apply_response(_spectrum(wl, flux), curve, fwhm_nm=fwhm_nm)
+    off_curve = wl - s < rows[0]
+    assert np.all(aware.mask[off_curve]) and np.all(np.isnan(aware.flux[off_curve]))
+    assert not np.any(aware.mask[wl > 450.0])
+    assert "response_partial" in flags
+    # a masked bin in the middle: its neighbours within the interpolation are masked too,
+    # bins far from it are corrected
+    mask = np.zeros(wl.size, bool)
+    k = int(np.argmin(np.abs(wl - 600.0)))
+    mask[k] = True
+    spec = Spectrum(wl, np.full(wl.size, BIN_NM), np.where(mask, np.nan, flux), np.full(wl.size, 0.01), mask)
+    holed, _ = apply_response(spec, curve, fwhm_nm=fwhm_nm)
+    far = np.abs(wl - 600.0) > 6 * BIN_NM
+    assert holed.mask[k] and not np.any(holed.mask[far & (wl > 450.0)])
+    assert np.all(np.isnan(holed.flux[holed.mask]))
+    plain, _ = apply_response(spec, curve)
+    near = ~holed.mask & ~far
+    # what is kept near the hole is the blur-aware value, not the plain division
+    assert_allclose(holed.flux[near], aware.flux[near], rtol=1e-9)
+    assert not np.allclose(plain.flux[near], holed.flux[near], rtol=1e-6)

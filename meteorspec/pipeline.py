@@ -284,16 +284,9 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
             result.parts["calibration"] = calibration_part(solution)
             result.add_flag(APERTURE_FROM_LIGHT)
     _add_flags(result, spectra.flags)
-    spectra, flags = apply_response(spectra, station.response)
+    frame_altitude_deg = _frame_altitude_deg(solution.geometry, station, track)
+    spectra, flags = _flux_corrected(spectra, station, frame_altitude_deg)
     _add_flags(result, flags)
-    if station.pointing is not None:
-        altitude_deg, _ = pixel_altaz(solution.geometry.lens, station.pointing, track.x_px, track.y_px)
-        # frames outside the luminous span have no position and carry no meteor light;
-        # give them the span's median altitude so they are not reported below the horizon
-        altitude_deg = np.where(np.isfinite(altitude_deg), altitude_deg, np.nanmedian(altitude_deg))
-        # the station's elevation sets the Rayleigh pressure
-        spectra, flags = extinction_correction(spectra, altitude_deg, model=ExtinctionModel.for_station(station))
-        _add_flags(result, flags)
     flux_unit = "adu" if station.response is None else "adu/response"
     result.parts["spectrum"] = spectrum_part(spectra, flux_unit=flux_unit)
 
@@ -303,7 +296,6 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     # the plasma model skews blurred lines as the divisions did
     station_response = None if station.response is None else (station.response.wavelength_nm,
                                                                station.response.response)
-    frame_altitude_deg = altitude_deg if station.pointing is not None else None
     response_nm = effective_response(spectra, response_nm=station_response, altitude_deg=frame_altitude_deg,
                                      extinction=ExtinctionModel.for_station(station))
     fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s, response_nm=response_nm)
@@ -360,11 +352,9 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
                                        weak_curves=weak_line_curves(spectra, fit, fwhm_nm=fwhm_nm))
     if "na_peak_unbounded_saturated" in timeline.flags:
         # D saturated over the top: time it from a deeper scale-up of its bins (peak time only)
-        deep, _ = apply_response(extract_spectra(stack, background, track, solution.geometry, camera=camera,
-                                                 order=order, max_saturated_fraction=DEEP_SATURATED_SHARE),
-                                 station.response)
-        if station.pointing is not None:
-            deep, _ = extinction_correction(deep, altitude_deg, model=ExtinctionModel.for_station(station))
+        deep, _ = _flux_corrected(extract_spectra(stack, background, track, solution.geometry, camera=camera,
+                                                  order=order, max_saturated_fraction=DEEP_SATURATED_SHARE),
+                                  station, frame_altitude_deg)
         templates = group_templates(fit, deep.wavelength_nm, deep.bin_width_nm, fwhm_nm=fwhm_nm)
         deep_window = window_light_curves(deep, {"na": templates["na"]}, fwhm_nm=fwhm_nm)
         if "na" in deep_window:
@@ -379,6 +369,27 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         source = {"source": label} | {f"source_{k}": v for k, v in subset_attrs.items()}
     result.parts["composition"]["attrs"].update(source)
     _flag_missing(result)
+
+
+def _frame_altitude_deg(geometry: SpectralGeometry, station: Station, track: Track) -> np.ndarray | None:
+    """Altitude (deg) of the meteor in each frame, or None when the station has no ``[pointing]``."""
+    if station.pointing is None:
+        return None
+    altitude_deg, _ = pixel_altaz(geometry.lens, station.pointing, track.x_px, track.y_px)
+    # frames outside the luminous span have no position and carry no meteor light;
+    # give them the span's median altitude so they are not reported below the horizon
+    return np.where(np.isfinite(altitude_deg), altitude_deg, np.nanmedian(altitude_deg))
+
+
+def _flux_corrected(spectra: FrameSpectra, station: Station,
+                    altitude_deg: np.ndarray | None) -> tuple[FrameSpectra, tuple[str, ...]]:
+    """Spectra divided by the station response, then by the atmosphere's transmission towards
+    each frame (given its altitudes; the station's elevation sets the Rayleigh pressure)."""
+    spectra, flags = apply_response(spectra, station.response)
+    if altitude_deg is not None:
+        spectra, more = extinction_correction(spectra, altitude_deg, model=ExtinctionModel.for_station(station))
+        flags = tuple(flags) + tuple(more)
+    return spectra, tuple(flags)
 
 
 APERTURE_FROM_LIGHT = "aperture_angle_from_light"

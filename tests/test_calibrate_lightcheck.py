@@ -104,3 +104,36 @@ def test_check_does_not_depend_on_the_stretch(grooves):
     geo = GEO.with_grating(grooves_per_mm=grooves)
     cuts = _cuts(_lines())
     assert cal._checked_zeroth_order(_event_solution(geo), cuts, PSF_PX, geo, 1).source == "event"
+
+
+# --------------------------------------------------------------------------- wide re-measure
+# The second check of an accepted solution (cal._checked_wide_offset): the isolated features
+# re-measured along its curves with a search wider than any refinement round's. A wrong stretch
+# that the refinement carried its features along with leaves them off its curves by a common
+# shift. Same drawn images: lines at NIST centroids through the project's grating model.
+
+
+def _stretched(frac: float) -> SpectralGeometry:
+    return SpectralGeometry(GEO.lens, dataclasses.replace(GEO.grating,
+                                                          grooves_per_mm=GEO.grating.grooves_per_mm * (1 + frac)))
+
+
+def test_wide_remeasure_keeps_the_true_geometry():
+    cuts = _cuts(_lines())
+    off, err, n = cal._wide_offset(GEO, cuts, PSF_PX, 1, n_bins=8)
+    # the features sit on the true curves within a quarter pixel (template and sampling
+    # floor; the refusal needs a whole pixel)
+    assert n >= 5 and abs(off) < 0.25
+    sol = cal._checked_wide_offset(_event_solution(GEO), cuts, PSF_PX, GEO, 1, n_bins=8)
+    assert sol.source == "event" and cal.WIDE_OFFSET_FLAG not in sol.flags
+
+
+@pytest.mark.parametrize("frac", [0.01, -0.012])
+def test_wide_remeasure_refuses_a_wrong_stretch(frac):
+    # 1-1.2 % in groove density (the refused seed-5 perturbed composition event 021: +1.18 %)
+    # moves the features 1.7-2.5 px at ~2.7 nm/px: station values, flagged
+    cuts = _cuts(_lines())
+    off, err, n = cal._wide_offset(_stretched(frac), cuts, PSF_PX, 1, n_bins=8)
+    assert abs(off) > cal._WIDE_MIN_OFFSET_PX and abs(off) > cal._WIDE_MIN_SIGMA * err
+    sol = cal._checked_wide_offset(_event_solution(_stretched(frac)), cuts, PSF_PX, GEO, 1, n_bins=8)
+    assert sol.source == "station" and cal.WIDE_OFFSET_FLAG in sol.flags

@@ -458,6 +458,10 @@ def main(argv=None) -> int:
           f"without the extinction correction: |err| median "
           f"{stat('ratio_err_no_ext_pct', lambda v: np.median(np.abs(v))):.1f} %, within 5 %: "
           f"{sum(abs(r.get('ratio_err_no_ext_pct', math.nan)) <= 5 for r in ok)}/{len(ok)}")
+    every = [r for r in ok if r["line_median_nm"] <= 0.5 and r["line_max_nm"] <= 1.0
+             and abs(r["grooves_err_pct"]) <= 0.3 and abs(r["angle_err_deg"]) <= 0.3
+             and abs(r.get("ratio_err_pct", math.nan)) <= 5]
+    print(f"every figure at once (a ratio that cannot be measured fails): {len(every)}/{len(ok)}")
     testable = [r for r in ok if r.get("ratio_testable")]
     noisy = [r for r in ok if np.isfinite(r.get("ratio_sigma_pct", math.nan)) and not r.get("ratio_testable")]
     print(f"flux ratio, by its noise: {len(testable)} events with the ratio's 1-sigma <= "

@@ -133,7 +133,8 @@ __all__ = [
 
 CALIBRATION_FLAGS = ("calibration_from_station", "calibration_few_lines", "calibration_fit_poor",
                      "calibration_unresolved", "calibration_whole_spectrum", "calibration_ambiguous",
-                     "calibration_zeroth_order_doubtful", "calibration_features_offset", "uncalibrated_flux", "response_corrected", "response_partial")
+                     "calibration_zeroth_order_doubtful", "calibration_features_offset", "uncalibrated_flux",
+                     "response_corrected", "response_partial")
 
 # Species of the templates and their LTE temperature: the main (~4500 K) and the hot
 # (~10 000 K) components of meteor spectra (Borovicka 1994, Planet. Space Sci. 42, 145).

@@ -1003,8 +1003,8 @@ def _peak_time_err(time_s: NDArray, flux: NDArray, err: NDArray, *, min_snr: flo
     the classical single-body light curve (Opik's theory, I ~ x (1 - x/3)^2, x the air
     density over that at the maximum; common practice, from memory) 69 -> 100, scipy.stats
     gamma 77 -> 100, skew-normal 86 -> 100, the simulator's shape 72 -> 95; on a split
-    Gaussian itself 94 -> 82. Script: comparisons of the two estimators on seeded curves
-    (not kept; the single-body case is tests/test_classify.py::test_na_peak_time_on_a_broad_skewed_top).
+    Gaussian itself 94 -> 82 (``python bench/peak_time_shapes.py``; the split-Gaussian column
+    from the same script on the code before this fit, commit 5fbfcc1).
     """
     good = np.isfinite(flux) & np.isfinite(err) & (err > 0)
     if exclude is not None:

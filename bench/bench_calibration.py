@@ -246,7 +246,7 @@ def _whole_flight_corrected(fs, station, geometry, track, *, extinction: bool = 
         keep = _frames_measuring(fs, windows)
         if not keep.any():
             return None
-        fs = _frame_subset(fs, keep)
+        fs = fs.select_frames(keep)
     spec, _ = apply_response(fs.whole_flight(), station.response)
     return spec
 
@@ -258,15 +258,6 @@ def _frames_measuring(fs, windows) -> np.ndarray:
         sel = (fs.wavelength_nm >= lo) & (fs.wavelength_nm <= hi)
         keep &= ~fs.mask[:, sel].any(axis=1)
     return keep
-
-
-def _frame_subset(fs, keep: np.ndarray):
-    """``fs`` restricted to the frames ``keep`` (every per-frame array sliced alike)."""
-    n = fs.n_frames
-    per_frame = {f.name: getattr(fs, f.name)[keep] for f in dataclasses.fields(fs)
-                 if isinstance(getattr(fs, f.name), np.ndarray) and getattr(fs, f.name).ndim >= 1
-                 and getattr(fs, f.name).shape[0] == n and f.name not in ("wavelength_nm", "bin_width_nm", "profile_offset_px", "profile")}
-    return dataclasses.replace(fs, **per_frame)
 
 
 def add_interpolated_motion(track) -> None:

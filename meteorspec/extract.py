@@ -125,7 +125,7 @@ from __future__ import annotations
 
 import functools
 from collections.abc import Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -316,6 +316,18 @@ class FrameSpectra:
     @property
     def n_frames(self) -> int:
         return int(self.flux.shape[0])
+
+    def select_frames(self, index: np.ndarray) -> FrameSpectra:
+        """These spectra restricted to the frames ``index`` (integer positions or a boolean mask):
+        every per-frame array sliced alike; the grid and the pooled profile kept."""
+        n = self.n_frames
+        per_frame = {}
+        for name in ("flux", "variance", "mask", "time_s", "frame_weight", "light_time_s", "recovered",
+                     "shape_rel_err", "correlation"):
+            value = np.asarray(getattr(self, name))
+            if value.ndim >= 1 and value.shape[0] == n:
+                per_frame[name] = value[index]
+        return replace(self, **per_frame)
 
     def whole_flight(self, *, min_coverage: float = 0.1) -> Spectrum:
         """Sum over frames, with masked samples accounted for by the light curve.

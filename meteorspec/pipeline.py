@@ -627,13 +627,7 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
     if not share >= min_share:
         why.append(f"the frames that record every group carry {share:.0%} of the light (< {min_share:.0%})")
         return None
-    per_bin = {name: getattr(spectra, name)[frames] for name in ("recovered", "shape_rel_err")
-               if getattr(spectra, name).shape == spectra.flux.shape}
-    subset = dataclasses.replace(
-        spectra, flux=spectra.flux[frames], variance=spectra.variance[frames], mask=spectra.mask[frames],
-        time_s=spectra.time_s[frames], frame_weight=weight[frames], **per_bin,
-        correlation=(spectra.correlation[frames] if np.ndim(spectra.correlation) == 3
-                     and spectra.correlation.shape[0] == spectra.n_frames else spectra.correlation))
+    subset = dataclasses.replace(spectra.select_frames(frames), frame_weight=weight[frames])
     whole = subset.whole_flight()
     # response_nm: the station response; with the frames' altitudes the subset's own
     # light-weighted transmission joins it (see plasma.effective_response)

@@ -1653,7 +1653,9 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
         mid-track, station geometry). 3.5 nm/px: on the same bench, of the four events at
         2.4-3.0 nm/px where the feature method fell back, the whole-spectrum fit rejected three
         and accepted one 2.4 nm off (model mismatch of resolved lines, reduced chi-square 31),
-        while at 6.9-10.8 nm/px it refined 6 events (line medians 0.09-1.0 nm).
+        while at 6.9-10.8 nm/px it refined 6 events (line medians 0.09-1.0 nm). Below it the
+        fit also runs where the feature method found too few features along the stretch its
+        coarse search chose, and is kept only within ``max_halves_nm`` of that stretch.
     max_halves_nm : float
         A whole-spectrum solution is kept only when the fits to the first and the second half
         of the track each agree with it to within this (largest wavelength difference over
@@ -1700,6 +1702,8 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
                **kwargs: Any) -> WavelengthSolution:
     """:func:`calibrate_event` on the frames' cut-outs (the features, then the whole spectrum)."""
     coarse: dict[str, Any] = {}  # the coarse search, shared by both methods (same inputs, same result)
+    fine_few = False
+    disp = math.nan
     if whole_spectrum == "always":
         sol = None
     else:
@@ -1722,7 +1726,12 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
                 return sol
             k = np.flatnonzero(ok)[ok.sum() // 2]
             disp = float(station_geometry.dispersion_nm_per_px(x[k], y[k], 589.0, order))
-            if not (np.isfinite(disp) and disp > whole_spectrum_min_nm_per_px):
+            # on a fine spectrum the whole-spectrum fit runs only where the feature method found
+            # too few features along a stretch its coarse search chose (a faint event), and is
+            # kept only where it agrees with that stretch (below)
+            fine_few = ("calibration_few_lines" in sol.flags and np.isfinite(disp)
+                        and coarse.get("chosen") is not None)
+            if not (np.isfinite(disp) and disp > whole_spectrum_min_nm_per_px) and not fine_few:
                 return sol
     # the whole-spectrum fit keeps the zeroth orders of the linear light curve, as it was set up
     # and tuned with (meteorspec.calfit): with the first and last lit frames' centres modelled,
@@ -1737,6 +1746,21 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
                                          max_tilt_err_deg=whole_spectrum_max_tilt_err_deg,
                                          starts=coarse.get("starts"),
                                          refine_rivals=sol is None or "calibration_fit_poor" not in sol.flags)
+    if new is not None and fine_few and not disp > whole_spectrum_min_nm_per_px:
+        # Resolved lines are where the line model mismatches most (a fit 2.4 nm off was accepted
+        # at reduced chi-square 31, see whole_spectrum_min_nm_per_px), and the tilt held at a
+        # wrong station value drags the stretch: a solution is kept only where the stretch the
+        # isolated features chose in the coarse search (an independent reading of the same
+        # frames) agrees with it to ``max_halves_nm``, the fit's own agreement limit. Seeded
+        # bench_calibration.py --truth-track: seed 5 event 004 (2.8 nm/px, one isolated
+        # feature) 0.96 nm apart, kept (lines 0.31 nm median, 0.66 max; the station's 13.9);
+        # seed 4 event 024 (2.4 nm/px, station tilt 2 deg off) 8.86 nm apart, refused (it was
+        # 0.90 nm median, 3.04 max, grooves +0.37 %)
+        from .calfit import wavelength_disagreement_nm
+        apart = wavelength_disagreement_nm(new.geometry, coarse["chosen"], cuts, order=order)
+        _log.debug("whole-spectrum fit on a fine spectrum: %.2f nm from the features' stretch", apart)
+        if not apart <= max_halves_nm:
+            new, flag = None, "calibration_ambiguous"
     if new is not None:
         return _checked_zeroth_order(new, cuts, psf, station_geometry, order)
     if sol is None:
@@ -2112,6 +2136,9 @@ def _calibrate_features(cuts: list[_FrameCut], psf: float, station_geometry: Spe
         # a wrong stretch up window by window (seen on the seeded bench, a -2.7 % candidate won)
         scored = [(_candidate_score(g, cuts, psf_px=psf, order=order), -k) for k, g in enumerate(cands)]
         geo = cands[-max(scored)[1]]  # ties: the better correlation
+    if coarse is not None:
+        # the stretch the isolated features chose: a whole-spectrum fit on a fine spectrum must agree
+        coarse["chosen"] = geo
     fit: GeometryFit | None = None
     m = LineMeasurements.empty()
     fit_m = m

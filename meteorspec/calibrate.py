@@ -66,10 +66,7 @@ Steps of :func:`calibrate_event`
    with a similar chi-square on the same pixels (chi-square differences weighed by the
    reduced chi-square and the residuals' correlation, ``SpectrumFit.chi2_scale``), and fits
    to each half of the track agree
-   with it (``max_halves_nm``); else ``calibration_ambiguous``, and the station values unless the
-   data exclude them (the station's wavelengths farther from the solution than twice the spread
-   of the rivals and halves, and its chi-square worse by the ambiguity margin): then the
-   solution is kept with both flags, its ``rms_nm`` including that spread. Flag of kept solutions:
+   with it (``max_halves_nm``); else ``calibration_ambiguous``. Flag of kept solutions:
    ``calibration_whole_spectrum``. Such a solution measures no single line; for the night
    fit (:func:`calibrate_night`) it states where its geometry puts a few wavelengths in a few
    frame bins (:func:`model_measurements`, species ``"model <nm>"``), with errors from the
@@ -1663,22 +1660,8 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
         A whole-spectrum solution is kept only when the fits to the first and the second half
         of the track each agree with it to within this (largest wavelength difference over
         390-850 nm), and when no other start converges to a different solution (> this
-        apart) with a chi-square within ``_AMBIGUOUS_CHI2`` of the best; else it is flagged
-        ``calibration_ambiguous`` and replaced by the station values, unless these lie more
-        than ``_STATION_EXCLUDED`` times that spread from it with a chi-square worse by more
-        than ``_AMBIGUOUS_CHI2`` (then kept, flagged ``calibration_whole_spectrum`` and
-        ``calibration_ambiguous``). Seeded ``plasma_end_to_end.py --n 36 --seed 5 --modes
-        perturbed``: events 34 (rival 1.58 nm apart, station 27 nm away) and 35 (halves 6.9 nm,
-        station 15.9 nm away) had fallen back on station values 7-12 nm off at 517-589 nm;
-        kept, their lines are 0.0-4.6 and 0.1-0.8 nm off (composition max error 0.478 -> 0.102,
-        0.313 -> 0.068). A half of the track that cannot be fitted alone counts as disagreeing
-        by ``max_halves_nm`` (event 29, a fireball: station 10-22 nm off, kept solution 3-4 nm;
-        0.107 -> 0.017). ``bench_calibration.py --n 30 --seed 4 --truth-track``: event 026 (a
-        half not fitted; station 13.8 nm away) is kept 4.3 nm off where the station values
-        were 14.7 nm off, flagged; 023 (halves 3.7 and 26 nm apart) stays on them. The data
-        can exclude the station and still favour a wrong geometry where the line model
-        misfits: with templates weighted by the response, 023's halves came within 2.4 nm and
-        it was kept 29.6 nm off (station 11.4), so the margin rests on the halves test.
+        apart) with a chi-square within ``_AMBIGUOUS_CHI2`` of the best; else the station
+        values, flagged ``calibration_ambiguous``.
     event : str
         Event id stored with the measurements.
 
@@ -1795,11 +1778,6 @@ _AMBIGUOUS_CHI2 = 25.0
 #: Least drop of chi-square that the line model must bring over a continuum alone (a 10 sigma
 #: detection of line structure, common practice for "significant"); noise alone gives ~n_comp.
 _MIN_LINE_CHI2 = 100.0
-#: An ambiguous whole-spectrum solution replaces the station's values when these lie farther
-#: from it than this many times the spread of the solutions the data allow (rivals, halves of
-#: the track): the station is then the worse of two estimates (a 2:1 margin, a judgement, not
-#: tuned; see calibrate_event's ``max_halves_nm``).
-_STATION_EXCLUDED = 2.0
 _log = logging.getLogger(__name__)
 
 
@@ -1856,7 +1834,6 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
     # the other starts' solutions, judged on the same pixels as the best (its curves)
     chi2 = spectrum_chi2(cuts, best.geometry, [best.geometry] + [f.geometry for f in fits], psf_px=psf_px,
                          order=order, response=response)
-    doubt_nm = 0.0  # how far apart the solutions the data leave open are (rivals, halves of the track)
     for f, c in zip(fits, chi2[1:]):
         apart = wavelength_disagreement_nm(best.geometry, f.geometry, cuts, order=order)
         _log.debug("whole-spectrum fit: start at dchi2 %.1f is %.2f nm apart", c - chi2[0], apart)
@@ -1872,8 +1849,7 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
             # halves cannot see): where the features say the spectrum departs from the model,
             # starts agreeing is no evidence, and a near rival stays a reason to fall back
             if not refine_rivals:
-                doubt_nm = max(doubt_nm, apart)
-                continue
+                return None, "calibration_ambiguous"
             f = fit_spectrum_geometry(cuts, f.geometry, psf_px=psf_px, prior=station_geometry, fit_tilt=fit_tilt,
                                       order=order, rounds=2, max_nfev=40, response=response,
                                       tilt_sigma_deg=tilt_sigma_deg)
@@ -1885,42 +1861,21 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
             _log.debug("whole-spectrum fit: refined, the start is at dchi2 %.1f, %.2f nm apart", c - c_best, apart)
             # a refined rival better than the best by any margin leaves it ambiguous too
             if apart > max_halves_nm and c - c_best < _AMBIGUOUS_CHI2 * scale:
-                doubt_nm = max(doubt_nm, apart)
+                return None, "calibration_ambiguous"
     # the two halves of the track, each fitted on its own from the solution
     half = len(cuts) // 2
     diffs = []
-    unchecked = False  # a half that cannot be fitted alone leaves the solution unconfirmed
     if half >= 2:
         for part in (cuts[:half], cuts[half:]):
             # the tilt held at the solution's (a half alone constrains it less)
             f = fit_spectrum_geometry(part, best.geometry, psf_px=psf_px, prior=best.geometry,
                                       fit_tilt=False, order=order, rounds=1, max_nfev=20, response=response)
             if not f:
-                # e.g. a saturated fireball whose one half has too little unsaturated light
-                # (seed-5 bench event 29); counted as disagreeing by max_halves_nm
-                unchecked = True
-                continue
+                return None, "calibration_ambiguous"
             diffs.append(wavelength_disagreement_nm(best.geometry, f.geometry, cuts, order=order))
-        _log.debug("whole-spectrum fit: halves differ by %s nm%s", [round(d, 2) for d in diffs],
-                   " (a half not fitted)" if unchecked else "")
-        if not diffs:
+        _log.debug("whole-spectrum fit: halves differ by %s nm", [round(d, 2) for d in diffs])
+        if max(diffs) > max_halves_nm:
             return None, "calibration_ambiguous"
-        doubt_nm = max(doubt_nm, max(diffs), max_halves_nm if unchecked else 0.0)
-    flags: tuple[str, ...] = ("calibration_whole_spectrum",)
-    if doubt_nm > max_halves_nm or unchecked:
-        # ambiguous to the issue's accuracy; the station's values are the fallback only where
-        # the data do not exclude them: kept when the station's wavelengths lie farther from
-        # the solution than _STATION_EXCLUDED times the spread of what the data allow, and
-        # its chi-square on the same pixels is worse by more than the ambiguity margin
-        station_nm = wavelength_disagreement_nm(best.geometry, station_geometry, cuts, order=order)
-        c_best, c_station = spectrum_chi2(cuts, best.geometry, [best.geometry, station_geometry], psf_px=psf_px,
-                                          order=order, response=response)
-        _log.debug("whole-spectrum fit: ambiguous by %.2f nm; station %.2f nm away at dchi2 %.1f",
-                   doubt_nm, station_nm, c_station - c_best)
-        if not (station_nm > _STATION_EXCLUDED * doubt_nm and c_station - c_best > _AMBIGUOUS_CHI2 * scale):
-            return None, "calibration_ambiguous"
-        flags += ("calibration_ambiguous",)
-        diffs = diffs + [doubt_nm]
     values = geometry_values(best.geometry)
     errors = {k: math.nan for k in values}
     errors.update(best.errors)
@@ -1928,7 +1883,7 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
     return WavelengthSolution(
         geometry=best.geometry, source="event", values=values, errors=errors, rms_nm=rms,
         n_lines=int(best.n_components), n_frames_used=int(best.n_frames), residuals=ResidualTable.empty(),
-        flags=flags,
+        flags=("calibration_whole_spectrum",),
         measurements=model_measurements(cuts, best.geometry, rms_nm=rms, angle_err_deg=errors["dispersion_angle_deg"],
                                         order=order, event=event)), ""
 

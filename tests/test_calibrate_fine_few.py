@@ -1,0 +1,243 @@
+"""The whole-spectrum fit on a faint fine spectrum where the feature method finds too few features.
+
+meteorspec.calibrate._calibrate: below ``whole_spectrum_min_nm_per_px`` (3.5 nm/px at 589 nm) the
+whole-spectrum fit (meteorspec.calfit) runs only where the feature method fell back with
+``calibration_few_lines`` after its coarse search chose a stretch, and its solution is kept
+(``calibration_whole_spectrum``) only within ``max_halves_nm`` (1.5 nm over 390-850 nm) of that
+stretch; else the station values, flagged ``calibration_ambiguous``.
+
+The event is the seeded simulator event 004 of ``bench/bench_calibration.py --n 20 --seed 5``
+(a faint Na-rich meteor on the interlaced rectilinear camera QM03 at 2.8 nm/px, one isolated
+feature, the station file written 2.2 % / 3.6 deg / 0.4 deg off in grooves, angle and tilt), with
+the simulator's zeroth-order positions as the track (``--truth-track``: the tracker is tested
+elsewhere). The truth is the geometry the simulator rendered with, whose lines come from the
+NIST line list (meteorspec.atomic); tolerances are issue 4's acceptance (line positions 0.5 nm
+median and 1.0 nm max over 390-850 nm).
+
+Shrunk for test time: the calibrator reads the 10 brightest of the 24 lit fields
+(``max_frames=10``; the bench reads all 24 in ~32 s of CPU, here ~17 s). Measured with it:
+the feature method alone falls back with ``calibration_few_lines`` (station values 13.9 nm median,
+19.0 nm max off), the whole-spectrum fit lies 0.48 nm from the features' stretch and is kept,
+lines 0.40 nm median and 0.77 nm max. The event sits near the edge of the rule's premise: with
+9, 11 or 14 fields the feature method refines by itself instead (line medians 1.1-2.1 nm), so the
+premise is asserted before the rule's result.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+from types import SimpleNamespace
+from typing import Any
+
+import numpy as np
+import pytest
+
+from meteorspec import calibrate as cal
+from meteorspec.background import estimate_background, refine_background
+from meteorspec.calfit import wavelength_disagreement_nm
+from meteorspec.config import load_event, load_station
+from meteorspec.optics import SpectralGeometry
+from meteorspec.simulate import EventSpec, NuisanceStrengths, render_event, simulate_event
+from meteorspec.video import read_stack
+from meteorspec.wavesol import WavelengthSolution
+
+# bench_calibration.perturbed_specs(20, 5)[4], written out so that the event does not move when
+# the random set's draws change
+SPEC = EventSpec(
+    station="QM03", station_id="QM03-S5-004", overrides={"lens.projection": "rectilinear"},
+    start_utc="2026-11-14T00:52:06.773Z", video_form="fits", fps=25.0, n_frames=20,
+    meteor_start_s=0.14450386861080516, meteor_duration_s=0.47017117463576286,
+    start_px=(130.98401604223343, 453.212300771274), direction_deg=-145.56223136495268,
+    speed_deg_s=25.832701117549743, peak_energy_adu_s=225088.7760209331, light_curve="classic",
+    peak_time_frac=0.32710263197270095, na=0.804, mg=0.09, fe=0.106, temperature_k=4208.430401758791,
+    speed_km_s=29.73146087522173,
+    nuisance=NuisanceStrengths(
+        fe_other=0.6373660219646308, ca_i=1.2501705024004002, ca_ii=0.6768776478536922,
+        cr_i=1.162675468176595, mn_i=0.5080918172809793, mg_ii=0.9152859303931262,
+        si_ii=0.6735843344761158, fe_ii=1.391838886429934, h_i=0.8091109607382347,
+        o_i=0.919287231455023, n_i=0.9149031831465548, n2=0.74088250510439,
+        continuum=1.0664178915931388),
+    n_stars=31, sky_adu=2.0231259830648205, delta_grooves_frac=-0.02183529070758187,
+    delta_dispersion_deg=3.588265168321878, delta_tilt_deg=-0.3666277922033645, seed=500019)
+MAX_FRAMES = 10
+FINE_FLAG_LOG = "whole-spectrum fit on a fine spectrum"
+
+
+class _Messages(logging.Handler):
+    """The calibrator's debug messages (caplog is per test; the fit runs once per module)."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.DEBUG)
+        self.messages: list[logging.LogRecord] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.messages.append(record)
+
+
+def _true_geometry(station_geo: SpectralGeometry, truth: dict) -> SpectralGeometry:
+    g = truth["geometry_true"]["grating"]
+    ln = truth["geometry_true"]["lens"]
+    geo = station_geo.with_grating(grooves_per_mm=g["grooves_per_mm"], dispersion_angle_deg=g["dispersion_angle_deg"],
+                                   tilt_deg=g["tilt_deg"], tilt_azimuth_deg=g["tilt_azimuth_deg"])
+    return geo.with_lens(focal_px=ln["focal_px"], k1=ln.get("k1", 0.0) or 0.0)
+
+
+def _line_errors_nm(sol_geo: SpectralGeometry, ev: SimpleNamespace) -> np.ndarray:
+    """|wavelength read by ``sol_geo`` - true wavelength| on the true curves, 390-850 nm, every lit frame."""
+    wl = np.linspace(390.0, 850.0, 93)
+    x0, y0 = ev.x_true_px[:, None], ev.y_true_px[:, None]
+    xs, ys = ev.true_geo.spectrum_pixel(x0, y0, wl[None, :])
+    cam = ev.station.camera
+    on = (xs >= 0) & (xs <= cam.width - 1) & (ys >= 0) & (ys <= cam.height - 1)
+    lam, _ = sol_geo.locate(x0, y0, xs, ys)
+    err = np.abs(lam - wl[None, :])
+    return err[on & np.isfinite(err)]
+
+
+@pytest.fixture(scope="module")
+def event(tmp_path_factory):
+    """The simulated event, its background (re-estimated with the meteor masked, as the pipeline
+    does) and the simulator's track, interpolated between lit frames as a fitted track is."""
+    tmp = tmp_path_factory.mktemp("fine_few")
+    sim = simulate_event(SPEC, tmp / "events", truth_dir=tmp / "truth")
+    ev = load_event(sim.event_dir)
+    station = load_station(sim.station_toml)
+    truth = json.loads(sim.truth_json.read_text())
+    stack = read_stack(ev, station)
+    geo = SpectralGeometry.from_station(station)
+    fr = truth["frames"]
+    xt, yt = np.array(fr["x_mid_px"], float), np.array(fr["y_mid_px"], float)
+    lum = np.array(fr["energy_fraction"], float) > 0
+    tt = np.array(fr["time_s"], float)
+
+    def position(t):
+        return np.interp(t, tt[lum], xt[lum]), np.interp(t, tt[lum], yt[lum])
+
+    def velocity_px_s(t, h=1e-3):
+        (xp, yp), (xm, ym) = position(np.asarray(t) + h), position(np.asarray(t) - h)
+        return (xp - xm) / (2 * h), (yp - ym) / (2 * h)
+
+    track = SimpleNamespace(x_px=np.where(lum, xt, np.nan), y_px=np.where(lum, yt, np.nan),
+                            flux_adu=np.array(fr["energy_fraction"], float), psf_sigma_px=truth["psf_sigma_px"],
+                            time_s=tt, luminous=lum, exposure_s=float(stack.exposure_s),
+                            trajectory=render_event(SPEC).trajectory, position=position,
+                            velocity_px_s=velocity_px_s)
+    bg = estimate_background(stack, camera=station.camera, seed=0)
+    bg = refine_background(stack, bg, track, geo, camera=station.camera,
+                           orders=[o for o in station.grating.orders if o != 0])
+    return SimpleNamespace(stack=stack, bg=bg, track=track, station=station, geo=geo,
+                           true_geo=_true_geometry(geo, truth), x_true_px=xt[lum], y_true_px=yt[lum])
+
+
+def _calibrate(ev: SimpleNamespace, **kw: Any) -> WavelengthSolution:
+    return cal.calibrate_event(ev.stack, ev.bg, ev.track, ev.geo, camera=ev.station.camera,
+                               response=ev.station.response, max_frames=MAX_FRAMES, **kw)
+
+
+@pytest.fixture(scope="module")
+def kept(event):
+    """calibrate_event on the event, its internals recorded: the features' chosen stretch, the
+    whole-spectrum fit's result and the cut-outs it ran on, and the calibrator's debug log."""
+    seen: dict = {"chosen": None, "whole": (None, ""), "cuts": []}
+    real_features, real_whole = cal._calibrate_features, cal._whole_spectrum_solution
+
+    def features(*args, coarse=None, **kw):
+        out = real_features(*args, coarse=coarse, **kw)
+        seen["chosen"] = coarse.get("chosen")
+        return out
+
+    def whole(cuts, *args, **kw):
+        out = real_whole(cuts, *args, **kw)
+        seen["whole"], seen["cuts"] = out, cuts  # the held-tilt call returns inside the free one: last is outer
+        return out
+
+    log = logging.getLogger("meteorspec.calibrate")
+    handler, level = _Messages(), log.level
+    log.addHandler(handler)
+    log.setLevel(logging.DEBUG)
+    try:
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setattr(cal, "_calibrate_features", features)
+            mp.setattr(cal, "_whole_spectrum_solution", whole)
+            sol = _calibrate(event)
+    finally:
+        log.removeHandler(handler)
+        log.setLevel(level)
+    return SimpleNamespace(sol=sol, log=handler.messages, **seen)
+
+
+def test_few_features_on_a_fine_spectrum_keep_an_agreeing_whole_spectrum_fit(event, kept):
+    # the premise: a fine spectrum (station dispersion at 589 nm mid-track below 3.5 nm/px, the
+    # rule's own measure) on which the feature method alone falls back for too few features,
+    # leaving station values far off (measured 13.9 nm median): what the calibrator returned
+    # here before the rule (commit 71660ab)
+    tr = event.track
+    k = np.flatnonzero(np.isfinite(tr.x_px))[np.isfinite(tr.x_px).sum() // 2]
+    assert float(event.geo.dispersion_nm_per_px(tr.x_px[k], tr.y_px[k], 589.0)) < 3.5
+    off = _calibrate(event, whole_spectrum="off")
+    assert off.source == "station" and "calibration_few_lines" in off.flags, off.flags
+    assert np.median(_line_errors_nm(off.geometry, event)) > 10.0
+    # with the rule, the whole-spectrum solution
+    sol = kept.sol
+    assert sol.source == "event", sol.flags
+    assert "calibration_whole_spectrum" in sol.flags
+    assert not {"calibration_ambiguous", "calibration_from_station", "calibration_few_lines"} & set(sol.flags)
+    # kept by the rule: the coarse search chose a stretch, the fit was compared with it (the
+    # calibrator's debug message) and agreed to max_halves_nm (measured 0.48 nm)
+    assert kept.chosen is not None
+    new, _ = kept.whole
+    assert new is not None
+    apart = wavelength_disagreement_nm(new.geometry, kept.chosen, kept.cuts)
+    assert apart <= 1.5
+    logged = [r.args[0] for r in kept.log if r.getMessage().startswith(FINE_FLAG_LOG)]
+    assert logged == [pytest.approx(apart)]
+    # issue 4 acceptance: line positions 0.5 nm median, 1.0 nm max over 390-850 nm against the
+    # rendered geometry (measured 0.40 and 0.77 nm). They hold for this seeded draw, not for every
+    # variant: at 12 fields another noise seed gave 0.64 / 1.06 nm and the meteor 0.8x and 1.25x as
+    # bright 0.23 / 1.08 and 0.33 / 0.69 nm
+    err = _line_errors_nm(sol.geometry, event)
+    assert err.size > 1000
+    assert np.median(err) < 0.5 and err.max() < 1.0
+    # and issue 4's grooves 0.3 % and dispersion angle 0.3 deg against the rendered grating
+    # (measured +0.08 % and +0.01 deg; the station file's -2.2 % and +3.6 deg). The tilt stays at
+    # the station's (0.37 deg off): the fit freed it, found it loose (1-sigma 5 deg) and held it
+    g = event.true_geo.grating
+    assert abs(sol.values["grooves_per_mm"] / g.grooves_per_mm - 1) < 0.003
+    assert abs(sol.values["dispersion_angle_deg"] - g.dispersion_angle_deg) < 0.3
+
+
+@pytest.mark.parametrize("grooves_factor,refused", [(1.0, False), (1.01, True)])
+def test_a_whole_spectrum_fit_away_from_the_features_stretch_is_refused(event, kept, monkeypatch, grooves_factor,
+                                                                        refused):
+    # The rule's refusal, cheaply: the whole-spectrum fit is replayed from the run above (same
+    # inputs, deterministic) while the stretch the coarse search chose is stretched by
+    # ``grooves_factor``. 1 % more grooves moves 850 nm by ~8.4 nm (on a fixed pixel lambda is
+    # proportional to the groove spacing, the grating equation; measured 8.9 nm over the frames'
+    # curves, as the bench's seed 4 event 024 that the rule refused at 8.9 nm): beyond
+    # max_halves_nm, so the station values stay, flagged calibration_ambiguous. Factor 1.0 is the
+    # control: the replay returns the kept solution.
+    assert kept.whole[0] is not None, "no whole-spectrum solution on this event: nothing to replay"
+    real_features = cal._calibrate_features
+    shifted = {}
+
+    def features(*args, coarse=None, **kw):
+        out = real_features(*args, coarse=coarse, **kw)
+        g = coarse["chosen"]
+        coarse["chosen"] = shifted["geo"] = g.with_grating(grooves_per_mm=g.grating.grooves_per_mm * grooves_factor)
+        return out
+
+    monkeypatch.setattr(cal, "_calibrate_features", features)
+    monkeypatch.setattr(cal, "_whole_spectrum_solution", lambda *a, **k: kept.whole)
+    sol = _calibrate(event)
+    apart = wavelength_disagreement_nm(kept.whole[0].geometry, shifted["geo"], kept.cuts)
+    if not refused:
+        assert apart <= 1.5
+        assert sol.source == "event" and sol.flags == kept.sol.flags
+        assert sol.values == kept.sol.values
+        return
+    assert apart > 3.0 * 1.5  # well beyond the limit, not at its edge
+    assert sol.source == "station"
+    assert {"calibration_from_station", "calibration_few_lines", "calibration_ambiguous"} <= set(sol.flags)
+    assert "calibration_whole_spectrum" not in sol.flags
+    assert sol.values == cal.station_solution(event.geo).values

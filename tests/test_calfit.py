@@ -465,3 +465,62 @@ def test_a_rival_start_counts_only_once_refined(monkeypatch, caplog):
     assert sol is None and flag == "calibration_ambiguous"
     refined = [r.args for r in caplog.records if r.getMessage().startswith("whole-spectrum fit: refined")]
     assert refined and refined[-1][1] > 1.5
+
+
+def test_an_ambiguous_solution_replaces_station_values_the_data_exclude(caplog):
+    # simulator-free truth: the rendered geometry (COARSE). The halves of the track always
+    # "disagree" when max_halves_nm is cut to 0.01 nm, so every solution is ambiguous; a station
+    # 2 % / 2 deg off (~12 nm at 589 nm) lies far beyond twice that spread and is far worse on
+    # the data: the solution is kept, flagged both ways, within issue 4's 1.0 nm. A station at
+    # the solution itself is not excluded (0 nm away): the fallback stays the station's.
+    import meteorspec.calibrate as calibrate
+
+    x0, y0 = _track(10)
+    frames, track = _render_smooth(COARSE, x0, y0)
+    cuts = _cuts(frames, _FlatBackground(1.0), track, max_frames=10)
+    g = COARSE.grating
+    far = COARSE.with_grating(grooves_per_mm=g.grooves_per_mm * 1.02,
+                              dispersion_angle_deg=g.dispersion_angle_deg + 2.0)
+    kw = dict(psf_px=1.2, order=1, response=_response, angle_range_deg=4.0, grooves_range_frac=0.03,
+              max_halves_nm=0.01, fit_tilt=False)
+    caplog.set_level(logging.DEBUG, logger="meteorspec.calibrate")
+    sol, flag = calibrate._whole_spectrum_solution(cuts, far, **kw)
+    assert sol is not None, flag
+    assert set(sol.flags) == {"calibration_whole_spectrum", "calibration_ambiguous"}
+    assert _line_errors(sol.geometry, COARSE, x0, y0).max() < 1.0
+    assert wavelength_disagreement_nm(sol.geometry, far, cuts) > 5.0  # the station was far (else this tests nothing)
+    sol, flag = calibrate._whole_spectrum_solution(cuts, sol.geometry, **kw)
+    assert sol is None and flag == "calibration_ambiguous"
+
+
+def test_unmeasured_light_centroids_count_as_uniform_over_the_streak():
+    # A frame whose zeroth order (or a neighbour's) is saturated has no measured light curve:
+    # its light may sit anywhere along the streak, whose standard deviation for a uniform spread
+    # is 1/sqrt(12) of its length (scipy.stats.uniform, the textbook variance (b - a)^2 / 12).
+    # Unsaturated frames count 0 but for the first and last (the meteor appears or fades).
+    import dataclasses
+
+    from scipy import stats
+
+    import meteorspec.calibrate as calibrate
+
+    x0, y0 = _track(10)
+    frames, track = _render_smooth(COARSE, x0, y0)
+    cuts = _cuts(frames, _FlatBackground(1.0), track, max_frames=10)
+    assert calibrate._centroid_doubt_nm(cuts, COARSE, psf_px=1.2, order=1) == 0.0  # 8 of 10 measured
+    sat = []
+    for c in cuts:
+        res = c.residual.copy()
+        row = int(round((c.y0_px - c.y_start_px) / c.y_step_px))
+        res[row, int(round(c.x0_px))] = np.nan
+        sat.append(dataclasses.replace(c, residual=res))
+    assert all(calibrate._zeroth_saturated(c) for c in sat) and not any(calibrate._zeroth_saturated(c) for c in cuts)
+    want = []
+    for c in sat:
+        tx, ty = COARSE.direction(c.x0_px, c.y0_px, 600.0, 1)
+        box = abs(c.streak_dx_px * float(tx) + c.streak_dy_px * float(ty))
+        want.append(stats.uniform(loc=-0.5, scale=1.0).std() * box
+                    * float(COARSE.dispersion_nm_per_px(c.x0_px, c.y0_px, 589.0, 1)))
+    got = calibrate._centroid_doubt_nm(sat, COARSE, psf_px=1.2, order=1)
+    assert np.median(want) > 0.0
+    assert got == pytest.approx(float(np.median(want)), rel=1e-9)  # the same formula, nothing fitted

@@ -1818,7 +1818,12 @@ _log = logging.getLogger(__name__)
 
 
 def _zeroth_saturated(cut: _FrameCut) -> bool:
-    """Whether saturated pixels lie within ``_ZEROTH_SATURATION_RADIUS_PX`` of the frame's zeroth order."""
+    """Whether unusable pixels lie within ``_ZEROTH_SATURATION_RADIUS_PX`` of the frame's zeroth order.
+
+    Unusable is NaN in the cut-out's residual: saturated, and also masked for another reason
+    (a star's mask, the sensor's edge), which the test cannot tell apart; either leaves the
+    zeroth order's flux unmeasured, so counting both errs towards the station values.
+    """
     r = _ZEROTH_SATURATION_RADIUS_PX
     row = int(round((cut.y0_px - cut.y_start_px) / cut.y_step_px))
     col = int(round(cut.x0_px))
@@ -1835,7 +1840,9 @@ def _centroid_doubt_nm(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf
     That is the light's centroid only where the light curve across the exposure is measured:
     not where the zeroth-order flux of the frame or of a neighbour is clipped (a saturated
     fireball), nor in the first and last frames, where the meteor appears or fades within the
-    exposure (the edge model is not used by the whole-spectrum fit, see ``_calibrate``). There
+    exposure (the edge model is not used by the whole-spectrum fit, see ``_calibrate``; the
+    earliest and latest of the cut-outs count as such, which they are unless ``max_frames``
+    left the faint ends out). There
     the light may sit anywhere along the streak (``_UNKNOWN_CENTROID_FRAC`` of the streak's
     length along the spectrum, times the dispersion). It does not average out over frames:
     light rising into the first frames and fading out of the last ones moves them in opposite

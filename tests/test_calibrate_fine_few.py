@@ -248,8 +248,9 @@ def test_a_first_fit_on_blend_windows_not_found_again_is_refused(event):
     # The same event read from its 11 brightest fields: single-frame blend windows at S/N 4-8
     # (5 wavelengths over 378-821 nm) plus Na I anchor a first feature fit, and the next, narrower
     # round finds only 2 rows along its curve. Kept, that fit put the lines 1.66 nm median and
-    # 2.49 nm max off (Na I D read ~2 nm blueward, pulled by the N2 bands the feature model leaves
-    # out), beyond issue 4's 0.5 / 1.0 nm, unflagged. Refused, the feature method falls back with
+    # 2.49 nm max off (Na I D read ~2 nm blueward: along a 16 nm streak a Na model shifted blue
+    # with free Si II / O I neighbours filling its red edge fits as well), beyond issue 4's
+    # 0.5 / 1.0 nm, unflagged. Refused, the feature method falls back with
     # calibration_few_lines, and the whole-spectrum path above decides (0.40 / 0.77 nm measured).
     off = _calibrate(event, whole_spectrum="off", max_frames=11)
     assert off.source == "station", (off.flags, np.median(_line_errors_nm(off.geometry, event)))

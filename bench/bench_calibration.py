@@ -78,7 +78,7 @@ from meteorspec.extract import extract_spectra
 from meteorspec.optics import SpectralGeometry
 from meteorspec.pipeline import locate_meteor, remasked_background
 from meteorspec.simulate import (FIRST_ORDER_SHARE, EventSpec, NuisanceStrengths, peak_for_line_snr, random_specs,
-                                 render_event, simulate_event)
+                                 render_event, simulate_event, true_geometry)
 from meteorspec.video import read_stack
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
@@ -175,14 +175,6 @@ def allsky_specs(n: int, seed: int, *, off_axis_deg: tuple[float, float] = (20.0
         snr = float(rng.uniform(40.0, 150.0))
         specs.append(dataclasses.replace(spec, peak_energy_adu_s=peak_for_line_snr(spec, snr)))
     return specs
-
-
-def _true_geometry(base: SpectralGeometry, truth: dict) -> SpectralGeometry:
-    g = truth["geometry_true"]["grating"]
-    ln = truth["geometry_true"]["lens"]
-    geo = base.with_grating(grooves_per_mm=g["grooves_per_mm"], dispersion_angle_deg=g["dispersion_angle_deg"],
-                            tilt_deg=g["tilt_deg"], tilt_azimuth_deg=g["tilt_azimuth_deg"])
-    return geo.with_lens(focal_px=ln["focal_px"], k1=ln.get("k1", 0.0) or 0.0)
 
 
 def _line_errors(sol_geo, true_geo, x0, y0, camera) -> np.ndarray:
@@ -287,7 +279,7 @@ def run_event(spec, work: Path, *, truth_track: bool, whole_spectrum: str = "fal
     truth = json.loads((work / "truth" / f"{event.id}.json").read_text())
     stack = read_stack(event, station)
     geo = SpectralGeometry.from_station(station)
-    true_geo = _true_geometry(geo, truth)
+    true_geo = true_geometry(geo, truth)
     rendered = render_event(spec)  # the truth's emission model, exposures and trajectory (nothing written)
     fr = truth["frames"]
     xt, yt = np.array(fr["x_mid_px"], float), np.array(fr["y_mid_px"], float)

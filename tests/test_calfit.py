@@ -419,6 +419,16 @@ def test_a_narrow_multiplet_prior_holds_the_lte_shares():
     assert float(np.sum(free.solve(COARSE)[0] ** 2)) < float(np.sum(r_held**2))
 
 
+def _coarse_event_far_station():
+    """Track, cut-outs of the smooth coarse render (COARSE, 10 frames) and a station file 2 % / 2 deg off."""
+    x0, y0 = _track(10)
+    frames, track = _render_smooth(COARSE, x0, y0)
+    cuts = _cuts(frames, _FlatBackground(1.0), track, max_frames=10)
+    g = COARSE.grating
+    far = COARSE.with_grating(grooves_per_mm=g.grooves_per_mm * 1.02, dispersion_angle_deg=g.dispersion_angle_deg + 2.0)
+    return x0, y0, cuts, far
+
+
 def test_a_rival_start_counts_only_once_refined(monkeypatch, caplog):
     # calibrate._whole_spectrum_solution compares the best fit with the other starts' short fits;
     # on bench events (plasma_end_to_end.py --n 36 --seed 5, events 0 and 15) those stopped 1.5-3.2
@@ -430,12 +440,7 @@ def test_a_rival_start_counts_only_once_refined(monkeypatch, caplog):
     import meteorspec.calfit as calfit
     import meteorspec.calibrate as calibrate
 
-    x0, y0 = _track(10)
-    frames, track = _render_smooth(COARSE, x0, y0)
-    cuts = _cuts(frames, _FlatBackground(1.0), track, max_frames=10)
-    g = COARSE.grating
-    station = COARSE.with_grating(grooves_per_mm=g.grooves_per_mm * 1.02,
-                                  dispersion_angle_deg=g.dispersion_angle_deg + 2.0)
+    x0, y0, cuts, station = _coarse_event_far_station()
     starts = [COARSE.with_grating(grooves_per_mm=200.4), COARSE.with_grating(grooves_per_mm=202.0)]
     real = calfit.fit_spectrum_geometry
     cut_rounds = {1}
@@ -475,12 +480,7 @@ def test_an_ambiguous_solution_replaces_station_values_the_data_exclude(caplog):
     # the solution itself is not excluded (0 nm away): the fallback stays the station's.
     import meteorspec.calibrate as calibrate
 
-    x0, y0 = _track(10)
-    frames, track = _render_smooth(COARSE, x0, y0)
-    cuts = _cuts(frames, _FlatBackground(1.0), track, max_frames=10)
-    g = COARSE.grating
-    far = COARSE.with_grating(grooves_per_mm=g.grooves_per_mm * 1.02,
-                              dispersion_angle_deg=g.dispersion_angle_deg + 2.0)
+    x0, y0, cuts, far = _coarse_event_far_station()
     kw = dict(psf_px=1.2, order=1, response=_response, angle_range_deg=4.0, grooves_range_frac=0.03,
               max_halves_nm=0.01, fit_tilt=False)
     caplog.set_level(logging.DEBUG, logger="meteorspec.calibrate")

@@ -38,7 +38,7 @@ from meteorspec.background import estimate_background, refine_background
 from meteorspec.calfit import wavelength_disagreement_nm
 from meteorspec.config import load_event, load_station
 from meteorspec.optics import SpectralGeometry
-from meteorspec.simulate import EventSpec, NuisanceStrengths, render_event, simulate_event
+from meteorspec.simulate import EventSpec, NuisanceStrengths, render_event, simulate_event, true_geometry
 from meteorspec.video import read_stack
 from meteorspec.wavesol import WavelengthSolution
 
@@ -73,14 +73,6 @@ class _Messages(logging.Handler):
 
     def emit(self, record: logging.LogRecord) -> None:
         self.messages.append(record)
-
-
-def _true_geometry(station_geo: SpectralGeometry, truth: dict) -> SpectralGeometry:
-    g = truth["geometry_true"]["grating"]
-    ln = truth["geometry_true"]["lens"]
-    geo = station_geo.with_grating(grooves_per_mm=g["grooves_per_mm"], dispersion_angle_deg=g["dispersion_angle_deg"],
-                                   tilt_deg=g["tilt_deg"], tilt_azimuth_deg=g["tilt_azimuth_deg"])
-    return geo.with_lens(focal_px=ln["focal_px"], k1=ln.get("k1", 0.0) or 0.0)
 
 
 def _line_errors_nm(sol_geo: SpectralGeometry, ev: SimpleNamespace) -> np.ndarray:
@@ -127,7 +119,7 @@ def event(tmp_path_factory):
     bg = refine_background(stack, bg, track, geo, camera=station.camera,
                            orders=[o for o in station.grating.orders if o != 0])
     return SimpleNamespace(stack=stack, bg=bg, track=track, station=station, geo=geo,
-                           true_geo=_true_geometry(geo, truth), x_true_px=xt[lum], y_true_px=yt[lum])
+                           true_geo=true_geometry(geo, truth), x_true_px=xt[lum], y_true_px=yt[lum])
 
 
 def _calibrate(ev: SimpleNamespace, **kw: Any) -> WavelengthSolution:

@@ -8,6 +8,8 @@ Public API (the CLI's ``meteorspec simulate`` calls exactly these)::
     random_specs(n, *, seed, perturb=False) -> list[EventSpec]
     render_event(spec) -> Rendered        frames and per-exposure truth, nothing written
 
+Beside it, ``true_geometry(base, truth)`` gives the geometry a truth JSON was rendered with.
+
 Modules: :mod:`.spec` (EventSpec), :mod:`.scene` (great-circle path, light
 curve, stars), :mod:`.emission` (LTE spectrum with exact group ratios),
 :mod:`.render` (frames through :class:`~meteorspec.optics.SpectralGeometry`),
@@ -35,13 +37,14 @@ used, per-frame ``altitude_deg`` and ``airmass``, stars' ``altitude_deg`` and
 from .presets import SAMPLE_SPECS, binned_overrides, peak_for_line_snr, random_specs, write_samples
 from .render import FIRST_ORDER_SHARE, ZEROTH_ORDER_SHARE, Rendered, render_event
 from .spec import VIDEO_FORMS, EventSpec, NuisanceStrengths
-from .writer import SimulatedEvent, simulate_event
+from .writer import SimulatedEvent, simulate_event, true_geometry
 
 __all__ = [
     "EventSpec",
     "NuisanceStrengths",
     "SimulatedEvent",
     "simulate_event",
+    "true_geometry",
     "SAMPLE_SPECS",
     "write_samples",
     "random_specs",

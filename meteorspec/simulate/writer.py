@@ -21,7 +21,7 @@ import os
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -32,6 +32,9 @@ from ..video import write_video
 from .emission import EmissionModel
 from .render import FIRST_ORDER_SHARE, ZEROTH_ORDER_SHARE, Rendered, render_event
 from .spec import EventSpec, written_grating
+
+if TYPE_CHECKING:
+    from ..optics import SpectralGeometry
 
 TRUTH_SCHEMA = "meteorspec-simulation-truth/1"
 _VIDEO_NAME = {"avi": "video.avi", "fits": "video.fits", "png": "frames", "tiff": "frames",
@@ -304,6 +307,24 @@ def _swap_in_folder(tmp: Path, final: Path) -> None:
         raise
     if old.exists():
         shutil.rmtree(old)
+
+
+def true_geometry(base: SpectralGeometry, truth: dict) -> SpectralGeometry:
+    """The geometry a truth JSON says the event was rendered with.
+
+    Parameters
+    ----------
+    base : SpectralGeometry
+        Any geometry of the event's camera (e.g. from the written station file): its grating and
+        lens values are replaced by the truth's ``geometry_true``.
+    truth : dict
+        The parsed truth JSON of :func:`simulate_event`.
+    """
+    g = truth["geometry_true"]["grating"]
+    ln = truth["geometry_true"]["lens"]
+    geo = base.with_grating(grooves_per_mm=g["grooves_per_mm"], dispersion_angle_deg=g["dispersion_angle_deg"],
+                            tilt_deg=g["tilt_deg"], tilt_azimuth_deg=g["tilt_azimuth_deg"])
+    return geo.with_lens(focal_px=ln["focal_px"], k1=ln.get("k1", 0.0) or 0.0)
 
 
 def simulate_event(spec: EventSpec, out_dir: str | Path, *, truth_dir: str | Path) -> SimulatedEvent:

@@ -1517,6 +1517,11 @@ def _solution_from_fit(fit: GeometryFit, m: LineMeasurements, source: str,
         flags=tuple(flags), measurements=m)
 
 
+def _window_rows(m: LineMeasurements) -> NDArray[np.bool_]:
+    """Which rows of ``m`` are blend windows (species ``"blend <lo>-<hi>"``), not isolated features."""
+    return np.char.startswith(m.species.astype(str), "blend ")
+
+
 def _windows_anchor(m: LineMeasurements) -> bool:
     """Whether blend windows may anchor a first fit when fewer than ``min_lines`` isolated features do.
 
@@ -1528,7 +1533,7 @@ def _windows_anchor(m: LineMeasurements) -> bool:
     -0.11 deg, lines 0.66 nm median, instead of the station values 7 nm off). On that set, the
     seed-5 set and the all-sky set no other event changed.
     """
-    win = np.char.startswith(m.species.astype(str), "blend ")
+    win = _window_rows(m)
     if _n_isolated(m) < 1 or not win.any():
         return False
     labs = np.unique(np.round(m.lab_nm[win]))
@@ -1537,7 +1542,7 @@ def _windows_anchor(m: LineMeasurements) -> bool:
 
 def _n_isolated(m: LineMeasurements) -> int:
     """Distinct isolated features (not blend windows) among the measurements."""
-    iso = ~np.char.startswith(m.species.astype(str), "blend ")
+    iso = ~_window_rows(m)
     return len(np.unique(np.round(m.lab_nm[iso], 1)))
 
 
@@ -2299,7 +2304,7 @@ def _calibrate_features(cuts: list[_FrameCut], psf: float, station_geometry: Spe
         if fit is not None and windows_first:
             _log.debug("feature fit round %d: the first fit's blend windows found again (%d rows, %d isolated, "
                        "%d window wavelengths)", it, len(m), _n_isolated(m),
-                       len(np.unique(np.round(m.lab_nm[np.char.startswith(m.species.astype(str), "blend ")]))))
+                       len(np.unique(np.round(m.lab_nm[_window_rows(m)]))))
         if not anchored:
             # the blend windows refine a geometry that the isolated features anchor; alone, on
             # coarse or smeared spectra, they can settle on a wrong stretch with a small RMS.
@@ -2368,7 +2373,7 @@ def _isolated_misfit(fit: GeometryFit, m: LineMeasurements, max_rms_nm: float, *
     are not held to a limit that their errors alone exceed. Without ``allow_errors`` only
     ``max_rms_nm`` is allowed (the plain RMS limit). NaN without isolated features.
     """
-    iso = fit.used & ~np.char.startswith(m.species.astype(str), "blend ")
+    iso = fit.used & ~_window_rows(m)
     if not iso.any():
         return math.nan, math.nan
     disp = np.abs(np.asarray(fit.geometry.dispersion_nm_per_px(m.x0_px[iso], m.y0_px[iso], m.lab_nm[iso]), float))

@@ -344,8 +344,9 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     except ValueError:  # the spectrum does not sample the O I 777 band
         o777 = o777_err = None
     # monochromatic group light curves (line profile over the rest, per frame) give the peak times
+    # (with the bias bound of saturated bins scaled up from their wings: it widens the peak sigma)
     window = window_light_curves(spectra, group_templates(fit, spectra.wavelength_nm, spectra.bin_width_nm,
-                                                          fwhm_nm=fwhm_nm), fwhm_nm=fwhm_nm)
+                                                          fwhm_nm=fwhm_nm), fwhm_nm=fwhm_nm, shape_errors=True)
     # where Na I D saturates over the top, the weaker Na I lines (818/819 nm, ...) may time it
     timeline = time_resolved_from_fits(spectra.time_s, frame_fits, o777_per_frame=o777, o777_err=o777_err,
                                        window_curves=window,

@@ -510,10 +510,14 @@ class _FrameCut:
     y_step_px: int
     noise_adu: float = 1.0  # typical per-pixel noise of the frame
     # the zeroth order as the linear light curve alone places it (no model of the first and last
-    # lit frames, :func:`_edge_centre_frac`): what the whole-spectrum fit, and the feature method
-    # on coarse spectra, are given (see _calibrate and _calibrate_features)
+    # lit frames, :func:`_edge_centre_frac`): what the feature method on coarse spectra is given
+    # (see _calibrate_features)
     x0_linear_px: float = math.nan
     y0_linear_px: float = math.nan
+    # the same with the light curve's slope from the first order where the zeroth order's flux is
+    # missing (:func:`_first_order_slopes`): what the whole-spectrum fit is given (see _calibrate)
+    x0_light_px: float = math.nan
+    y0_light_px: float = math.nan
 
 
 def _sample(cut: _FrameCut, x: NDArray, y: NDArray, img: NDArray | None = None) -> NDArray:
@@ -539,8 +543,15 @@ def _sample_both(cut: _FrameCut, x: NDArray, y: NDArray) -> tuple[NDArray, NDArr
                           np.nan) for img in (cut.residual, cut.sigma))
 
 
-def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int) -> list[_FrameCut]:
-    """Residual images of the luminous frames with a fitted zeroth-order position."""
+def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int,
+          geometry: SpectralGeometry | None = None, order: int = 1) -> list[_FrameCut]:
+    """Residual images of the luminous frames with a fitted zeroth-order position.
+
+    With ``geometry`` (the station's), the linear light curve that places the zeroth orders
+    for the whole-spectrum fit (``_FrameCut.x0_light_px``) takes its slope from the first
+    order where the zeroth order's flux is not measured (:func:`_first_order_slopes`); else
+    ``x0_light_px`` is ``x0_linear_px``.
+    """
     x = np.array(track.x_px, float)
     y = np.array(track.y_px, float)
     ok = np.isfinite(x) & np.isfinite(y)
@@ -591,12 +602,36 @@ def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int) -> 
     else:
         f = np.zeros(x.size)
         shift_frac = np.zeros(x.size)
+    lin_frac = shift_frac.copy()
+    if geometry is not None:
+        # a saturated zeroth order leaves the light curve between its measured ends a straight
+        # line in log flux (flat for a light curve that rises and falls to the same level), so
+        # the linear-curve centroids lag the light while it rises and lead it while it fades:
+        # in opposite directions along the track, as a change of the dispersion across the
+        # field would (a free tilt takes it up). The first order's light is the same light.
+        # Seeded plasma_end_to_end.py --n 36 --seed 5 --modes perturbed, event 010 (zeroth order
+        # saturated in 17 of 21 frames, 10 nm/px): centroids 0.13-0.48 px off at the ends of the
+        # stretch, the whole-spectrum fit's free tilt 2.2 deg off and its lines 2.2 nm; from the
+        # first order within 0.05 px, tilt 0.2 deg, lines 0.7 nm (with the true centroids 0.25 nm).
+        # Only the whole-spectrum fit takes these centroids: given them too, the feature method on
+        # coarse spectra accepted a faint event's fit that it had rejected (event 034: grooves
+        # +0.4 %, Mg 0.22 off in composition, where the whole-spectrum fit it fell back on gave
+        # 0.10); on fine spectra it keeps its own (x0_px). Neither was studied further
+        psf = float(getattr(track, "psf_sigma_px", math.nan))
+        slopes = _first_order_slopes(frames, background, x, y, lum, good_f, geometry, order=order,
+                                     psf_px=psf if np.isfinite(psf) and psf > 0 else 1.5, among=idx)
+        for k, gk in slopes.items():
+            lin_frac[k] = float(np.clip(gk / 12.0, -0.25, 0.25))
+        if slopes:
+            _log.debug("light-curve slope from the first order in %d frames: centroids moved by up to %.2f px",
+                       len(slopes), max(abs(lin_frac[k] - shift_frac[k]) * math.hypot(vx[k], vy[k]) for k in slopes))
     # the first and last luminous frames are lit for part of the exposure only (the meteor
     # appears or fades within it): their light sits far from the middle, which the linear
     # light curve above cannot reach (its 1/4-streak clip); the rise (fall) is modelled from
     # the three outermost frames' fluxes (:func:`_edge_centre_frac`)
     sx_full, sy_full = vx.copy(), vy.copy()
     x_lin, y_lin = x + shift_frac * vx, y + shift_frac * vy
+    x_light, y_light = x + lin_frac * vx, y + lin_frac * vy
     for i, inner, step in ((int(np.argmax(lum)), 1, 1), (int(lum.size - 1 - np.argmax(lum[::-1])), -1, -1)):
         nb = [i, i + step, i + 2 * step]
         if not (lum.any() and 0 <= i - step < lum.size and not lum[i - step]
@@ -621,7 +656,62 @@ def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int) -> 
         res[np.asarray(frame.saturated, bool)] = np.nan
         out.append(_FrameCut(int(i), float(x[i]), float(y[i]), float(vx[i]), float(vy[i]), res, np.sqrt(var).astype(np.float32),
                              int(frame.y_start_px), int(frame.y_step_px),
-                             float(np.median(np.sqrt(var[::4, ::4]))), float(x_lin[i]), float(y_lin[i])))
+                             float(np.median(np.sqrt(var[::4, ::4]))), float(x_lin[i]), float(y_lin[i]),
+                             float(x_light[i]), float(y_light[i])))
+    return out
+
+
+#: Least significance of a frame's first-order light (summed over the wavelengths usable in it
+#: and its two neighbours) for its light-curve slope to be taken from the first order: at 10
+#: sigma the slope's noise (~0.07 in ``g``, ~0.006 of the streak) is well below the shifts it
+#: corrects (up to 0.14 of the streak on the event cited in ``_cuts``). A judgement, not tuned.
+_FIRST_ORDER_MIN_SNR = 10.0
+
+
+def _first_order_slopes(frames: Sequence, background: Any, x: NDArray, y: NDArray, lum: NDArray,
+                        measured: NDArray, geometry: SpectralGeometry, *, order: int,
+                        psf_px: float, among: NDArray | None = None) -> dict[int, float]:
+    """Light-curve slopes ``g`` (per exposure, relative) of frames whose zeroth-order flux is not measured.
+
+    For a luminous frame ``k`` with luminous neighbours where the zeroth-order flux of ``k - 1``,
+    ``k`` or ``k + 1`` is missing (saturated, off the sensor), ``g = (F[k+1] - F[k-1]) / (2 F[k])``
+    from the first-order light ``F`` summed in a band along ``geometry``'s curve over 380-880 nm,
+    on the wavelengths usable (not saturated, on the sensor) in all three frames, so that holes
+    of saturated lines do not bias the ratios. A frame whose summed light is below
+    ``_FIRST_ORDER_MIN_SNR`` is left out (its caller keeps the zeroth-order estimate).
+    ``among``: the frames to consider (default all).
+    """
+    n = lum.size
+    among = range(1, n - 1) if among is None else [int(k) for k in among if 0 < k < n - 1]
+    targets = [k for k in among
+               if lum[k - 1] and lum[k] and lum[k + 1] and not (measured[k - 1] and measured[k] and measured[k + 1])]
+    if not targets:
+        return {}
+    half = max(2.0, math.ceil(2.5 * psf_px))
+    offs = np.arange(-half, half + 0.01, 1.0)
+    wl = np.linspace(380.0, 880.0, 251)
+    bands: dict[int, tuple[NDArray, NDArray]] = {}
+    for j in sorted({k + d for k in targets for d in (-1, 0, 1)}):
+        frame = frames[int(j)]
+        res = background.residual(frame).astype(np.float32, copy=True)
+        var = background.variance(frame, res)
+        res[np.asarray(frame.saturated, bool)] = np.nan
+        cut = _FrameCut(int(j), float(x[j]), float(y[j]), 0.0, 0.0, res, np.sqrt(var).astype(np.float32),
+                        int(frame.y_start_px), int(frame.y_step_px))
+        (v,), (e,) = _sample_curves_both([cut], _curves(geometry, [cut], wl, order), offs)
+        bands[j] = (v.sum(axis=0), np.sqrt(np.sum(np.square(e), axis=0)))  # NaN where any pixel is
+    out = {}
+    for k in targets:
+        common = np.ones(wl.size, bool)
+        for j in (k - 1, k, k + 1):
+            common &= np.isfinite(bands[j][0]) & np.isfinite(bands[j][1])
+        if not common.any():
+            continue
+        fl = [float(np.sum(bands[j][0][common])) for j in (k - 1, k, k + 1)]
+        noise = math.sqrt(float(np.sum(np.square(bands[k][1][common]))))
+        if not fl[1] > _FIRST_ORDER_MIN_SNR * noise:
+            continue
+        out[k] = (fl[2] - fl[0]) / (2.0 * fl[1])
     return out
 
 
@@ -1710,7 +1800,7 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
     station = _memo_geometry(station_geometry)
     # the frames' cut-outs once for both methods
     psf, cuts = _psf_and_cuts(frames, background, track, psf_sigma_px=psf_sigma_px, max_frames=max_frames,
-                              camera=camera)
+                              camera=camera, geometry=station, order=order)
     kwargs = dict(fit_lens=fit_lens, order=order, min_lines=min_lines, n_bins=n_bins,
                   angle_range_deg=angle_range_deg, tilt_range_deg=tilt_range_deg,
                   grooves_range_frac=grooves_range_frac, max_rms_nm=max_rms_nm,
@@ -1768,7 +1858,9 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
     # and tuned with (meteorspec.calfit): with the first and last lit frames' centres modelled,
     # on bench_calibration.py --n 30 --seed 4 --truth-track one of its solutions improved (event
     # 008, line max 0.75 -> 0.36 nm) and one was then flagged ambiguous (005, 1.80 nm before)
-    cuts = [c if not np.isfinite(c.x0_linear_px)
+    # (with the first order's light curve where the zeroth order's flux is missing: _cuts)
+    cuts = [dataclasses.replace(c, x0_px=c.x0_light_px, y0_px=c.y0_light_px) if np.isfinite(c.x0_light_px)
+            else c if not np.isfinite(c.x0_linear_px)
             else dataclasses.replace(c, x0_px=c.x0_linear_px, y0_px=c.y0_linear_px) for c in cuts]
     new, flag = _whole_spectrum_solution(cuts, station_geometry, psf_px=psf, order=order, response=response,
                                          angle_range_deg=angle_range_deg, grooves_range_frac=grooves_range_frac,
@@ -2078,8 +2170,10 @@ def model_measurements(cuts: list[_FrameCut], geometry: SpectralGeometry, *, rms
 
 
 def _psf_and_cuts(frames: Sequence, background: Any, track: Any, *, psf_sigma_px: float | None, max_frames: int,
-                  camera: Camera | None) -> tuple[float, list[_FrameCut]]:
-    """The PSF sigma to use (given, else the track's, else 1.5 px) and the frames' cuts.
+                  camera: Camera | None, geometry: SpectralGeometry | None = None,
+                  order: int = 1) -> tuple[float, list[_FrameCut]]:
+    """The PSF sigma to use (given, else the track's, else 1.5 px) and the frames' cuts
+    (``geometry``, ``order``: see :func:`_cuts`).
 
     Raises
     ------
@@ -2090,7 +2184,7 @@ def _psf_and_cuts(frames: Sequence, background: Any, track: Any, *, psf_sigma_px
     if psf is None:
         psf = float(getattr(track, "psf_sigma_px", math.nan))
         psf = psf if np.isfinite(psf) and psf > 0 else 1.5
-    cuts = _cuts(frames, background, track, max_frames=max_frames)
+    cuts = _cuts(frames, background, track, max_frames=max_frames, geometry=geometry, order=order)
     if camera is not None and cuts and cuts[0].residual.shape[1] != camera.width:
         raise ValueError(f"frames are {cuts[0].residual.shape[1]} px wide, camera says {camera.width}")
     return psf, cuts

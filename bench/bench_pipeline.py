@@ -17,7 +17,8 @@ step allocated counts:
 - ``pipeline``: :func:`read_stack` with the binned copy made while decoding
   (:class:`StoredFrameBinner`) and the saturated-pixel counts (:func:`frame_times`)
   ("read_stack"), :func:`estimate_background` ("background"), :func:`find_track`,
-  :func:`refine_background` + :func:`remeasure_light_curve` ("refine") and
+  :func:`refine_background` + :func:`find_track` again (:func:`remeasure_light_curve` when it
+  loses the meteor) ("refine") and
   :func:`extract_spectra` as :func:`process_event` calls them, each timed;
 - memory: the resident-set high-water mark (``VmHWM`` of ``/proc/self/status``,
   which restarts at exec, unlike ``ru_maxrss``) of the subprocess minus its
@@ -61,7 +62,7 @@ from meteorspec.background import StoredFrameBinner, bin_frames, estimate_backgr
 from meteorspec.config import find_station_file, load_event, load_station
 from meteorspec.extract import extract_spectra
 from meteorspec.optics import SpectralGeometry
-from meteorspec.pipeline import frame_times
+from meteorspec.pipeline import frame_times, same_path
 from meteorspec.track import find_track, remeasure_light_curve
 from meteorspec.video import read_raw_frames, read_stack
 
@@ -103,11 +104,13 @@ else:
     bg = estimate_background(stack, camera=cam, seed=0, binned=binned)
     t2 = time.perf_counter()
     tr = find_track(stack, bg, geo, camera=cam, orders=orders, seed=0, binned=binned)
-    del binned
     t3 = time.perf_counter()
     refined = refine_background(stack, bg, tr, geo, camera=cam, orders=orders) if tr else bg
-    if refined is not bg:
-        bg, tr = refined, remeasure_light_curve(stack, refined, tr)
+    if refined is not bg:  # as pipeline.locate_meteor: the meteor tracked again against it
+        again = find_track(stack, refined, geo, camera=cam, orders=orders, seed=0, binned=binned)
+        tr = again if same_path(tr, again) else remeasure_light_curve(stack, refined, tr)
+        bg = refined
+    del binned
     t3r = time.perf_counter()
     fs = extract_spectra(stack, bg, tr, geo, camera=cam, order=orders[0]) if tr else None
     t4 = time.perf_counter()

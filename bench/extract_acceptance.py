@@ -4,7 +4,7 @@ For each event: render with the simulator (nothing written), linearise the
 stored frames as the video reader does, build the real background
 (:func:`estimate_background`), run the real tracker with the *true* geometry,
 re-estimate the background with the meteor masked (:func:`refine_background`)
-and re-measure the light curve (:func:`remeasure_light_curve`), as
+and track the meteor again against it (:func:`meteorspec.pipeline.locate_meteor`), as
 :func:`process_event` does, take the zeroth-order *positions* from the true
 trajectory (true geometry and true positions isolate this stage), extract,
 and compare the whole-flight spectrum with the truth.
@@ -102,6 +102,7 @@ from scipy.special import ndtr
 from meteorspec.background import estimate_background, refine_background
 from meteorspec.extract import extract_spectra
 from meteorspec.simulate import FIRST_ORDER_SHARE, SAMPLE_SPECS, random_specs, render_event
+from meteorspec.pipeline import same_path
 from meteorspec.track import find_track, remeasure_light_curve
 from meteorspec.video import Frame, encode, linearize
 
@@ -332,11 +333,15 @@ def evaluate(spec, *, light_curve="tracker", background="estimated", noise_draw=
         bg = estimate_background(frames_of(dark, cam), camera=cam)
     else:
         bg = estimate_background(frames, camera=cam)
-    # as process_event: track, then the background without the meteor's light, then the light curve again
+    # as process_event: track, then the background without the meteor's light, then the meteor
+    # tracked again against it (pipeline.locate_meteor)
     found = find_track(frames, bg, r.geometry, camera=cam, orders=[1], seed=0)
     if background == "estimated" and found:
-        bg = refine_background(frames, bg, found, r.geometry, camera=cam, orders=[1])
-        found = remeasure_light_curve(frames, bg, found)
+        refined = refine_background(frames, bg, found, r.geometry, camera=cam, orders=[1])
+        if refined is not bg:
+            again = find_track(frames, refined, r.geometry, camera=cam, orders=[1], seed=0)
+            found = again if same_path(found, again) else remeasure_light_curve(frames, refined, found)
+            bg = refined
     tr = r.truths
     lum = np.array([t.emitted_energy_adu > 0 for t in tr])
     times = np.array([t.time_s for t in tr])

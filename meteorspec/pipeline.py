@@ -232,12 +232,12 @@ def locate_meteor(stack: FrameStack, station: Station, *,
         refined = refine_background(stack, background, track, geometry, camera=camera, orders=orders)
         if refined is not background:
             again = find_track(stack, refined, geometry, camera=camera, orders=orders, seed=0, binned=binned)
-            track = again if _same_path(track, again) else remeasure_light_curve(stack, refined, track)
+            track = again if same_path(track, again) else remeasure_light_curve(stack, refined, track)
             background = refined
     return background, track
 
 
-def _same_path(first: Track, again: Track, *, tol_px: float = 3.0) -> bool:
+def same_path(first: Track, again: Track, *, tol_px: float = 3.0) -> bool:
     """Whether ``again`` follows the meteor of ``first``: over at least half of ``first``'s
     luminous frames, its fitted positions lie within ``tol_px`` (median) of ``first``'s.
 

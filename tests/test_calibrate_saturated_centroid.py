@@ -10,40 +10,13 @@ the calibrator's linear-light-curve model.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 from types import SimpleNamespace
 
 import numpy as np
 from scipy import integrate, ndimage
 
 from meteorspec.calibrate import _cuts, _first_order_slopes, meteor_template
-from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
-
-# the wide-field camera of the demo network (QM01 binned 2x2): rectilinear, f = 575 px
-WIDE = SpectralGeometry(LensModel("rectilinear", 575.0, 320.1, 238.9, -0.012),
-                        GratingModel(600.0, 4.0, 1.5, 30.0))
-
-
-@dataclass(frozen=True, eq=False)
-class _Frame:
-    index: int
-    signal: np.ndarray
-    saturated: np.ndarray
-    y_start_px: int = 0
-    y_step_px: int = 1
-
-
-class _FlatBackground:
-    """Zero sky, Gaussian read noise: residual = signal."""
-
-    def __init__(self, sigma):
-        self.sigma = sigma
-
-    def residual(self, frame):
-        return frame.signal.astype(np.float32)
-
-    def variance(self, frame, residual=None):
-        return np.full(frame.signal.shape, self.sigma**2, np.float32)
+from test_calibrate import WIDE, _FlatBackground, _Frame
 
 
 def _exposure(rate, lo):

@@ -13,16 +13,10 @@ import math
 from types import SimpleNamespace
 
 import numpy as np
-from scipy import integrate, ndimage
+from scipy import ndimage
 
 from meteorspec.calibrate import _cuts, _first_order_slopes, meteor_template
-from test_calibrate import WIDE, _FlatBackground, _Frame
-
-
-def _exposure(rate, lo):
-    """Energy of ``rate`` over the exposure [lo, lo + 1] and its light-weighted mean time (quadrature)."""
-    e = integrate.quad(rate, lo, lo + 1.0, limit=200)[0]
-    return e, integrate.quad(lambda t: t * rate(t), lo, lo + 1.0, limit=200)[0] / e
+from test_calibrate import WIDE, _exposure_light, _FlatBackground, _Frame
 
 
 def _event(seed=3):
@@ -40,7 +34,7 @@ def _event(seed=3):
     energy = np.zeros(n)
     centre = np.full(n, np.nan)
     for k in lit:
-        energy[k], centre[k] = _exposure(rate, float(k))
+        energy[k], centre[k] = _exposure_light(rate, float(k))
     x = np.where(np.isin(np.arange(n), lit), 60.0 + v_px * t_mid, np.nan)
     y = np.where(np.isfinite(x), 150.0, np.nan)
     flux = energy.copy()

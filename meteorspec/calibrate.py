@@ -651,14 +651,20 @@ def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int,
         frame = frames[int(i)]
         x[i] = x[i] + shift_frac[i] * sx_full[i]
         y[i] = y[i] + shift_frac[i] * sy_full[i]
-        res = background.residual(frame).astype(np.float32, copy=True)
-        var = background.variance(frame, res)
-        res[np.asarray(frame.saturated, bool)] = np.nan
-        out.append(_FrameCut(int(i), float(x[i]), float(y[i]), float(vx[i]), float(vy[i]), res, np.sqrt(var).astype(np.float32),
+        res, sigma = _masked_residual(frame, background)
+        out.append(_FrameCut(int(i), float(x[i]), float(y[i]), float(vx[i]), float(vy[i]), res, sigma,
                              int(frame.y_start_px), int(frame.y_step_px),
-                             float(np.median(np.sqrt(var[::4, ::4]))), float(x_lin[i]), float(y_lin[i]),
+                             float(np.median(sigma[::4, ::4])), float(x_lin[i]), float(y_lin[i]),
                              float(x_light[i]), float(y_light[i])))
     return out
+
+
+def _masked_residual(frame: Any, background: Any) -> tuple[NDArray, NDArray]:
+    """A frame's residual over the background (float32, NaN on saturated pixels) and its 1-sigma."""
+    res = background.residual(frame).astype(np.float32, copy=True)
+    var = background.variance(frame, res)
+    res[np.asarray(frame.saturated, bool)] = np.nan
+    return res, np.sqrt(var).astype(np.float32)
 
 
 #: Least significance of a frame's first-order light (summed over the wavelengths usable in it
@@ -693,11 +699,9 @@ def _first_order_slopes(frames: Sequence, background: Any, x: NDArray, y: NDArra
     bands: dict[int, tuple[NDArray, NDArray]] = {}
     for j in sorted({k + d for k in targets for d in (-1, 0, 1)}):
         frame = frames[int(j)]
-        res = background.residual(frame).astype(np.float32, copy=True)
-        var = background.variance(frame, res)
-        res[np.asarray(frame.saturated, bool)] = np.nan
-        cut = _FrameCut(int(j), float(x[j]), float(y[j]), 0.0, 0.0, res, np.sqrt(var).astype(np.float32),
-                        int(frame.y_start_px), int(frame.y_step_px))
+        res, sigma = _masked_residual(frame, background)
+        cut = _FrameCut(int(j), float(x[j]), float(y[j]), 0.0, 0.0, res, sigma, int(frame.y_start_px),
+                        int(frame.y_step_px))
         (v,), (e,) = _sample_curves_both([cut], _curves(geometry, [cut], wl, order), offs)
         bands[j] = (v.sum(axis=0), np.sqrt(np.sum(np.square(e), axis=0)))  # NaN where any pixel is
     out = {}

@@ -749,6 +749,8 @@ def plasma_part(fit: PlasmaFit, whole: Spectrum, *, flux_unit: str) -> dict[str,
         "hot_temperature_k": fit.hot_temperature_k, "hot_temperature_err_k": fit.hot_temperature_err_k,
         "chi2_reduced": fit.chi2_reduced, "shift_nm": fit.shift_nm, "width_scale": fit.width_scale,
         "method": "two-component LTE (Borovicka 1993) with self-absorption",
+        # which estimate the group errors are: linearised covariance or parametric bootstrap
+        "group_error_method": fit.group_error_method,
     }
     for group in ("na", "mg", "fe"):
         attrs[f"{group}_intensity"] = fit.group_intensity[group]

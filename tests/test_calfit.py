@@ -348,11 +348,77 @@ def test_frames_the_model_cannot_reach_do_not_inflate_the_residual_correlation()
     assert np.all(np.split(rs, lost.cut)[3] == 30.0)  # the penalty of the frame the model cannot reach
     series = lost.fitted_series(rs)
     assert len(series) == 9
-    # what the penalty would do (measured 85.6 against 1.84)
-    assert residual_correlation(np.split(rs, lost.cut)) > 3.0 * base
-    # nine of the ten frames, the same residual structure: the same correlation within the
-    # scatter of an estimate from ~9 series (measured 1.875; 10 % allowed)
-    assert residual_correlation(series) == pytest.approx(base, rel=0.1)
+    # what the penalty would do (measured 88.6 against 1.0)
+    full = residual_correlation(np.split(rs, lost.cut))
+    assert full > 3.0 * base
+    # nine of the ten frames, the same residual structure: the same pooled autocorrelation at
+    # lags 1-3 (measured -0.003 / 0.319 / -0.070 on ten frames, 0.006 / 0.325 / -0.068 on nine;
+    # 0.02 allowed: the two share nine frames' residuals, so they differ by about a tenth of the
+    # ~0.05 scatter of one estimate from ~1300 samples of which ~1/3 independent).
+    # The integrated correlation itself is not compared: with the line spread including the
+    # resampling blur (calfit._prepare) the lag-1 term is ~0, and the initial-positive-sequence
+    # truncation stops there on ten frames (1.0) and runs on to lag 2 on nine (1.66), both far
+    # below the penalty's
+    def rho(fs, k):
+        return sum(float(np.sum(f[:-k] * f[k:])) for f in fs) / sum(float(np.sum(f * f)) for f in fs)
+
+    ten = model.fitted_series(model.solve(COARSE)[0])
+    for k in (1, 2, 3):
+        assert rho(series, k) == pytest.approx(rho(ten, k), abs=0.02)
+    assert residual_correlation(series) < 0.1 * full
+
+
+def test_settled_brightness_factors_solve_the_joint_least_squares():
+    # frames saturated over long stretches (a light curve peaking at 20 times the render's level,
+    # clipped at 300: 37-108 saturated pixels, 67-111 of 142 samples usable): the alternating
+    # solve of the shared intensities and the frames' brightness factors converges slowly
+    # there, and two steps leave the factors short. Reference: the same bilinear least squares
+    # (the columns and data ``solve`` builds, the intensities it finds light in) solved jointly
+    # by scipy.optimize.least_squares, started from the two-step factors
+    from scipy import optimize
+
+    x0, y0 = _track(10)
+    clean, track = _render_exact(COARSE, x0, y0, noise=0.0)
+    light = np.exp(-0.5 * ((np.arange(10) - 4.5) / 2.5) ** 2)
+    rng = np.random.default_rng(1)
+    frames = []
+    for f, lk in zip(clean, light):
+        s = f.signal * 20.0 * lk + rng.normal(0, 1.0, SHAPE)
+        frames.append(_Frame(f.index, np.minimum(s, 300.0).astype(np.float32), s >= 300.0))
+    data = _prepare(_cuts(frames, _FlatBackground(1.0), track, max_frames=10), COARSE, psf_px=1.2, order=1,
+                    wl_range_nm=(370.0, 890.0))
+    short = _Model(data, order=1, response=_response, multiplet_sigma=0.0)
+    short.solve(COARSE)
+    settled = _Model(data, order=1, response=_response, multiplet_sigma=0.0)
+    assert settled.settle_brightness(COARSE) < 25
+    r, _, (coef,) = settled.solve(COARSE)
+    lams, _ = settled.locate(COARSE)
+    cols, rhs = [], []
+    for k, d in enumerate(data):
+        good = np.isfinite(d.value) & np.isfinite(lams[k])
+        aw = np.where(good[:, None], settled.lines(k, lams[k]) / d.error[:, None], 0.0)
+        q, bw = settled._continuum(k, good, lams[k])
+        cols.append(aw - q @ (q.T @ aw))
+        rhs.append(bw)
+    live = coef > 0
+    s0 = settled.last_scale[0]  # the factors and intensities share one overall scale: frame 0's held
+
+    def fun(p):
+        c = np.zeros(coef.size)
+        c[live] = p[: live.sum()]
+        sk = np.concatenate([[s0], np.exp(p[live.sum():])])
+        return np.concatenate([b - s * (a @ c) for a, b, s in zip(cols, rhs, sk)])
+
+    start = np.concatenate([coef[live], np.log(short.last_scale[1:] / short.last_scale[0] * s0)])
+    lower = np.concatenate([np.zeros(live.sum()), np.full(9, -np.inf)])
+    ref = optimize.least_squares(fun, start, bounds=(lower, np.inf), x_scale="jac", xtol=1e-12, ftol=1e-12,
+                                 gtol=1e-12)
+    s_ref = np.concatenate([[1.0], np.exp(ref.x[live.sum():]) / s0])
+    # two steps: up to 7 % short (measured 0.931-1.001); settled: the joint optimum (measured
+    # within 1e-4; 0.2 % allowed, the settling's stopping rule of 0.1 % per solve, twice)
+    assert np.min(short.last_scale / short.last_scale[0] / s_ref) < 0.95
+    assert np.allclose(settled.last_scale / s0, s_ref, rtol=2e-3)
+    assert float(np.sum(r**2)) == pytest.approx(2.0 * ref.cost, rel=1e-4)
 
 
 def _self_absorbed(tau_max):

@@ -238,6 +238,7 @@ class _Model:
             self.kernels.append((nk, k))
         # each frame's total light: the scale of the shared line intensities in that frame
         self.scale = np.array([max(float(np.nansum(d.value)) * d.step_px, 1e-9) for d in data])
+        self.last_scale = self.scale.copy()  # the factors the last solve ended with
         # the pixels every trial geometry locates, built once: the same arrays at every call
         # let a remembering lens (``calibrate._MemoLens``) skip their directions
         self.x0 = np.concatenate([np.full(d.x_px.size, d.cut.x0_px) for d in data])

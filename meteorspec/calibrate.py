@@ -1861,7 +1861,7 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
             # its SNR limit 5) and so ended on the first round's fit, 1.41 times what its errors
             # allow; the station values (2.2 %, 3.6 deg off) then left the aperture 9-18 px off
             fine_fallback = (("calibration_few_lines" in sol.flags or "calibration_fit_poor" in sol.flags)
-                        and np.isfinite(disp) and coarse.get("chosen") is not None)
+                             and np.isfinite(disp) and coarse.get("chosen") is not None)
             if not (np.isfinite(disp) and disp > whole_spectrum_min_nm_per_px) and not fine_fallback:
                 return sol
     # the whole-spectrum fit keeps the zeroth orders of the linear light curve, as it was set up

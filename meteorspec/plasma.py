@@ -1338,9 +1338,7 @@ def _bootstrap_group_covariance(model: _Model, problem: _Problem, x: NDArray, *,
                              for n, (_, sd) in prior0.items()}
             with np.errstate(over="ignore", under="ignore", invalid="ignore"):
                 try:
-                    res = least_squares(problem.residuals, start, jac=problem.jacobian,
-                                        bounds=(lo, hi), x_scale="jac", method="trf",
-                                        max_nfev=_BOOTSTRAP_NFEV, xtol=1e-8, ftol=1e-8, gtol=1e-8)
+                    res = _solve(problem, max_nfev=_BOOTSTRAP_NFEV, x0=start)
                 except (ValueError, np.linalg.LinAlgError):  # pragma: no cover - defensive
                     continue
             if np.all(np.isfinite(res.x)):
@@ -1461,10 +1459,11 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
     )
 
 
-def _solve(problem: _Problem, *, max_nfev: int):
+def _solve(problem: _Problem, *, max_nfev: int, x0: NDArray | None = None):
+    """The optimiser on ``problem`` from ``x0`` (default the model's current vector), within bounds."""
     m = problem.model
     lo, hi = m.bounds()
-    x0 = np.clip(m.vector(), lo, hi)
+    x0 = np.clip(m.vector() if x0 is None else x0, lo, hi)
     with np.errstate(over="ignore", under="ignore"):
         return least_squares(problem.residuals, x0, jac=problem.jacobian, bounds=(lo, hi),
                              x_scale="jac", method="trf", max_nfev=max_nfev,

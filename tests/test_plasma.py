@@ -290,12 +290,12 @@ def test_response_tilt_moves_neither_temperature_nor_observed_groups(line_list):
                              flux=spec.flux * tilt, flux_err=spec.flux_err * tilt, mask=spec.mask)
     centre = {"na": 589.3, "mg": 517.3, "fe": 536.0}
     seen = np.array([truth[g] * np.interp(centre[g], spec.wavelength_nm, tilt) for g in plasma.GROUPS])
-    fit = plasma.fit_plasma(tilted, fwhm_nm=2.5)
+    fit = plasma.fit_plasma(tilted, fwhm_nm=2.5, bootstrap_draws=0)  # values and temperature error only
     got = np.array([fit.group_intensity[g] for g in plasma.GROUPS])
     # composition to 0.01: the acceptance's scale (0.03) with room for the render difference
     assert_allclose(got / got.sum(), seen / seen.sum(), atol=0.01)
     assert abs(fit.temperature_k - 4600.0) < 3 * fit.temperature_err_k + 100.0
-    rigid = plasma.fit_plasma(tilted, fwhm_nm=2.5, response_degree=0)
+    rigid = plasma.fit_plasma(tilted, fwhm_nm=2.5, response_degree=0, bootstrap_draws=0)
     assert abs(rigid.temperature_k - 4600.0) > abs(fit.temperature_k - 4600.0)
 
 
@@ -323,12 +323,13 @@ def test_temperature_prior_combines_with_the_data_as_gaussians(bright_fit):
     # 2 sigma away must land halfway with sigma / sqrt(2); tolerances 0.15 s_d and 5 %, for the
     # model's nonlinearity over 2 sigma (measured: 0.03 s_d and 0.7 %).
     spec, _, default = bright_fit
-    free = plasma.fit_plasma(spec, fwhm_nm=2.5, temperature_prior_k=None)
+    # the temperature error is under test, not the group errors: no group-error bootstrap
+    free = plasma.fit_plasma(spec, fwhm_nm=2.5, temperature_prior_k=None, bootstrap_draws=0)
     assert free and free.config["temperature_prior_k"] is None
     l_d = math.log(free.temperature_k)
     s_d = free.temperature_err_k / free.temperature_k
     t_p = math.exp(l_d + 2.0 * s_d)
-    fit = plasma.fit_plasma(spec, fwhm_nm=2.5, temperature_prior_k=(t_p, s_d * t_p))
+    fit = plasma.fit_plasma(spec, fwhm_nm=2.5, temperature_prior_k=(t_p, s_d * t_p), bootstrap_draws=0)
     assert abs(math.log(fit.temperature_k) - (l_d + s_d)) < 0.15 * s_d
     assert fit.temperature_err_k / fit.temperature_k == pytest.approx(s_d / math.sqrt(2), rel=0.05)
     # The default prior (4500 +- 500 K) beside ~45 K of data at 2.5 nm FWHM: the same formula
@@ -349,8 +350,9 @@ def test_temperature_prior_bounds_a_loose_coarse_temperature(line_list):
     fwhm, _, wl, bw, _, _, metal, energy = _coarse_scene(line_list)
     flux = _render(wl, bw, metal.wavelength_nm, energy, fwhm, step_nm=0.05)
     spec, truth = _noisy_spectrum_and_truth(wl, bw, flux, metal, energy, seed=2)
-    free = plasma.fit_plasma(spec, fwhm_nm=fwhm, temperature_prior_k=None)
-    fit = plasma.fit_plasma(spec, fwhm_nm=fwhm)
+    # the temperature error is under test, not the group errors: no group-error bootstrap
+    free = plasma.fit_plasma(spec, fwhm_nm=fwhm, temperature_prior_k=None, bootstrap_draws=0)
+    fit = plasma.fit_plasma(spec, fwhm_nm=fwhm, bootstrap_draws=0)
     assert free and fit
     s_d = free.temperature_err_k / free.temperature_k / math.sqrt(max(1.0, free.chi2_reduced))
     assert s_d > 0.3  # loose: more than +-30 % in T
@@ -491,8 +493,10 @@ def test_response_skew_of_blurred_lines_is_modelled(line_list):
             / np.interp(wl, r_wl, r_val))
     spec, truth = _noisy_spectrum_and_truth(wl, bw, flux, metal, energy, seed=2)
 
-    with_r = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_nm=(r_wl, r_val), response_degree=0)
-    plain = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_degree=0)
+    # compositions only (the bootstrap of the group errors leaves the values alone)
+    with_r = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_nm=(r_wl, r_val), response_degree=0,
+                               bootstrap_draws=0)
+    plain = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_degree=0, bootstrap_draws=0)
     assert with_r and with_r.config["n2_tied"] is True
     err_r = np.abs(_composition(with_r) - truth).max()
     assert err_r < 0.03
@@ -542,8 +546,11 @@ def test_transmission_of_each_frame_folds_into_one_curve(line_list):
     assert np.abs(folded - whole.flux).max() < 0.1 * np.abs(r_only_sum - whole.flux).max()
     spec, truth = _noisy_spectrum_and_truth(wl, bw, whole.flux, metal, energy, seed=3)
 
-    folded_fit = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_nm=curve, response_degree=0)
-    r_only = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_nm=(r_wl, r_val), response_degree=0)
+    # compositions only (the bootstrap of the group errors leaves the values alone)
+    folded_fit = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_nm=curve, response_degree=0,
+                                   bootstrap_draws=0)
+    r_only = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_nm=(r_wl, r_val), response_degree=0,
+                               bootstrap_draws=0)
     assert folded_fit and r_only
     err_folded = np.abs(_composition(folded_fit) - truth).max()
     assert err_folded < 0.03
@@ -668,7 +675,7 @@ def test_boltzmann_plot_temperature_agrees_with_fit(line_list):
 
 def test_thin_fit_reports_no_absolute_columns(line_list):
     spec, _ = _meteor(line_list, snr=100.0, seed=7, lo=480, hi=620)
-    fit = plasma.fit_plasma(spec, fwhm_nm=2.5, self_absorption=False)
+    fit = plasma.fit_plasma(spec, fwhm_nm=2.5, self_absorption=False, bootstrap_draws=0)  # columns only
     assert fit
     assert all(np.isnan(v) for v in fit.column_density_m2.values())
 
@@ -688,7 +695,7 @@ def test_per_frame_fits_follow_the_light_curve(line_list):
     whole = SimpleNamespace(wavelength_nm=spec.wavelength_nm, bin_width_nm=spec.bin_width_nm,
                             flux=flux.sum(0), flux_err=np.full(flux.shape[1], 2 * sigma),
                             mask=np.zeros(flux.shape[1], bool))
-    wf = plasma.fit_plasma(whole, fwhm_nm=2.5)
+    wf = plasma.fit_plasma(whole, fwhm_nm=2.5, bootstrap_draws=0)  # its group errors are not used
     assert wf
     fits = plasma.fit_plasma_per_frame(frames, wf, fwhm_nm=2.5)
     assert len(fits) == 4 and not fits[2] and "frame 2" in fits[2].reason

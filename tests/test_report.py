@@ -18,7 +18,7 @@ from meteorspec.store import read_event
 from test_batch import (BLANK_ID, CORRUPT_ID, SAMPLE_SUBSET, make_night, no_plasma_output,  # noqa: F401
                         sample_night)
 
-COMPLETE_ID, NO_PLASMA_ID = SAMPLE_SUBSET[1], SAMPLE_SUBSET[0]  # QM03 runs every stage; QM04's fit is forced to fail
+COMPLETE_ID, NO_PLASMA_ID = SAMPLE_SUBSET[1], SAMPLE_SUBSET[0]  # the second's outputs as run; the first's fit forced to fail
 MOVED_ID = "20261114T030200Z_TB01"
 
 
@@ -31,7 +31,7 @@ def night_report(sample_night, no_plasma_output, tmp_path_factory):
     root = tmp_path_factory.mktemp("report")
     out = root / "out"
     shutil.copytree(sample_night.out, out)
-    shutil.copy(no_plasma_output, out / no_plasma_output.name)  # the saturated fireball, its fit forced to fail
+    shutil.copy(no_plasma_output, out / no_plasma_output.name)  # the first sample event, its fit forced to fail
     (moved,) = make_night(root / "night", 1, first=2)
     run_night(find_events([root / "night"]), out_dir=out)
     # the stacked image of an event whose video is gone is skipped with a note

@@ -35,6 +35,8 @@ FLAG_TEXT = {
     "spectrum_off_frame": "part of the spectrum fell outside the sensor",
     "low_snr": "low signal-to-noise ratio",
     "calibration_from_station": "wavelength scale from the station file values, not refined on this event",
+    "calibration_uncertain": "wavelength scale refined on this event, but its own error exceeds 1 nm somewhere "
+                             "over 390-850 nm (extrapolated beyond its lines)",
     "speed_unknown": "no trajectory speed: class given without the speed-dependent expectation",
     "no_meteor": "no meteor found in the video: nothing to extract, identify or classify",
     "plasma_fit_failed": "the plasma fit did not converge: no composition or class",

@@ -93,7 +93,8 @@ A refined feature solution whose own wavelength error (the geometry fit's covari
 to every luminous frame's spectrum over 390-850 nm, :func:`_wavelength_sigma_nm`) exceeds 1 nm
 (1-sigma) somewhere is kept but flagged ``calibration_uncertain``: its features fix the scale
 only where they lie, and towards the ends of the track or of the spectrum (a free tilt, features
-from a short stretch of it) it is extrapolated further than issue 4's 1 nm allows.
+from a short stretch of it) it is extrapolated further than the calibration target's 1 nm
+(largest line-position error over 390-850 nm) allows.
 """
 
 from __future__ import annotations
@@ -1860,7 +1861,7 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
             return sol  # no geometry helps when the track is not the zeroth order
         sol = _checked_wide_offset(sol, cuts, psf, station_geometry, order, n_bins=kwargs["n_bins"], event=event)
         if sol.source == "event" and coarse.get("wavelength_sigma_nm", 0.0) > _MAX_WAVELENGTH_SIGMA_NM:
-            # kept (the features are what the event has), but the scale is not known to issue 4's 1 nm
+            # kept (the features are what the event has), but the scale is not known to the target's 1 nm
             sol = dataclasses.replace(sol, flags=tuple(sol.flags) + (UNCERTAIN_FLAG,))
         if whole_spectrum == "off" or sol.source == "event" or response is None:
             # without the response the blends' shapes are wrong enough to bias the stretch
@@ -2486,14 +2487,15 @@ def _calibrate_features(cuts: list[_FrameCut], psf: float, station_geometry: Spe
 #: :func:`_wavelength_sigma_nm`); the solution is kept.
 UNCERTAIN_FLAG = "calibration_uncertain"
 #: Wavelengths (nm) over which a refined solution's wavelength error is judged: the range of
-#: issue 4's line-position acceptance.
+#: the calibration target's line positions.
 UNCERTAIN_RANGE_NM = (390.0, 850.0)
 #: Largest 1-sigma (nm) of a refined feature solution's wavelengths over ``UNCERTAIN_RANGE_NM`` on
-#: any luminous frame before it is flagged ``calibration_uncertain``: issue 4's limit on the largest
-#: line-position error (1.0 nm). A solution whose own 1-sigma exceeds it cannot be expected to meet
-#: that limit (not tuned). Seeded ``bench_calibration.py --truth-track``, the refined feature
-#: solutions: seed 4 (``--n 30``) 0.14-0.84 nm on eleven of the fourteen whose lines met issue 4's
-#: figures, 1.62, 1.57 and 1.14 nm on 009, 027 and 029 (lines 0.60, 0.87 and 0.45 nm at most);
+#: any luminous frame before it is flagged ``calibration_uncertain``: the calibration target's
+#: limit on the largest line-position error (1.0 nm). A solution whose own 1-sigma exceeds it
+#: cannot be expected to meet that limit (not tuned). Seeded ``bench_calibration.py
+#: --truth-track``, the refined feature solutions: seed 4 (``--n 30``) 0.14-0.84 nm on eleven of
+#: the fourteen whose lines met the target's figures, 1.62, 1.57 and 1.14 nm on 009, 027 and 029
+#: (lines 0.60, 0.87 and 0.45 nm at most);
 #: flagged: those three and 001, 019 (lines at most 1.38 and 3.55 nm); 021 (1.05 nm) states 0.58.
 #: 019's 3.55 nm is 2.5 times its stated 1.50 nm: its blend windows, modelled with flat line
 #: strengths where the counts carry the station response, sit +0.8 to +1.6 nm off in the blue, and

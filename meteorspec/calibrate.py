@@ -2547,18 +2547,14 @@ def _wavelength_sigma_nm(fit: GeometryFit, x0_px: NDArray, y0_px: NDArray, cuts:
     x0, y0, wl = np.broadcast_arrays(np.asarray(x0_px, float)[ok, None], np.asarray(y0_px, float)[ok, None],
                                      np.linspace(*UNCERTAIN_RANGE_NM, n_wavelengths)[None, :])
     xs, ys = geo.spectrum_pixel(x0, y0, wl, order)
-    xa, ya = geo.spectrum_pixel(x0, y0, wl + 0.5, order)
-    xb, yb = geo.spectrum_pixel(x0, y0, wl - 0.5, order)
-    tx, ty = xa - xb, ya - yb
-    px_per_nm = np.hypot(tx, ty)
     with np.errstate(invalid="ignore", divide="ignore"):
-        nm_per_px = np.where(px_per_nm > 0, 1.0 / px_per_nm, np.nan)
-    tx, ty = tx * nm_per_px, ty * nm_per_px
+        tx, ty = geo.direction(x0, y0, wl, order)
+        nm_per_px = geo.dispersion_nm_per_px(x0, y0, wl, order)
     c0 = cuts[0]
     width = c0.residual.shape[1]
     y_lo = c0.y_start_px
     y_hi = c0.y_start_px + (c0.residual.shape[0] - 1) * c0.y_step_px
-    on = (xs >= 0) & (xs <= width - 1) & (ys >= y_lo) & (ys <= y_hi) & (px_per_nm > 0)
+    on = (xs >= 0) & (xs <= width - 1) & (ys >= y_lo) & (ys <= y_hi) & np.isfinite(nm_per_px)
     if not on.any():
         return math.nan
     # central differences of the forward model, no inversion needed: a parameter that moves a

@@ -371,6 +371,7 @@ class _Model:
                           continuum_degree=self.degree, response=self.response,
                           brightness_rounds=self.brightness_rounds, multiplet_sigma=self.multiplet_sigma)
             rest.scale = self.scale[~held].copy()
+            rest.prior_weight = self.prior_weight  # the same multiplet prior as a settling of all frames
             n = rest.settle_brightness(geo, max_solves=max_solves, rtol=rtol)
             self.scale = self.scale.copy()
             self.scale[~held] = rest.scale

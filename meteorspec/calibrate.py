@@ -40,7 +40,8 @@ Steps of :func:`calibrate_event`
    **Blend windows** add the rest of the spectrum: consecutive windows of ~10 px
    over 360-900 nm, each modelled as every template species' NIST lines (free
    non-negative amplitude per species, the same streaked PSF, a linear continuum)
-   moved by one common shift. They need no isolated line, so they reach the red
+   moved by one common shift; the line weights times the station response where it is
+   given (the counts carry it). They need no isolated line, so they reach the red
    and violet ends and the crowded Fe I regions, which pins the tilt (a slow
    change of dispersion along the spectrum) that three or four isolated features
    leave loose. The isolated features still decide whether an event can be
@@ -1361,21 +1362,50 @@ def _window_components(lo_nm: float, hi_nm: float) -> tuple[tuple[str, NDArray, 
     return tuple(comps)
 
 
-def _window_reference_nm(lo_nm: float, hi_nm: float) -> float:
-    """Light centroid of the coarse meteor template within a window: where its shift is measured."""
+def _response_at(wavelength_nm: NDArray, response: ResponseCurve | None) -> NDArray:
+    """Station response at the lines' wavelengths (1 without a response; 0 where it is unknown or
+    not positive, as :mod:`meteorspec.calfit` weighs its lines)."""
+    if response is None:
+        return np.ones_like(wavelength_nm, dtype=float)
+    r = np.asarray(response(wavelength_nm), dtype=float)
+    return np.where(np.isfinite(r) & (r > 0), r, 0.0)
+
+
+def _response_weighted(comps: tuple[tuple[str, NDArray, NDArray], ...],
+                       response: ResponseCurve | None) -> tuple[tuple[str, NDArray, NDArray], ...]:
+    """Window components with each line's weight times the station response (sum 1 again).
+
+    The counts a window is fitted to carry the response; where it changes across the window
+    (below ~450 nm, above ~700 nm) flat weights put the template's blends off the recorded
+    light's. ``response`` None: ``comps`` unchanged.
+    """
+    if response is None:
+        return comps
+    out = []
+    for name, c, w in comps:
+        rw = w * _response_at(c, response)
+        if rw.sum() > 0:
+            out.append((name, c, rw / rw.sum()))
+    return tuple(out)
+
+
+def _window_reference_nm(lo_nm: float, hi_nm: float, response: ResponseCurve | None = None) -> float:
+    """Light centroid of the coarse meteor template within a window (times the station response
+    when given: the recorded light's): where its shift is measured."""
     num = den = 0.0
     for species, weight in _TEMPLATE_WEIGHT.items():
         c, w = _species_lines(species, 350.0, 900.0)
         sel = (c >= lo_nm) & (c <= hi_nm)
-        num += weight * float(np.sum(c[sel] * w[sel]))
-        den += weight * float(np.sum(w[sel]))
+        rw = w[sel] * _response_at(c[sel], response)
+        num += weight * float(np.sum(c[sel] * rw))
+        den += weight * float(np.sum(rw))
     return num / den if den > 0 else 0.5 * (lo_nm + hi_nm)
 
 
 def _measure_windows(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: float, max_shift_nm: float,
                      min_snr: float, n_bins: int, order: int, event: str, wl_range_nm: tuple[float, float],
                      window_px: float = 10.0, min_window_nm: float = 25.0,
-                     window_floor: float = 0.15) -> list[dict[str, Any]]:
+                     window_floor: float = 0.15, response: ResponseCurve | None = None) -> list[dict[str, Any]]:
     """Shifts of whole blend patterns in consecutive windows along the spectrum (rows as :func:`_measure_bins`).
 
     Unlike the isolated features, every window that holds meteor lines is used: the model of
@@ -1383,6 +1413,11 @@ def _measure_windows(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_p
     per species) drawn with the PSF and the motion streak, plus a linear continuum, moved by
     one common shift. The position is reported at the template's light centroid in the
     window. Windows are the same for all bins of an event (laid out at the middle frame).
+    With ``response`` (the station's) every line's weight, and the light centroid, is
+    multiplied by it: the counts carry it. On the simulator's noise-free spectra of seeded
+    ``bench_calibration.py`` events (seed 4, 019 and 021, 2.7-2.8 nm/px) flat weights put the
+    windows of 388-445 nm 0.9-1.5 nm (019) and 1.1 nm (021) off, weighted 0.3-0.8 and 0.7 nm;
+    beyond 450 nm the two differ by < 0.2 nm.
 
     ``window_floor`` (in line widths) is added in quadrature to each position's error: at the
     true geometry of seeded simulator events the windows' shifts scatter by up to 0.3 px
@@ -1392,6 +1427,7 @@ def _measure_windows(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_p
     rows: list[dict[str, Any]] = []
     if not cuts:
         return rows
+    weighted: dict[tuple[float, float], tuple] = {}  # each window's response-weighted components, once
     mid = cuts[len(cuts) // 2]
     edges = _window_edges(geometry, mid.x0_px, mid.y0_px, wl_range_nm=wl_range_nm, window_px=window_px,
                           min_window_nm=min_window_nm, order=order)
@@ -1434,7 +1470,10 @@ def _measure_windows(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_p
         for lo_w, hi_w, disp, box_nm, _ in setup:
             sigma_nm = width_px * disp
             reach = max_shift_nm + 3.0 * sigma_nm + 0.5 * box_nm
-            comps = _window_components(round(lo_w - reach, 1), round(hi_w + reach, 1))
+            key = (round(lo_w - reach, 1), round(hi_w + reach, 1))
+            if key not in weighted:
+                weighted[key] = _response_weighted(_window_components(*key), response)
+            comps = weighted[key]
             if not comps:
                 continue
             sel = (wl_all >= lo_w) & (wl_all <= hi_w)
@@ -1457,7 +1496,8 @@ def _measure_windows(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_p
             if snr < min_snr or not np.isfinite(shift_err):
                 continue
             pending.append(_measured_row(group, geometry, wl, half, order, curves=tuple(c[:, sel] for c in curves),
-                                         event=event, x0_px=x0, y0_px=y0, lab_nm=_window_reference_nm(lo_w, hi_w),
+                                         event=event, x0_px=x0, y0_px=y0,
+                                         lab_nm=_window_reference_nm(lo_w, hi_w, response),
                                          shift_nm=shift, shift_err_nm=shift_err,
                                          species=f"blend {lo_w:.0f}-{hi_w:.0f}", snr=snr, width_px=width_px,
                                          box_nm=box_nm, floor=window_floor))
@@ -1526,7 +1566,8 @@ def measure_lines(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: 
                   max_shift_nm: float = 3.0, min_snr: float = 5.0, n_bins: int = 12,
                   min_lines: int = 3, order: int = 1, event: str = "",
                   wl_range_nm: tuple[float, float] = (360.0, 900.0), method: str = "features",
-                  window_px: float = 10.0, min_snr_window: float | None = None) -> LineMeasurements:
+                  window_px: float = 10.0, min_snr_window: float | None = None,
+                  response: ResponseCurve | None = None) -> LineMeasurements:
     """Measure the positions of the isolated features of :data:`FEATURES_NM` along ``geometry``'s curve.
 
     Parameters
@@ -1553,6 +1594,9 @@ def measure_lines(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: 
         Length of a blend window in pixels (at least 25 nm).
     min_snr_window : float, optional
         Significance a blend window needs; ``min_snr`` when None.
+    response : ResponseCurve, optional
+        Station response: the blend windows' line weights are multiplied by it (the counts
+        carry it); flat without.
 
     Returns
     -------
@@ -1586,7 +1630,7 @@ def measure_lines(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: 
                 kind_rows = _measure_windows(cuts, geometry, psf_px=psf_px, max_shift_nm=max_shift_nm,
                                              min_snr=min_snr if min_snr_window is None else min_snr_window,
                                              n_bins=nb, order=order, event=event, wl_range_nm=wl_range_nm,
-                                             window_px=window_px)
+                                             window_px=window_px, response=response)
             if len({r["lab_nm"] for r in kind_rows}) >= min_lines:
                 break
         rows += kind_rows
@@ -1749,7 +1793,8 @@ def calibrate_event(frames: Sequence, background: Any, track: Any, station_geome
         difference (390-850 nm) between the fits to the two halves of the track and the fit to
         all of it, their ``n_lines`` the number of model components with light.
     response : ResponseCurve, optional
-        Station response; the whole-spectrum model multiplies its line weights by it. Without
+        Station response; the whole-spectrum model and the blend windows (step 4 of the
+        module notes) multiply their line weights by it. Without
         it the blends' shapes assume a flat response (on the seeded bench that moved a
         binned event's groove density by ~0.9 %, line median 4.4 nm instead of 0.3 nm).
     whole_spectrum_tilt : bool
@@ -1855,7 +1900,7 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
             lit &= np.asarray(track.luminous, bool)
         sol = _calibrate_features(cuts, psf, station_geometry, angle_range_deg=angle_range_deg,
                                   grooves_range_frac=grooves_range_frac, order=order, event=event,
-                                  coarse=coarse, track_xy=(x[lit], y[lit]), **kwargs)
+                                  coarse=coarse, track_xy=(x[lit], y[lit]), response=response, **kwargs)
         sol = _checked_zeroth_order(sol, cuts, psf, station_geometry, order)
         if ZEROTH_ORDER_FLAG in sol.flags:
             return sol  # no geometry helps when the track is not the zeroth order
@@ -2352,7 +2397,8 @@ def _calibrate_features(cuts: list[_FrameCut], psf: float, station_geometry: Spe
                         event: str, coarse: dict[str, Any] | None = None,
                         max_grooves_err_frac: float = _FEATURE_MAX_GROOVES_ERR,
                         fine_max_nm_per_px: float = 3.5,
-                        track_xy: tuple[NDArray, NDArray] | None = None) -> WavelengthSolution:
+                        track_xy: tuple[NDArray, NDArray] | None = None,
+                        response: ResponseCurve | None = None) -> WavelengthSolution:
     """The feature and blend-window method of :func:`calibrate_event` (module notes, steps 1-5).
 
     ``coarse``: when given, the stretch candidates of the coarse search are stored in it
@@ -2360,6 +2406,7 @@ def _calibrate_features(cuts: list[_FrameCut], psf: float, station_geometry: Spe
     ``track_xy``: the luminous frames' zeroth-order positions; when given with ``coarse``, a
     refined solution's largest wavelength 1-sigma along them is stored in it
     (``"wavelength_sigma_nm"``, :func:`_wavelength_sigma_nm`).
+    ``response``: the station's, for the blend windows' line weights (:func:`measure_lines`).
     """
     if not cuts:
         return station_solution(station_geometry, flags=("calibration_few_lines",))
@@ -2409,7 +2456,7 @@ def _calibrate_features(cuts: list[_FrameCut], psf: float, station_geometry: Spe
         m = measure_lines(cuts if sat is None else _filled_cuts(cuts, geo, psf, order), geo, psf_px=psf,
                           n_bins=n_bins, min_lines=min_lines, order=order, event=event,
                           max_shift_nm=shift_nm, method=method, window_px=window_px,
-                          min_snr_window=min_snr_window)
+                          min_snr_window=min_snr_window, response=response)
         anchored = len(m) > 0 and len(np.unique(np.round(m.lab_nm))) >= min_lines and not (
             method == "both" and _n_isolated(m) < min_lines and not (fit is None and _windows_anchor(m)))
         if fit is not None and windows_first and not (anchored or _windows_anchor(m)):
@@ -2497,9 +2544,12 @@ UNCERTAIN_RANGE_NM = (390.0, 850.0)
 #: the fourteen whose lines met the target's figures, 1.62, 1.57 and 1.14 nm on 009, 027 and 029
 #: (lines 0.60, 0.87 and 0.45 nm at most);
 #: flagged: those three and 001, 019 (lines at most 1.38 and 3.55 nm); 021 (1.05 nm) states 0.58.
-#: 019's 3.55 nm is 2.5 times its stated 1.50 nm: its blend windows, modelled with flat line
-#: strengths where the counts carry the station response, sit +0.8 to +1.6 nm off in the blue, and
-#: the free tilt follows them; its one line beyond 700 nm (O I 777) leaves the red end extrapolated.
+#: 019's 3.55 nm was 2.5 times its stated 1.50 nm: its blend windows, then modelled with flat line
+#: strengths where the counts carry the station response, sat +0.8 to +1.6 nm off in the blue, and
+#: the free tilt followed them; its one line beyond 700 nm (O I 777) left the red end extrapolated.
+#: With the windows' weights times the response, seed 4 flags 001, 009, 019 and 027 (lines at most
+#: 1.63, 1.20, 0.41 and 0.85 nm), no longer 029 (0.78 nm); all-sky 001 (a wrong stretch of the
+#: coarse search, 19.3 nm, whose last round found one isolated feature) and 004 (1.24 nm).
 #: All-sky (``--allsky 8 --seed 7``) 0.29-0.97 nm, flagged 004 (2.21 nm stated; lines 0.54 / 0.72
 #: nm) and 006 (3.48; 2.46 nm at 850 nm on the first frame, 115 px from the one frame bin that holds
 #: its isolated features; the blend windows near the first frame have a 1-sigma of 4-10 nm). Seed 5

@@ -562,3 +562,42 @@ def test_isolated_misfit_allows_measurement_errors_but_not_a_wrong_match():
                             "species": np.full(len(m), "Fe I")})
     fit = fit_geometry(m, ALLSKY, fit_tilt=False, reject_sigma=1e9)
     assert _isolated_misfit(fit, m, 0.75)[1] > 1.0
+
+
+def test_a_fit_whose_features_are_lost_in_a_later_round_is_refused(monkeypatch):
+    # The feature loop re-measures along each round's fitted curve with a narrower search (+-4,
+    # +-2, +-1.2 nm). A round that no longer finds enough isolated features along that curve is
+    # no confirmation of the fit it started from: the fit is dropped (calibration_few_lines) and
+    # the whole-spectrum path decides, instead of the earlier round's fit being returned
+    # unconfirmed. Seen on bench_calibration.py --allsky 8 --seed 7 event 001: a coarse-search
+    # stretch 2 % off, fitted in round 1, found one isolated feature in round 2 and was kept 19 nm
+    # off; refused, the whole-spectrum fit is 0.43 nm off. Here the loss is made: from the second
+    # round on the isolated features are taken out of what measure_lines returns (the blend
+    # windows stay) on the first scene of test_calibrate_event_from_wrong_station_values, which
+    # refines from the event when left alone.
+    from meteorspec import calibrate as cal
+
+    n = 12
+    frames, track = _render_event(WIDE, np.linspace(60.0, 220.0, n), np.linspace(300.0, 200.0, n))
+    g = WIDE.grating
+    station = WIDE.with_grating(grooves_per_mm=g.grooves_per_mm * 1.03,
+                                dispersion_angle_deg=g.dispersion_angle_deg + 4.0, tilt_deg=g.tilt_deg + 2.0)
+    real = cal.measure_lines
+    rounds: list[tuple[int, int]] = []  # (isolated features measured, returned) per call
+
+    def measure(*args, **kw):
+        m = real(*args, **kw)
+        n_found = cal._n_isolated(m)
+        if rounds:
+            m = m.select(cal._window_rows(m))
+        rounds.append((n_found, cal._n_isolated(m)))
+        return m
+
+    monkeypatch.setattr(cal, "measure_lines", measure)
+    sol = calibrate_event(frames, _FlatBackground(1.0), track, station, n_bins=4, whole_spectrum="off")
+    # the premise: the first round anchored a fit on isolated features (>= min_lines, 3), so the
+    # loop went on to a second round, which then returned none
+    assert len(rounds) >= 2 and rounds[0][0] >= 3, rounds
+    assert rounds[1][1] == 0
+    assert sol.source == "station", sol.flags
+    assert "calibration_few_lines" in sol.flags

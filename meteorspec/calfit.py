@@ -48,7 +48,7 @@ from scipy import ndimage, optimize
 
 from . import atomic
 from .calibrate import (_PRIOR_SIGMA, _TEMPLATE_WEIGHT, _FrameCut, _line_list, _line_profile, _pack,
-                        _sample_curves_both, _unpack)
+                        _response_at, _sample_curves_both, _unpack)
 from .optics import SpectralGeometry
 from .plasma import n2_band_samples
 
@@ -237,8 +237,7 @@ class _Model:
         if response is not None:
             # the camera sees the emitted lines times the station response: within a species
             # that reweights lines far apart, and so where its blends have their centroids
-            r = np.asarray(response(self.centres), float)
-            self.weights = self.weights * np.where(np.isfinite(r) & (r > 0), r, 0.0)
+            self.weights = self.weights * _response_at(self.centres, response)
         self.comp = np.concatenate([np.full(c[2].size, j) for j, c in enumerate(comps)])
         self.n_base = len(comps)
         self._add_multiplets(np.concatenate([np.full(c[2].size, c[1]) for c in comps]),

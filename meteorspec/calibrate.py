@@ -1364,7 +1364,8 @@ def _window_components(lo_nm: float, hi_nm: float) -> tuple[tuple[str, NDArray, 
 
 def _response_at(wavelength_nm: NDArray, response: ResponseCurve | None) -> NDArray:
     """Station response at the lines' wavelengths (1 without a response; 0 where it is unknown or
-    not positive, as :mod:`meteorspec.calfit` weighs its lines)."""
+    not positive): the weight the camera gives each line, for the blend windows here and the
+    whole-spectrum model (:mod:`meteorspec.calfit`)."""
     if response is None:
         return np.ones_like(wavelength_nm, dtype=float)
     r = np.asarray(response(wavelength_nm), dtype=float)

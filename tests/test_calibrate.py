@@ -17,6 +17,7 @@ from numpy.testing import assert_allclose
 from scipy import ndimage
 
 from meteorspec import atomic
+from meteorspec import calibrate as cal
 from meteorspec.calibrate import (apply_response, calibrate_event, calibrate_night, derive_response,
                                   fit_geometry, meteor_template)
 from meteorspec.config import ResponseCurve, load_station
@@ -575,8 +576,6 @@ def test_a_fit_whose_features_are_lost_in_a_later_round_is_refused(monkeypatch):
     # round on the isolated features are taken out of what measure_lines returns (the blend
     # windows stay) on the first scene of test_calibrate_event_from_wrong_station_values, which
     # refines from the event when left alone.
-    from meteorspec import calibrate as cal
-
     n = 12
     frames, track = _render_event(WIDE, np.linspace(60.0, 220.0, n), np.linspace(300.0, 200.0, n))
     g = WIDE.grating

@@ -287,6 +287,37 @@ def test_instrument_fwhm_when_550_nm_lies_beyond_the_lens_field():
     assert_allclose(fwhm[ok], expected[ok], rtol=2e-3)  # 0.680 is sqrt(8 ln 2 / 12) to 3 digits
 
 
+def test_instrument_fwhm_streak_of_each_line_image_off_axis_on_a_rectilinear_lens():
+    # A zeroth order on the x axis of a rectilinear lens (r = f tan theta, contract 2.1), 100 px
+    # off the centre, moving 6 px along +x per exposure through an untilted 600 grooves/mm
+    # grating (normal incidence, contract 2.2: sin theta = sin theta_0 + m lambda N). Worked by
+    # hand from those two formulas: the image of a wavelength lies at x = cx + f tan theta, so
+    # it moves by f (tan theta(b) - tan theta(a)) between the streak's ends a and b, which is
+    # about cos^3(theta_0) / cos^3(theta) times the zeroth order's 6 px (8.9, 11.5 and 23.2 px
+    # at 400, 550 and 800 nm), and the local dispersion is cos^3(theta) / (f N) nm per px.
+    from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
+    f, cx, n_mm = 300.0, 320.0, 600.0
+    geo = SpectralGeometry(LensModel("rectilinear", f, cx, 240.0), GratingModel(n_mm, 0.0))
+    lam = np.array([400.0, 550.0, 800.0])
+    track = _LineTrack(420.0, 150.0)  # 150 px/s x 0.04 s = 6 px per exposure, PSF sigma 1 px
+    fwhm = pipeline._instrument_fwhm(geo, track, lam, order=1)
+
+    def image_x(x0_px: float) -> np.ndarray:
+        sin_theta = math.sin(math.atan((x0_px - cx) / f)) + lam * 1e-6 * n_mm
+        return cx + f * np.tan(np.arcsin(sin_theta))
+
+    streak = image_x(423.0) - image_x(417.0)
+    theta = np.arcsin(math.sin(math.atan(100.0 / f)) + lam * 1e-6 * n_mm)
+    disp = np.cos(theta) ** 3 / (f * n_mm * 1e-6)
+    # PSF and the streak's box (variance L^2 / 12, Gaussian-equivalent FWHM sqrt(8 ln 2 / 12) L)
+    # in quadrature (common practice: independent blurs add in variance)
+    expected = np.hypot(2.3548, math.sqrt(8 * math.log(2) / 12) * streak) * disp
+    assert_allclose(fwhm, expected, rtol=1e-4)  # 2.3548 for sqrt(8 ln 2) is good to 2e-5
+    # the zeroth order's own 6 px would have given lines 1.4-3.4x too narrow here
+    zeroth = np.hypot(2.3548, math.sqrt(8 * math.log(2) / 12) * 6.0) * disp
+    assert np.all(fwhm > 1.3 * zeroth)
+
+
 def test_aperture_angle_from_light_only_where_the_station_aperture_misses():
     # A seeded simulator event (QM03, interlaced) bright enough that its group lines saturate,
     # extracted with the truth track. Station angle 3.4 deg off (as the perturbed station file of

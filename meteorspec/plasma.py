@@ -1354,6 +1354,89 @@ def _bootstrap_group_covariance(model: _Model, problem: _Problem, x: NDArray, *,
     return np.cov(np.array(draws).T, ddof=1)
 
 
+def _bound_group_covariance(model: _Model, problem: _Problem, x: NDArray, g_cov: NDArray,
+                            at_bound: NDArray, *, noise_scale2: float) -> NDArray:
+    """Group covariance when a group sits at its bound (fitted to almost nothing).
+
+    At fixed temperatures, positions, widths and response factor the model is linear in the
+    amplitudes of its parts (thin lines: exactly). The group at its bound is given a free
+    amplitude of its own lines (thin LTE ratios, as its column density tends to zero); the
+    other groups, the other species' lines and the linear nuisances (air lines, N2, continuum)
+    keep theirs where the fit left them free, while those at their lower bound (components the
+    fit turned off) stay at zero, the active set of a non-negative least-squares solution
+    (Lawson & Hanson, *Solving Least Squares Problems*, 1974, ch. 23, from memory). The
+    groups' block of ``noise_scale2 (A^T W A)^-1`` over those amplitudes is the marginal
+    error: a group blended with another (Mg I b and Fe I at a coarse dispersion) then carries
+    the error of the split, not only the conditional ``1 / info`` of its own profile with
+    every other part held fixed, which is all a Na-free meteor's isolated Na I D needs.
+    Each group keeps the larger of this variance and ``g_cov``'s, with this one's correlations;
+    a group without a usable line in the fitted range has an infinite error.
+    """
+    model.set_vector(x)
+    lo, _ = model.bounds()
+    with np.errstate(invalid="ignore"):  # lo = -inf (continuum slopes): never at a bound
+        at_lo = np.isfinite(lo) & (x - lo <= 1e-6 * np.maximum(1.0, np.abs(lo)))
+    free = dict(zip(model.free_names, ~at_lo))
+    p_metal = model.profiles()[0]
+    factor_lines = model.response_factor(model.metal.wavelength_nm)
+    thin1, _ = model._unit_lines(t_main=10.0 ** model.value("log_t"),
+                                 t_hot=10.0 ** model.value("log_t_hot"))
+    _, d_ln_n, _ = model.line_state()
+    good, weight = problem.good, problem.weight
+
+    def column(member: NDArray, shape: NDArray) -> NDArray | None:
+        # flux per unit of the lines' observed energy (the response factor at each line)
+        seen = float(np.sum(np.where(member, shape, 0.0) * factor_lines))
+        if not (seen > 0 and np.isfinite(seen)):
+            return None
+        out = np.asarray(p_metal @ (np.where(member, shape, 0.0) / seen), dtype=float)[good] * weight
+        return out if np.all(np.isfinite(out)) and np.any(out != 0) else None
+
+    cols = []
+    for k, g in enumerate(GROUPS):
+        member = model.group_of_line == g
+        # at the bound the lines are thin; elsewhere d E / d ln N keeps self-absorption
+        c = column(member, thin1 if at_bound[k] else d_ln_n)
+        if c is None:
+            c = column(member, thin1)
+        cols.append(c)
+    usable = np.array([c is not None for c in cols])
+    lin_names, basis = model.linear_basis()
+    extra = [basis[good, j] * weight for j, n in enumerate(lin_names) if free.get(n, False)]
+    for s_i, s in enumerate(model.species):
+        member = (model.species_of_line == s_i) & (model.group_of_line == "")
+        if member.any() and free.get(f"log_n {s}", False):
+            c = column(member, d_ln_n)
+            if c is not None:
+                extra.append(c)
+    out = np.array(g_cov, dtype=float, copy=True)
+    if not usable.any():
+        out[np.diag_indices(len(GROUPS))] = np.inf
+        return out
+    design = np.column_stack([c for c in cols if c is not None] + extra)
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        inv = np.linalg.pinv(design.T @ design, hermitian=True)
+    k_used = np.flatnonzero(usable)
+    lin = np.full((len(GROUPS), len(GROUPS)), 0.0)
+    lin[np.ix_(k_used, k_used)] = noise_scale2 * inv[:k_used.size, :k_used.size]
+    var_lin = np.where(usable, np.diag(lin), np.inf)
+    if not np.all(np.isfinite(lin)) or np.any(var_lin[usable] <= 0):
+        # degenerate: keep the old per-group rule (the larger variance, no new correlation)
+        out[np.diag_indices(len(GROUPS))] = np.maximum(np.diag(out), var_lin)
+        return out
+    sd_lin = np.sqrt(np.where(usable, var_lin, 1.0))
+    corr = lin / np.outer(sd_lin, sd_lin)
+    corr[~usable, :] = 0.0
+    corr[:, ~usable] = 0.0
+    corr[np.diag_indices(len(GROUPS))] = 1.0
+    sd = np.sqrt(np.maximum(np.clip(np.diag(out), 0.0, None), var_lin))
+    with np.errstate(invalid="ignore"):
+        res = corr * np.outer(sd, sd)
+    res[np.diag_indices(len(GROUPS))] = sd ** 2
+    res = np.where(np.isnan(res), 0.0, res)  # 0 x inf off the diagonal: no correlation
+    return res
+
+
 def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
             n_bins: int, config: dict, column_known: bool,
             bootstrap_draws: int = 0) -> PlasmaFit:
@@ -1398,27 +1481,23 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
     p_metal = model.profiles()[0]
     coverage = {}
     factor_lines = model.response_factor(model.metal.wavelength_nm)
-    thin1, _ = model._unit_lines(t_main=10.0 ** model.value("log_t"),
-                                 t_hot=10.0 ** model.value("log_t_hot"))
     g_cov = g_cov.copy()
     group_q = q[n_metal + n_air:]
+    at_bound = np.zeros(len(GROUPS), bool)
     for k, g in enumerate(GROUPS):
         e_g = np.where(model.metal.group == g, energy, 0.0)
         # what the bins see carries the response factor: compare with the same
         total = float(np.sum(e_g * factor_lines))
         seen = float(np.sum((p_metal @ e_g)[problem.good] * model.bw[problem.good]))
         coverage[g] = seen / total if total > 0 else float("nan")
-        if not group_q[k] > 1e-3 * max(float(np.max(np.abs(group_q))), 1e-300):
-            # A group fitted to (almost) nothing sits at its bound, where the covariance gives
-            # it no error; the data bound it by the error of a free amplitude of its own line
-            # profile (thin LTE ratios) on the usable bins: infinite where they are masked.
-            w = np.where((model.group_of_line == g), thin1, 0.0)
-            seen_w = float(np.sum(w * factor_lines))
-            info = 0.0  # no group line in the fitted range: not measured at all
-            if seen_w > 0:
-                unit = np.asarray(p_metal @ (w / seen_w), dtype=float)[problem.good]
-                info = float(np.sum((unit * problem.weight) ** 2))
-            g_cov[k, k] = max(g_cov[k, k], (max(1.0, chi2_red) / info) if info > 0 else np.inf)
+        at_bound[k] = not group_q[k] > 1e-3 * max(float(np.max(np.abs(group_q))), 1e-300)
+    if at_bound.any():
+        # A group fitted to (almost) nothing sits at its bound, where neither the covariance
+        # nor a bootstrap from the solution gives it an error (its log column density has no
+        # leverage there, so no refit leaves the bound); the data bound it by the error of a
+        # free amplitude of its own lines, marginalised over the amplitudes it trades with
+        g_cov = _bound_group_covariance(model, problem, result.x, g_cov, at_bound,
+                                        noise_scale2=max(1.0, chi2_red))
     # lines in increasing wavelength: metal then air, sorted
     order = np.argsort(np.concatenate([model.metal.wavelength_nm, model.air.wavelength_nm]),
                        kind="stable")

@@ -357,3 +357,38 @@ def test_aperture_angle_from_light_only_where_the_station_aperture_misses():
     assert "saturation_recovered" in fs.flags
     assert pipeline.aperture_from_light(stack, bg, track, station_solution(r.geometry), fs, camera=cam,
                                         order=1) is None
+
+
+def test_unsaturated_frames_summed_on_the_bins_every_frame_records(monkeypatch):
+    # The subset (frames 1 and 8) is summed without the light-curve scaling of
+    # FrameSpectra.whole_flight: where both record a bin the sum is the plain sum of the two
+    # (an identity: scaling by a share of 1), a bin masked in one of them is left out rather
+    # than scaled up by the other's share, and so the sum does not depend on the frame weights.
+    spectra, _ = _fireball_frames()
+    wl = spectra.wavelength_nm
+    lost = (wl > 400.0) & (wl < 410.0)  # no group line within one FWHM of 400-410 nm
+    mask = spectra.mask.copy()
+    mask[1] |= lost
+    spectra = dataclasses.replace(spectra, mask=mask, flux=np.where(mask, np.nan, spectra.flux))
+    fwhm = np.full(wl.size, FWHM_NM)
+    assert pipeline.unsaturated_frames(spectra, fwhm).tolist() == [1, 8]
+    seen = []
+
+    def record(spectrum, **_):
+        seen.append(spectrum)
+        return plasma.PlasmaFit.failed("recorded only", spectrum.wavelength_nm.size)
+
+    monkeypatch.setattr(pipeline, "fit_plasma", record)
+    heavier = spectra.frame_weight.copy()
+    heavier[1] *= 2.0
+    for weights in (spectra.frame_weight, heavier):
+        assert pipeline.fit_unsaturated_frames(dataclasses.replace(spectra, frame_weight=weights),
+                                               fwhm_nm=fwhm, speed_km_s=20.0) is None
+    first, second = seen
+    assert np.array_equal(first.mask, lost)
+    keep = ~lost
+    assert_allclose(first.flux[keep], spectra.flux[1, keep] + spectra.flux[8, keep], rtol=1e-12)
+    assert_allclose(first.flux_err[keep], np.sqrt(spectra.variance[1, keep] + spectra.variance[8, keep]),
+                    rtol=1e-12)
+    assert np.array_equal(second.mask, first.mask)
+    assert_allclose(second.flux[keep], first.flux[keep], rtol=1e-12)

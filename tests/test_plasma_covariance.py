@@ -16,7 +16,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 from meteorspec import atomic, plasma
-from test_plasma import _meteor  # the independent fine-grid render
+from test_plasma import _meteor, _render  # the independent fine-grid render
 
 
 @pytest.fixture(scope="module")
@@ -80,3 +80,48 @@ def test_group_errors_survive_a_component_turned_off(line_list):
     assert all(np.isfinite(off160.group_intensity_err[g]) for g in plasma.GROUPS)
     # the hot temperature is not measured at all: an overflowing error, not a made-up one
     assert not off160.hot_temperature_err_k < 1e100
+
+
+def test_group_at_its_bound_has_the_marginal_error_of_its_blend(line_list):
+    # A group fitted to nothing (Fe I column at its lower bound) at a coarse dispersion (30 nm
+    # FWHM), where its lines blend with Mg I b and Na I D. At fixed temperature and positions the
+    # model is linear in the groups' amplitudes, those of the other Na I and Mg I lines and the
+    # free continuum coefficients (components at their bound stay off), so the error
+    # of the group at its bound is the marginal one of a linear least-squares fit,
+    # [(A^T W A)^-1]_kk (Press et al., *Numerical Recipes*, sec. 15.4, from memory), against
+    # numpy's inverse of A rendered here (thin LTE line ratios, NIST data; Legendre continuum
+    # from numpy). It exceeds the conditional 1 / (A^T W A)_kk, all that the group's own profile
+    # with the rest held fixed would give, where the templates overlap.
+    fwhm, step, lo, hi = 30.0, 4.0, 440.0, 680.0
+    wl = np.arange(lo, hi, step) + step / 2
+    bw = np.full(wl.size, step)
+    index, component = plasma.select_model_lines(line_list, lo - 10, hi + 10)
+    model = plasma._Model(wl, bw, plasma._fwhm_function(fwhm, wl), line_list.select(index), component,
+                          self_absorption=False, continuum_degree=2, group_freedom_dex=0.3,
+                          response_degree=0)
+    for s in model.species:  # everything but Na I and Mg I turned off: Fe I at its bound
+        if s not in ("Na I", "Mg I"):
+            model.params[f"log_n {s}"].value = model.params[f"log_n {s}"].lo
+    err = np.full(wl.size, 0.5)
+    problem = plasma._Problem(model, np.zeros(wl.size), err, np.ones(wl.size, bool))
+    got = plasma._bound_group_covariance(model, problem, model.vector(), np.zeros((3, 3)),
+                                         np.array([False, False, True]), noise_scale2=1.0)
+    main = line_list.select(index[component == "main"])
+    t_k = 10.0 ** model.value("log_t")
+    cols = []
+    for g in plasma.GROUPS:  # each group's lines at unit energy
+        sel = main.select(main.group == g)
+        e = atomic.line_energy_rate(sel, t_k, {s: 1e10 for s in set(sel.species.tolist())})
+        cols.append(_render(wl, bw, sel.wavelength_nm, e / e.sum(), fwhm))
+    for s in ("Mg I", "Na I"):  # their lines outside the groups: free with the species' column
+        sel = main.select((main.species == s) & ~np.isin(main.group, plasma.GROUPS))
+        if len(sel):
+            cols.append(_render(wl, bw, sel.wavelength_nm, atomic.line_energy_rate(sel, t_k, {s: 1e10}), fwhm))
+    x = 2.0 * (wl - wl[0]) / (wl[-1] - wl[0]) - 1.0
+    cols += [np.polynomial.legendre.legval(x, [0, 1]), np.polynomial.legendre.legval(x, [0, 0, 1])]
+    a = np.column_stack(cols) / err[:, None]
+    info = a.T @ a
+    expected = np.linalg.inv(info)[:3, :3]
+    # the fine-grid render matches exact bin integrals to < 1e-5 (step 0.004 nm, sigma 13 nm)
+    assert_allclose(got, expected, rtol=1e-3, atol=1e-3 * float(np.sqrt(expected[2, 2] * expected[1, 1])))
+    assert got[2, 2] > 1.5 / info[2, 2]  # the blend: more than the conditional error

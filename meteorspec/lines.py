@@ -27,7 +27,7 @@ from .atomic import LineList
 from .plasma import (PlasmaFit, _default_lines, _fwhm_function, _spectrum_arrays,
                      select_model_lines)
 
-__all__ = ["LineTable", "PeakTable", "find_peaks", "identify_lines", "instrument_fwhm_nm"]
+__all__ = ["LineTable", "PeakTable", "find_peaks", "identify_lines", "instrument_fwhm_nm", "line_streak_px"]
 
 STATUSES = ("identified", "blend", "unidentified")
 _SIGMA_PER_FWHM = 1.0 / (2.0 * math.sqrt(2.0 * math.log(2.0)))
@@ -192,6 +192,33 @@ def instrument_fwhm_nm(geometry, x0_px: ArrayLike, y0_px: ArrayLike, wavelength_
         raise ValueError("streak_px must be finite and >= 0")
     disp = geometry.dispersion_nm_per_px(x0_px, y0_px, wavelength_nm, order)
     return np.hypot(psf, _STREAK_FWHM_PER_PX * streak) * disp
+
+
+def line_streak_px(geometry, x0_px: float, y0_px: float, vx_px_s: ArrayLike, vy_px_s: ArrayLike,
+                   exposure_s: float, wavelength_nm: ArrayLike, *, order: int = 1) -> NDArray[np.float64]:
+    """Length (px) along the dispersion of each wavelength's image streak in one exposure.
+
+    The zeroth order at ``(x0_px, y0_px)`` moves by ``v * exposure_s`` (one velocity per frame);
+    the first-order image of each wavelength moves from its pixel at the start to its pixel at
+    the end of that step, projected on the dispersion direction there. Median over the frames;
+    NaN where a wavelength's image falls outside the lens field. The pipeline's
+    (:func:`meteorspec.pipeline._instrument_fwhm`) and the review's line widths use it.
+    """
+    wl = np.asarray(wavelength_nm, dtype=float)
+    half_x = 0.5 * np.asarray(vx_px_s, dtype=float)[:, None] * exposure_s
+    half_y = 0.5 * np.asarray(vy_px_s, dtype=float)[:, None] * exposure_s
+    if half_x.size == 0 or not np.isfinite(exposure_s):
+        return np.full(wl.shape, np.nan)
+    xa, ya = geometry.spectrum_pixel(x0_px - half_x, y0_px - half_y, wl[None, :], order)
+    xb, yb = geometry.spectrum_pixel(x0_px + half_x, y0_px + half_y, wl[None, :], order)
+    dx, dy = geometry.direction(x0_px, y0_px, wl, order)
+    with np.errstate(invalid="ignore"):
+        along = np.abs((xb - xa) * dx[None, :] + (yb - ya) * dy[None, :])
+    out = np.full(wl.shape, np.nan)
+    seen = np.isfinite(along).any(axis=0)
+    if seen.any():
+        out[seen] = np.nanmedian(along[:, seen], axis=0)
+    return out
 
 
 # --------------------------------------------------------------------------------------------

@@ -25,7 +25,7 @@ from .config import Camera, Event, Station, find_station_file, load_event, load_
 from .errors import InputError
 from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
 from .extract import FrameSpectra, Spectrum, extract_spectra
-from .lines import identify_lines, instrument_fwhm_nm
+from .lines import identify_lines, instrument_fwhm_nm, line_streak_px
 from .optics import SpectralGeometry
 from .plasma import PlasmaFit, effective_response, fit_plasma, fit_plasma_per_frame, group_templates
 from .result import STAGES, EventResult, FrameTimes, InputRecord
@@ -749,39 +749,12 @@ def _instrument_fwhm(geometry: SpectralGeometry, track: Track, wavelength_nm: np
         j = int(ok[np.argmin(np.abs(wl[ok] - 550.0))]) if ok.size else -1
         dx, dy = (dx_all[j], dy_all[j]) if ok.size else (0.0, 0.0)  # none: the PSF alone
     streak_px = float(np.nanmedian(np.abs(vx * dx + vy * dy))) * track.exposure_s
-    line_streak_px = _line_streak_px(geometry, x0, y0, vx, vy, track.exposure_s, wl, order=order)
-    streak_px = np.where(np.isfinite(line_streak_px), line_streak_px,
+    line_streak = line_streak_px(geometry, x0, y0, vx, vy, track.exposure_s, wl, order=order)
+    streak_px = np.where(np.isfinite(line_streak), line_streak,
                          streak_px if np.isfinite(streak_px) else 0.0)
     psf_sigma_px = track.psf_sigma_px if np.isfinite(track.psf_sigma_px) else 1.3
     return instrument_fwhm_nm(geometry, x0, y0, wavelength_nm, psf_fwhm_px=2.3548 * psf_sigma_px,
                               streak_px=streak_px, order=order)
-
-
-def _line_streak_px(geometry: SpectralGeometry, x0_px: float, y0_px: float, vx_px_s: np.ndarray,
-                    vy_px_s: np.ndarray, exposure_s: float, wavelength_nm: np.ndarray, *,
-                    order: int) -> np.ndarray:
-    """Length (px) along the dispersion of each wavelength's image streak in one exposure.
-
-    The zeroth order at ``(x0_px, y0_px)`` moves by ``v * exposure_s`` (one velocity per frame);
-    the first-order image of each wavelength moves from its pixel at the start to its pixel at
-    the end of that step, projected on the dispersion direction there. Median over the frames;
-    NaN where a wavelength's image falls outside the lens field.
-    """
-    wl = np.asarray(wavelength_nm, dtype=float)
-    half_x = 0.5 * np.asarray(vx_px_s, dtype=float)[:, None] * exposure_s
-    half_y = 0.5 * np.asarray(vy_px_s, dtype=float)[:, None] * exposure_s
-    if half_x.size == 0 or not np.isfinite(exposure_s):
-        return np.full(wl.shape, np.nan)
-    xa, ya = geometry.spectrum_pixel(x0_px - half_x, y0_px - half_y, wl[None, :], order)
-    xb, yb = geometry.spectrum_pixel(x0_px + half_x, y0_px + half_y, wl[None, :], order)
-    dx, dy = geometry.direction(x0_px, y0_px, wl, order)
-    with np.errstate(invalid="ignore"):
-        along = np.abs((xb - xa) * dx[None, :] + (yb - ya) * dy[None, :])
-    out = np.full(wl.shape, np.nan)
-    seen = np.isfinite(along).any(axis=0)
-    if seen.any():
-        out[seen] = np.nanmedian(along[:, seen], axis=0)
-    return out
 
 
 def calibration_part(solution: WavelengthSolution) -> dict[str, object]:

@@ -316,6 +316,14 @@ def test_instrument_fwhm_streak_of_each_line_image_off_axis_on_a_rectilinear_len
     # the zeroth order's own 6 px would have given lines 1.4-3.4x too narrow here
     zeroth = np.hypot(2.3548, math.sqrt(8 * math.log(2) / 12) * 6.0) * disp
     assert np.all(fwhm > 1.3 * zeroth)
+    # the review's width for a file without a stored one (/calibration and /track) follows the
+    # same line images
+    from meteorspec.review.rework import _fwhm_from_geometry
+    ev = {"groups": {"calibration": {"attrs": {"projection": "rectilinear", "focal_px": f, "cx": cx, "cy": 240.0,
+                                               "grooves_per_mm": n_mm, "dispersion_angle_deg": 0.0}},
+                     "track": {"datasets": {"x": track.x_px, "y": track.y_px, "time_s": track.time_s},
+                               "attrs": {"exposure_s": 0.04, "psf_sigma_px": 1.0}}}}
+    assert_allclose(_fwhm_from_geometry(ev, lam), expected, rtol=1e-4)
 
 
 def test_aperture_angle_from_light_only_where_the_station_aperture_misses():

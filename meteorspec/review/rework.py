@@ -379,8 +379,9 @@ def estimate_frame_weight(per_frame: np.ndarray, mask: np.ndarray, *, lit: np.nd
 
 
 def _fwhm_from_geometry(ev: Mapping[str, Any], wl: np.ndarray) -> np.ndarray | None:
-    """Instrument FWHM from ``/calibration`` and ``/track`` (the pipeline's recipe, simplified)."""
-    from ..lines import instrument_fwhm_nm
+    """Instrument FWHM from ``/calibration`` and ``/track`` (the pipeline's recipe, simplified:
+    every finite track point, not the luminous ones only; each line image's own streak)."""
+    from ..lines import instrument_fwhm_nm, line_streak_px
     from ..optics import SpectralGeometry
 
     cal, track = ev["groups"].get("calibration"), ev["groups"].get("track")
@@ -400,11 +401,14 @@ def _fwhm_from_geometry(ev: Mapping[str, Any], wl: np.ndarray) -> np.ndarray | N
     dx, dy = geo.direction(x0, y0, 550.0, 1)
     exposure = float(track["attrs"].get("exposure_s", np.nan))
     streak = float(np.nanmedian(np.abs(vx * dx + vy * dy))) * exposure if np.isfinite(exposure) else 0.0
+    streak = streak if np.isfinite(streak) else 0.0
+    line = line_streak_px(geo, x0, y0, vx, vy, exposure, wl, order=1)
+    streak = np.where(np.isfinite(line), line, streak)  # the zeroth order's where an image leaves the field
     sigma = float(track["attrs"].get("psf_sigma_px", np.nan))
     sigma = sigma if np.isfinite(sigma) and sigma > 0 else 1.3
     try:
         fwhm = instrument_fwhm_nm(geo, x0, y0, wl, psf_fwhm_px=2.3548 * sigma,
-                                  streak_px=streak if np.isfinite(streak) else 0.0)
+                                  streak_px=streak)
     except ValueError:
         return None
     return fwhm if np.all(np.isfinite(fwhm) & (fwhm > 0)) else None

@@ -565,6 +565,17 @@ def test_isolated_misfit_allows_measurement_errors_but_not_a_wrong_match():
     assert _isolated_misfit(fit, m, 0.75)[1] > 1.0
 
 
+def _wide_scene_station_off():
+    """test_calibrate_event_from_wrong_station_values' first scene: frames, track, and the station
+    geometry 3 % / 4 deg / 2 deg off the rendered one (WIDE)."""
+    n = 12
+    frames, track = _render_event(WIDE, np.linspace(60.0, 220.0, n), np.linspace(300.0, 200.0, n))
+    g = WIDE.grating
+    station = WIDE.with_grating(grooves_per_mm=g.grooves_per_mm * 1.03,
+                                dispersion_angle_deg=g.dispersion_angle_deg + 4.0, tilt_deg=g.tilt_deg + 2.0)
+    return frames, track, station
+
+
 def test_a_fit_whose_features_are_lost_in_a_later_round_is_refused(monkeypatch):
     # The feature loop re-measures along each round's fitted curve with a narrower search (+-4,
     # +-2, +-1.2 nm). A round that no longer finds enough isolated features along that curve is
@@ -576,11 +587,7 @@ def test_a_fit_whose_features_are_lost_in_a_later_round_is_refused(monkeypatch):
     # round on the isolated features are taken out of what measure_lines returns (the blend
     # windows stay) on the first scene of test_calibrate_event_from_wrong_station_values, which
     # refines from the event when left alone.
-    n = 12
-    frames, track = _render_event(WIDE, np.linspace(60.0, 220.0, n), np.linspace(300.0, 200.0, n))
-    g = WIDE.grating
-    station = WIDE.with_grating(grooves_per_mm=g.grooves_per_mm * 1.03,
-                                dispersion_angle_deg=g.dispersion_angle_deg + 4.0, tilt_deg=g.tilt_deg + 2.0)
+    frames, track, station = _wide_scene_station_off()
     real = cal.measure_lines
     rounds: list[tuple[int, int]] = []  # (isolated features measured, returned) per call
 
@@ -615,11 +622,8 @@ def test_a_windows_anchored_fit_is_kept_where_a_later_round_finds_its_windows_ag
     # test_calibrate_event_from_wrong_station_values' first (station 3 % / 4 deg / 2 deg off), with
     # Na D the only isolated feature in every round; the truth is the geometry it was rendered with
     # (forward model), and the 0.3 % / 0.3 deg tolerances are the calibration's stated targets.
-    n = 12
-    frames, track = _render_event(WIDE, np.linspace(60.0, 220.0, n), np.linspace(300.0, 200.0, n))
+    frames, track, station = _wide_scene_station_off()
     g = WIDE.grating
-    station = WIDE.with_grating(grooves_per_mm=g.grooves_per_mm * 1.03,
-                                dispersion_angle_deg=g.dispersion_angle_deg + 4.0, tilt_deg=g.tilt_deg + 2.0)
     real = cal.measure_lines
 
     def measure(*args, **kw):

@@ -300,7 +300,7 @@ def test_response_tilt_moves_neither_temperature_nor_observed_groups(line_list):
 
 
 def test_short_multi_starts_pick_the_fully_converged_best(bright_fit, monkeypatch):
-    # The multi-start runs each start only briefly before polishing the best one. Running
+    # The multi-start runs each start only briefly before polishing the best few. Running
     # every start to convergence instead (the slow, thorough reference; 100 evaluations,
     # where the starts that converge here need 35-65 and one stays trapped in a worse local
     # minimum, which is why there are several starts) must reach the same minimum: same
@@ -351,8 +351,11 @@ def test_temperature_prior_bounds_a_loose_coarse_temperature(line_list):
     flux = _render(wl, bw, metal.wavelength_nm, energy, fwhm, step_nm=0.05)
     spec, truth = _noisy_spectrum_and_truth(wl, bw, flux, metal, energy, seed=2)
     # the temperature error is under test, not the group errors: no group-error bootstrap
-    free = plasma.fit_plasma(spec, fwhm_nm=fwhm, temperature_prior_k=None, bootstrap_draws=0)
-    fit = plasma.fit_plasma(spec, fwhm_nm=fwhm, bootstrap_draws=0)
+    # (no prior on the response factor either: it would fix T through the tilt, see
+    # test_response_prior_pins_the_factor_like_no_factor)
+    free = plasma.fit_plasma(spec, fwhm_nm=fwhm, temperature_prior_k=None, response_prior_sigma=None,
+                             bootstrap_draws=0)
+    fit = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_prior_sigma=None, bootstrap_draws=0)
     assert free and fit
     s_d = free.temperature_err_k / free.temperature_k / math.sqrt(max(1.0, free.chi2_reduced))
     assert s_d > 0.3  # loose: more than +-30 % in T
@@ -361,6 +364,33 @@ def test_temperature_prior_bounds_a_loose_coarse_temperature(line_list):
     assert fit.temperature_err_k / fit.temperature_k == pytest.approx(s_post, rel=0.05)
     assert np.abs(_composition(fit) - truth).max() < 0.01
     assert abs(fit.temperature_k - 4600.0) < 2.0 * fit.temperature_err_k
+
+
+def test_response_prior_pins_the_factor_like_no_factor(line_list):
+    # The response prior enters as data (a Gaussian residual per coefficient, centre 0): a
+    # vanishing width pins the factor to 1, which is the fit without a factor
+    # (response_degree=0); same minimum to the optimiser's tolerance (T is loose here, ~400 K:
+    # the optimisers stop a few K apart). The coarse scene is
+    # where the factor trades against the temperature (test above), so a prior wired to the
+    # wrong parameter or centre shows there.
+    fwhm, _, wl, bw, _, _, metal, energy = _coarse_scene(line_list)
+    flux = _render(wl, bw, metal.wavelength_nm, energy, fwhm, step_nm=0.05)
+    spec, _ = _noisy_spectrum_and_truth(wl, bw, flux, metal, energy, seed=2)
+    pinned = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_prior_sigma=1e-7, bootstrap_draws=0)
+    rigid = plasma.fit_plasma(spec, fwhm_nm=fwhm, response_degree=0, bootstrap_draws=0)
+    assert pinned and rigid
+    assert max(abs(pinned.parameters[f"response_{k}"]) for k in (1, 2)) < 1e-5
+    assert abs(pinned.temperature_k - rigid.temperature_k) < 0.02 * rigid.temperature_err_k
+    assert_allclose(_composition(pinned), _composition(rigid), atol=1e-3)  # ~1e-4 per K of T
+
+
+@pytest.mark.parametrize("sigma", [0.0, -0.1, np.nan])
+def test_response_prior_validation(sigma):
+    wl = np.arange(400.0, 500.0)
+    spec = SimpleNamespace(wavelength_nm=wl, bin_width_nm=1.0, flux=np.ones(wl.size),
+                           flux_err=np.ones(wl.size), mask=np.zeros(wl.size, bool))
+    with pytest.raises(ValueError, match="response_prior_sigma"):
+        plasma.fit_plasma(spec, fwhm_nm=2.0, response_prior_sigma=sigma)
 
 
 @pytest.mark.parametrize("prior", [(4500.0, 0.0), (-1.0, 500.0), (np.nan, 500.0)])

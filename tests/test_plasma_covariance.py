@@ -55,6 +55,8 @@ def _finish_at(fit, spec, line_list, **change_dex):
         model.params[name].value = value + change_dex.get(name, 0.0)
     t0, sd = cfg["temperature_prior_k"]
     prior = model.group_prior | {"log_t": (math.log10(t0), sd / (t0 * math.log(10.0)))}
+    prior |= {f"response_{k}": (0.0, cfg["response_prior_sigma"])
+              for k in range(1, cfg["response_degree"] + 1)}
     problem = plasma._Problem(model, flux, err, good, prior=prior)
     metal = cfg["component"] != "air"
     line_index = np.concatenate([cfg["line_index"][metal], cfg["line_index"][~metal]])

@@ -615,6 +615,16 @@ def test_saturated_brightest_frames_recovered_from_light_curve_without_zeroth_fl
     assert_allclose(got, light.sum() * (6000.0 + cont_in), rtol=0.01)
 
 
+def _rank1_scene(rng, n_frames: int, n_bins: int, *, peak: float, spread: float, width_nm: float):
+    """Noise-free rank-1 frame spectra ``E = w T`` (Gaussian light curve ``w``, random spectrum
+    ``T``) as densities over bins of ``width_nm``, with unit variances: (w, flux, variance, widths)."""
+    w_true = np.exp(-0.5 * ((np.arange(n_frames) - peak) / spread) ** 2)
+    t_true = 1.0 + rng.random(n_bins) * 5.0
+    widths = np.full(n_bins, width_nm)
+    flux = w_true[:, None] * t_true[None, :] / widths
+    return w_true, flux, np.full((n_frames, n_bins), 1.0), widths
+
+
 def test_frame_weights_from_the_spectra_recover_a_light_curve_with_masked_bins():
     """Rank-1 data ``E = w T`` with bins masked at random (saturation, sensor edge):
 
@@ -624,12 +634,8 @@ def test_frame_weights_from_the_spectra_recover_a_light_curve_with_masked_bins()
     from meteorspec.extract import _spectral_weights
 
     rng = np.random.default_rng(8)
-    n, m = 12, 300
-    w_true = np.exp(-0.5 * ((np.arange(n) - 6.0) / 2.5) ** 2)
-    t_true = 1.0 + rng.random(m) * 5.0
-    widths = np.full(m, 0.4)
-    flux = w_true[:, None] * t_true[None, :] / widths
-    variance = np.full((n, m), 1.0)
+    w_true, flux, variance, widths = _rank1_scene(rng, 12, 300, peak=6.0, spread=2.5, width_nm=0.4)
+    n, m = flux.shape
     mask = rng.random((n, m)) < 0.4
     mask[5:8, 100:200] = True  # the brightest frames lose a block of bins, as a saturated line does
     weight = np.where(np.arange(n) == 2, w_true[2] * 7.0, 1.0)  # scale from frame 2, others a guess
@@ -649,12 +655,8 @@ def test_frame_weights_of_saturated_frames_anchored_by_faint_measured_frames():
     from meteorspec.extract import _spectral_weights
 
     rng = np.random.default_rng(35)
-    n, m = 16, 120
-    w_true = np.exp(-0.5 * ((np.arange(n) - 7.5) / 3.0) ** 2)
-    t_true = 1.0 + rng.random(m) * 5.0
-    widths = np.full(m, 4.3)
-    flux = w_true[:, None] * t_true[None, :] / widths
-    variance = np.full((n, m), 1.0)
+    w_true, flux, variance, widths = _rank1_scene(rng, 16, 120, peak=7.5, spread=3.0, width_nm=4.3)
+    n, m = flux.shape
     mask = np.zeros((n, m), bool)
     for k in range(2, n - 2):  # the brighter the frame, the more bins saturate
         keep = max(8, int(m * (1.0 - w_true[k])))

@@ -384,22 +384,16 @@ def test_response_prior_pins_the_factor_like_no_factor(line_list):
     assert_allclose(_composition(pinned), _composition(rigid), atol=1e-3)  # ~1e-4 per K of T
 
 
-@pytest.mark.parametrize("sigma", [0.0, -0.1, np.nan])
-def test_response_prior_validation(sigma):
+@pytest.mark.parametrize("option, prior", [
+    ("temperature_prior_k", (4500.0, 0.0)), ("temperature_prior_k", (-1.0, 500.0)),
+    ("temperature_prior_k", (np.nan, 500.0)), ("response_prior_sigma", 0.0),
+    ("response_prior_sigma", -0.1), ("response_prior_sigma", np.nan)])
+def test_prior_validation(option, prior):
     wl = np.arange(400.0, 500.0)
     spec = SimpleNamespace(wavelength_nm=wl, bin_width_nm=1.0, flux=np.ones(wl.size),
                            flux_err=np.ones(wl.size), mask=np.zeros(wl.size, bool))
-    with pytest.raises(ValueError, match="response_prior_sigma"):
-        plasma.fit_plasma(spec, fwhm_nm=2.0, response_prior_sigma=sigma)
-
-
-@pytest.mark.parametrize("prior", [(4500.0, 0.0), (-1.0, 500.0), (np.nan, 500.0)])
-def test_temperature_prior_validation(prior):
-    wl = np.arange(400.0, 500.0)
-    spec = SimpleNamespace(wavelength_nm=wl, bin_width_nm=1.0, flux=np.ones(wl.size),
-                           flux_err=np.ones(wl.size), mask=np.zeros(wl.size, bool))
-    with pytest.raises(ValueError, match="temperature_prior_k"):
-        plasma.fit_plasma(spec, fwhm_nm=2.0, temperature_prior_k=prior)
+    with pytest.raises(ValueError, match=option):
+        plasma.fit_plasma(spec, fwhm_nm=2.0, **{option: prior})
 
 
 def test_analytic_position_derivatives_match_finite_differences(line_list):

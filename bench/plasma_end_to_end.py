@@ -379,7 +379,8 @@ def main(argv=None) -> int:
     else:
         rows = run_samples(args) if args.samples else run_random(args)
     for mode, mode_rows in rows.items():
-        summarise(mode_rows, f"{mode} (seed {args.seed})" if not args.samples else mode)
+        seed = mode_rows[0].get("seed", args.seed) if mode_rows else args.seed  # a summarised file's own
+        summarise(mode_rows, f"{mode} (seed {seed})" if not args.samples else mode)
     return 0
 
 

@@ -136,7 +136,8 @@ def measure(result, truth: dict, *, snr: float) -> dict:
     speed = float(truth["speed_km_s"])
     out = {"event": result.event_id, "status": result.status, "flags": list(result.flags),
            "truth": comp_true.tolist(), "speed_km_s": speed, "snr": snr,
-           "class_true": str(classify_points(e_true, speed))}
+           "class_true": str(classify_points(e_true, speed)),
+           "first_order_on_sensor": on_sensor_share(truth)}
     comp = _attrs(result, "composition")
     plasma = result.parts.get("plasma", {})
     if "na" in comp:
@@ -170,8 +171,18 @@ def measure(result, truth: dict, *, snr: float) -> dict:
             out["fwhm_517_nm"] = float(np.interp(517.3, wl, fw))
     else:
         out |= {"fit": None, "err": [1.0, 1.0, 1.0], "class_fit": None,
-                "reason": str(_attrs(result, "plasma").get("reason", result.error))}
+                "reason": str(_attrs(result, "plasma").get("reason") or result.error
+                              or _attrs(result, "track").get("reason", ""))}
     return out
+
+
+def on_sensor_share(truth: dict) -> float:
+    """Share of the flight's first-order light that the simulator put on the sensor (truth
+    ``frames.first_order_on_sensor`` weighted by ``frames.energy_fraction``)."""
+    frames = truth["frames"]
+    w = np.asarray(frames["energy_fraction"], float)
+    on = np.asarray([math.nan if v is None else v for v in frames["first_order_on_sensor"]], float)
+    return float(np.nansum(w * on) / w.sum()) if w.sum() > 0 else math.nan
 
 
 def subframe_peak_s(time_s: np.ndarray, energy: np.ndarray) -> float:
@@ -202,6 +213,10 @@ def summarise(rows: list[dict], label: str) -> None:
         return
     e = np.array([r["err"] for r in rows])
     print(f"\n== {label}: {len(rows)} events, {sum(r['fit'] is None for r in rows)} without composition")
+    for r in rows:
+        if r["fit"] is None:
+            print(f"    {r['event']}: {r['status']}, first order on the sensor "
+                  f"{100.0 * r.get('first_order_on_sensor', math.nan):.0f} % of the light; {r.get('reason') or '-'}")
     for j, g in enumerate(GROUPS):
         print(f"  |{g} - truth|: median {np.median(e[:, j]):.4f}  95th {np.percentile(e[:, j], 95):.4f}"
               f"  max {e[:, j].max():.4f}")

@@ -326,6 +326,29 @@ def test_random_specs_are_seeded_and_varied():
     assert len({s.station_id for s in a}) == 10
 
 
+def test_random_edge_events_move_into_the_field_with_their_spectrum_on_the_sensor():
+    """Every random event starts with its first order up to 800 nm on the sensor, and one
+    placed at the left, top or bottom margin (6 % of the sensor) moves into the field (a start
+    at the right margin, the side the gratings disperse towards, is moved back by the spectrum's
+    length, so it is no longer at the margin)."""
+    n_edge = 0
+    for seed in (4, 6):
+        for spec in random_specs(36, seed=seed):
+            st = spec.true_station()
+            w, h = st.camera.width, st.camera.height
+            x, y = spec.start_px
+            xr, yr = SpectralGeometry.from_station(st).spectrum_pixel(x, y, 800.0)
+            assert 0.0 <= xr <= w and 0.0 <= yr <= h, (spec.station_id, xr, yr)
+            side = [abs(x - 0.06 * w) < 1e-6, abs(y - 0.06 * h) < 1e-6, abs(y - 0.94 * h) < 1e-6]
+            if not any(side):
+                continue
+            n_edge += 1
+            inward = np.array([1.0, 0.0]) if side[0] else np.array([0.0, 1.0 if side[1] else -1.0])
+            a = math.radians(spec.direction_deg)
+            assert np.dot([math.cos(a), math.sin(a)], inward) >= math.cos(math.radians(60.0)) - 1e-9
+    assert n_edge >= 4  # seeds 4 and 6 hold 13 edge placements, most at these margins
+
+
 def test_a_random_event_renders_and_validates(tmp_path):
     spec = random_specs(3, seed=1)[2]
     spec = dataclasses.replace(spec, n_frames=5)

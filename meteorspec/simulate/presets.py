@@ -143,7 +143,7 @@ def random_specs(n: int, *, seed: int, perturb: bool = False) -> list[EventSpec]
     """A seeded, varied set of ``n`` event specs for tests and benchmarks.
 
     Cycles through all five lens projections (overriding the base lens),
-    and mixes: placements near the edge of the field, interlaced cameras,
+    and mixes: placements near the edge of the field (moving into it), interlaced cameras,
     saturated fireballs, faint events (strongest group line SNR ~10),
     compositions uniform over the whole ternary, speeds 11-72 km/s and video
     forms the camera can hold. With ``perturb`` the written grating values
@@ -171,12 +171,15 @@ def random_specs(n: int, *, seed: int, perturb: bool = False) -> list[EventSpec]
         fps = 25.0
         duration = float(rng.uniform(0.4, 1.2))
         n_frames = int(min(36, math.ceil((duration + 0.3) * fps)))
+        inward_deg = None
         if kind == "edge":
             margin = 0.06
             side = int(rng.integers(0, 4))
             along = float(rng.uniform(0.2, 0.8))
             sx = (margin * w, (1 - margin) * w, along * w, along * w)[side]
             sy = (along * h, along * h, margin * h, (1 - margin) * h)[side]
+            inward_deg = (0.0, 180.0, 90.0, -90.0)[side]
+            sx, sy = _spectrum_inside(st, sx, sy, margin)
         else:
             sx, sy = float(rng.uniform(0.15, 0.5) * w), float(rng.uniform(0.2, 0.8) * h)
         u = probe_geometry_ok(st, sx, sy)
@@ -197,7 +200,8 @@ def random_specs(n: int, *, seed: int, perturb: bool = False) -> list[EventSpec]
             start_utc=when.strftime("%Y-%m-%dT%H:%M:%S.") + f"{int(rng.integers(0, 1000)):03d}Z",
             video_form=form, fps=fps, n_frames=n_frames, meteor_start_s=float(rng.uniform(0.05, 0.2)),
             meteor_duration_s=duration, start_px=(float(sx), float(sy)),
-            direction_deg=float(rng.uniform(-180, 180)), speed_deg_s=float(rng.uniform(5.0, 30.0)),
+            direction_deg=_direction_deg(float(rng.uniform(-180, 180)), inward_deg),
+            speed_deg_s=float(rng.uniform(5.0, 30.0)),
             peak_energy_adu_s=1.0, peak_time_frac=float(rng.uniform(0.3, 0.8)),
             light_curve="flare" if kind == "fireball" else "classic",
             flare_amplitude=1.0 if kind == "fireball" else 0.0,
@@ -215,6 +219,42 @@ def random_specs(n: int, *, seed: int, perturb: bool = False) -> list[EventSpec]
         snr = {"faint": 10.0, "fireball": 3000.0}.get(kind, float(rng.uniform(40.0, 150.0)))
         specs.append(dataclasses.replace(spec, peak_energy_adu_s=peak_for_line_snr(spec, snr)))
     return specs
+
+
+def _direction_deg(draw_deg: float, inward_deg: float | None) -> float:
+    """Direction of motion from a uniform draw in [-180, 180) deg.
+
+    A meteor that starts at the edge of the field moves into it (within +-60 deg of the
+    inward normal): one that left at once would put almost none of its light, and often none
+    of its spectrum, on the sensor. The same draw is mapped, so the random stream and every
+    other event of a seed stay as they were.
+    """
+    if inward_deg is None:
+        return draw_deg
+    return (inward_deg + draw_deg * (60.0 / 180.0) + 180.0) % 360.0 - 180.0
+
+
+def _spectrum_inside(station, x_px: float, y_px: float, margin: float,
+                     red_nm: float = 800.0) -> tuple[float, float]:
+    """Shift an edge start so that the first order up to ``red_nm`` begins on the sensor.
+
+    An edge placement means the zeroth order or the red end of its spectrum at the margin;
+    where the spectrum would start beyond the sensor or the lens field (a start on the side
+    the grating disperses towards), the start moves back by the overhang.
+    """
+    geo = SpectralGeometry.from_station(station)
+    w, h = station.camera.width, station.camera.height
+    for _ in range(12):  # the overhang shrinks about linearly; a few passes settle it
+        xr, yr = (float(v) for v in geo.spectrum_pixel(x_px, y_px, red_nm))
+        if not (math.isfinite(xr) and math.isfinite(yr)):  # red end beyond the lens field
+            x_px, y_px = x_px + 0.2 * (station.lens.cx - x_px), y_px + 0.2 * (station.lens.cy - y_px)
+            continue
+        dx = min(xr - margin * w, 0.0) + max(xr - (1 - margin) * w, 0.0)
+        dy = min(yr - margin * h, 0.0) + max(yr - (1 - margin) * h, 0.0)
+        if abs(dx) < 0.5 and abs(dy) < 0.5:
+            break
+        x_px, y_px = x_px - dx, y_px - dy
+    return x_px, y_px
 
 
 def probe_geometry_ok(station, x_px: float, y_px: float) -> bool:

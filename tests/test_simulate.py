@@ -346,7 +346,9 @@ def test_random_edge_events_move_into_the_field_with_their_spectrum_on_the_senso
             inward = np.array([1.0, 0.0]) if side[0] else np.array([0.0, 1.0 if side[1] else -1.0])
             a = math.radians(spec.direction_deg)
             assert np.dot([math.cos(a), math.sin(a)], inward) >= math.cos(math.radians(60.0)) - 1e-9
-    assert n_edge >= 4  # seeds 4 and 6 hold 13 edge placements, most at these margins
+    # 4 edge starts of seeds 4 and 6 stay at these margins; the others moved back so that their
+    # spectrum starts on the sensor (and the 800 nm check above covers them)
+    assert n_edge >= 4
 
 
 def test_a_random_event_renders_and_validates(tmp_path):

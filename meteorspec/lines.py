@@ -413,16 +413,17 @@ def identify_lines(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
         index = plasma_fit.line_index
         # a line the fit left unconstrained (non-finite) cannot weigh a candidate
         strength = np.clip(np.nan_to_num(plasma_fit.line_intensity, nan=0.0, posinf=0.0), 0.0, None)
-        shift = plasma_fit.shift_nm if np.isfinite(plasma_fit.shift_nm) else 0.0
+        lab = line_list.wavelength_nm[index]
+        expected = plasma_fit.line_position_nm(lab)  # the fit's residual wavelength error
     else:
         index, strength = _predicted_strengths(line_list, wl[0] - margin, wl[-1] + margin,
                                                temperature_k)
-        shift = 0.0
-    lab = line_list.wavelength_nm[index]
+        lab = line_list.wavelength_nm[index]
+        expected = lab
     rows = []
     for pos, a, s, snr, width in zip(peaks.position_nm, peaks.intensity, peaks.intensity_err,
                                      peaks.snr, peaks.fwhm_nm):
-        offset = lab + shift - pos
+        offset = expected - pos
         near = np.abs(offset) <= window_fwhm * width
         weight = strength * np.exp(-4.0 * math.log(2.0) * (offset / width) ** 2) * near
         total = float(weight.sum())

@@ -27,7 +27,7 @@ from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
 from .extract import FrameSpectra, Spectrum, extract_spectra
 from .lines import identify_lines, instrument_fwhm_nm, line_streak_px
 from .optics import SpectralGeometry
-from .plasma import PlasmaFit, effective_response, fit_plasma, fit_plasma_per_frame, group_templates
+from .plasma import PlasmaFit, ScaleScan, effective_response, fit_plasma, fit_plasma_per_frame, group_templates
 from .result import STAGES, EventResult, FrameTimes, InputRecord
 from .track import Track, find_track, remeasure_light_curve
 from .wavesol import WavelengthSolution, geometry_values
@@ -149,7 +149,10 @@ def process_event(event_path: str | Path, *, stations_dir: str | Path | None = N
     run_root : str or Path, optional
         Where the parent search stops.
     refine_geometry : bool
-        True (default): refine the grating from the event's own lines (contract section 3).
+        True (default): refine the grating from the event's own lines (contract section 3);
+        where that falls back to the station file, the plasma fit may still measure the groove
+        density from the lines' wavelength scale (flag ``wavelength_scale_from_plasma_fit``,
+        :func:`scaled_solution`).
         False: use the station file's values as they are (flag ``calibration_from_station``),
         for a station whose geometry is known better than one event can tell, and to judge
         the later stages alone.
@@ -315,22 +318,25 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
             solution, spectra = moved
             result.parts["calibration"] = calibration_part(solution)
             result.add_flag(APERTURE_FROM_LIGHT)
-    _add_flags(result, spectra.flags)
-    frame_altitude_deg = _frame_altitude_deg(solution.geometry, station, track)
-    spectra, flags = _flux_corrected(spectra, station, frame_altitude_deg)
-    _add_flags(result, flags)
     flux_unit = "adu" if station.response is None else "adu/response"
-    result.parts["spectrum"] = spectrum_part(spectra, flux_unit=flux_unit)
-
-    whole = spectra.whole_flight()
-    fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order)
-    # the curve the spectra were divided by (response x light-weighted mean transmission):
-    # the plasma model skews blurred lines as the divisions did
-    station_response = None if station.response is None else (station.response.wavelength_nm,
-                                                               station.response.response)
-    response_nm = effective_response(spectra, response_nm=station_response, altitude_deg=frame_altitude_deg,
-                                     extinction=ExtinctionModel.for_station(station))
-    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s, response_nm=response_nm)
+    measured = _measured_spectra(result, spectra, solution, station, track, order=order)
+    spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg = measured
+    # a station fallback of the calibration: its groove density may be off (the event could not
+    # measure it), so the plasma fit first scans the wavelength scale that the lines prefer;
+    # a measured scale corrects the groove density, and the spectra are extracted again on it
+    scale_kw = {"scale_search": STATION_SCALE_SEARCH} if refine_geometry and solution.source == "station" else {}
+    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s, response_nm=response_nm, **scale_kw)
+    scan = fit.config.get("wavelength_scale_scan") if fit else None
+    if scan is not None and not scan.reason:
+        solution = scaled_solution(solution, scan)
+        result.parts["calibration"] = calibration_part(solution)
+        result.add_flag(SCALE_FROM_PLASMA)
+        spectra = extract_spectra(stack, background, track, solution.geometry, camera=camera, order=order)
+        measured = _measured_spectra(result, spectra, solution, station, track, order=order)
+        spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg = measured
+        fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s, response_nm=response_nm)
+        if fit:  # the HDF5 keeps what the scan found (the refit's axis carries it)
+            fit = dataclasses.replace(fit, config=fit.config | {"wavelength_scale_scan": scan})
     subset_attrs: dict[str, object] = {}
     why_not_subset: list[str] = []
     if not fit or min(fit.group_coverage.values(), default=0.0) < 0.5:
@@ -402,6 +408,47 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         source = {"source": label} | {f"source_{k}": v for k, v in subset_attrs.items()}
     result.parts["composition"]["attrs"].update(source)
     _flag_missing(result)
+
+
+def _measured_spectra(result: EventResult, spectra: FrameSpectra, solution: WavelengthSolution, station: Station,
+                      track: Track, *, order: int) -> tuple:
+    """Extracted spectra made physical, for the plasma fit; adds their flags and ``/spectrum``.
+
+    Returns ``(spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg)``:
+    the spectra divided by the station response and the atmosphere, their whole-flight sum, the
+    instrument FWHM on its grid, the station response as ``(wavelength_nm, response)`` (or
+    None), the curve the spectra were divided by (the plasma model skews blurred lines as the
+    divisions did) and the meteor's altitude per frame (or None).
+    """
+    _add_flags(result, spectra.flags)
+    frame_altitude_deg = _frame_altitude_deg(solution.geometry, station, track)
+    spectra, flags = _flux_corrected(spectra, station, frame_altitude_deg)
+    _add_flags(result, flags)
+    flux_unit = "adu" if station.response is None else "adu/response"
+    result.parts["spectrum"] = spectrum_part(spectra, flux_unit=flux_unit)
+    whole = spectra.whole_flight()
+    fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order)
+    station_response = None if station.response is None else (station.response.wavelength_nm,
+                                                               station.response.response)
+    response_nm = effective_response(spectra, response_nm=station_response, altitude_deg=frame_altitude_deg,
+                                     extinction=ExtinctionModel.for_station(station))
+    return spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg
+
+
+def scaled_solution(solution: WavelengthSolution, scan: ScaleScan) -> WavelengthSolution:
+    """The station fallback with its groove density corrected by the plasma fit's scale scan.
+
+    Lab wavelengths read ``(1 + s)`` times longer on the station's axis when the grating has
+    ``(1 + s)`` times the station's groove density (contract 2.2: a pixel's wavelength goes as
+    ``1 / (m G)`` on a fixed curve), so the groove density becomes ``G (1 + s)``, its 1-sigma
+    ``G`` times the scan's. The solution keeps ``source = "station"``: no line was measured on
+    the event's frames.
+    """
+    geo = solution.geometry
+    grooves = geo.grating.grooves_per_mm * (1.0 + scan.chosen)
+    geo = geo.with_grating(grooves_per_mm=grooves)
+    errors = dict(solution.errors) | {"grooves_per_mm": grooves * scan.best_err}
+    return dataclasses.replace(solution, geometry=geo, values=geometry_values(geo), errors=errors)
 
 
 def _frame_altitude_deg(geometry: SpectralGeometry, station: Station, track: Track) -> np.ndarray | None:
@@ -481,6 +528,15 @@ def aperture_from_light(stack: FrameStack, background: Background, track: Track,
         return None
     errors = dict(solution.errors) | {"dispersion_angle_deg": err}
     return dataclasses.replace(solution, geometry=geo, values=geometry_values(geo), errors=errors), moved
+
+
+STATION_SCALE_SEARCH = 0.06
+"""Half range of the plasma fit's wavelength-scale scan on a station fallback: the calibration's
+own groove-density search (``calibrate_event(grooves_range_frac=0.06)``), twice the +-3 % by
+which the issue expects a station file's groove density to be off."""
+SCALE_FROM_PLASMA = "wavelength_scale_from_plasma_fit"
+"""Flag: the calibration fell back to the station file, and the plasma fit measured the
+wavelength scale (:func:`meteorspec.plasma.fit_plasma` ``scale_search``)."""
 
 
 COMPOSITION_UNCERTAIN = 0.1
@@ -778,6 +834,12 @@ def plasma_part(fit: PlasmaFit, whole: Spectrum, *, flux_unit: str) -> dict[str,
         # which estimate the group errors are: linearised covariance or parametric bootstrap
         "group_error_method": fit.group_error_method,
     }
+    scan = fit.config.get("wavelength_scale_scan")
+    if scan is not None:
+        # a station fallback: the scale lab wavelengths read on the station's axis (1 + this),
+        # and whether it replaced the station's groove density (then "taken")
+        attrs |= {"wavelength_scale_best": scan.best, "wavelength_scale_best_err": scan.best_err,
+                  "wavelength_scale_note": scan.reason or "taken"}
     for group in ("na", "mg", "fe"):
         attrs[f"{group}_intensity"] = fit.group_intensity[group]
         attrs[f"{group}_intensity_err"] = fit.group_intensity_err[group]

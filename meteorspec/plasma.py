@@ -82,6 +82,7 @@ __all__ = [
     "N2_TIE_FWHM_NM",
     "PlasmaFit",
     "RESPONSE_PRIOR_SIGMA",
+    "ScaleScan",
     "doppler_fwhm_nm",
     "effective_response",
     "element_column_density",
@@ -606,7 +607,7 @@ class _Model:
                  component: NDArray, *, self_absorption: bool, continuum_degree: int,
                  air_multiplets: int = _AIR_MULTIPLETS, group_freedom_dex: float | None = None,
                  response_degree: int = 0, n2_tied: bool = False,
-                 response_table: tuple[NDArray, NDArray] | None = None):
+                 response_table: tuple[NDArray, NDArray] | None = None, scale: float = 0.0):
         self.wl, self.bw = wl, bw
         self.lo, self.hi = wl - bw / 2, wl + bw / 2
         self.fwhm_fn = fwhm_fn
@@ -662,10 +663,13 @@ class _Model:
                                     free=self.self_absorption)
         # a residual calibration error of a few tenths of a pixel: 1.5 nm, or one bin at
         # coarse dispersion (several nm per pixel, where the zeroth-order position decides)
+        # (about the wavelength scale ``scale``: lab wavelengths read (1 + scale) times longer,
+        # a groove density off by that factor, which the residual terms then refine)
         shift_max = max(_SHIFT_MAX_NM, float(np.median(bw)) if bw.size else 0.0)
-        p["shift_nm"] = _Param("shift_nm", 0.0, -shift_max, shift_max)
-        p["stretch"] = _Param("stretch", 0.0, -0.01, 0.01)
         self.mid_nm = 0.5 * (wl[0] + wl[-1])
+        s0 = float(scale) * self.mid_nm
+        p["shift_nm"] = _Param("shift_nm", s0, s0 - shift_max, s0 + shift_max)
+        p["stretch"] = _Param("stretch", float(scale), float(scale) - 0.01, float(scale) + 0.01)
         p["width_scale"] = _Param("width_scale", 1.0, 0.6, 1.6)
         for s in self.species:
             p[f"log_n {s}"] = _Param(f"log_n {s}", 18.0, 18.0 - _LOG_N_SPAN, 18.0 + _LOG_N_SPAN)
@@ -1045,6 +1049,15 @@ class PlasmaFit:
     def __bool__(self) -> bool:
         return bool(self.success)
 
+    def line_position_nm(self, lab_nm: ArrayLike) -> NDArray[np.float64]:
+        """Where the fit puts lines of these lab wavelengths on the spectrum's axis (nm): with its
+        shift and stretch (and so any wavelength scale it was given or found)."""
+        lab = np.asarray(lab_nm, dtype=float)
+        shift = self.shift_nm if np.isfinite(self.shift_nm) else 0.0
+        stretch = float(self.parameters.get("stretch", 0.0))
+        mid = float(self.config.get("mid_nm", 0.0))
+        return lab + shift + stretch * (lab - mid)
+
     @classmethod
     def failed(cls, reason: str, n_bins: int = 0) -> PlasmaFit:
         """A falsy result carrying ``reason``; every number NaN, every array empty."""
@@ -1284,6 +1297,108 @@ refits then agree to ~1e-5 and the bootstrap reports near-zero group errors (see
 fireball's unsaturated-frame fit, ``bench/plasma_end_to_end.py --seed 6``, event 31: stated
 composition errors 3e-5 against actual 0.02-0.04). The refits stop on ``ftol`` or
 ``_BOOTSTRAP_NFEV`` instead."""
+
+
+@dataclass(frozen=True)
+class ScaleScan:
+    """Thin-LTE chi-square of a spectrum against a grid of wavelength scales (:func:`fit_plasma`).
+
+    Attributes
+    ----------
+    scales : ndarray
+        Fractions: lab wavelengths read ``(1 + scale)`` times longer on the spectrum's axis.
+    chi2 : ndarray
+        Weighted chi-square of the best non-negative thin linear solution at each scale (the
+        best of three main temperatures, :data:`_SCAN_TEMPERATURES_K`).
+    centre : float
+        The scale searched about (the calibration's).
+    best : float
+        The scale of the lowest chi-square.
+    best_err : float
+        Its 1-sigma from the curvature of the chi-square there, the chi-square scaled to a
+        reduced value of 1 and by the bins' correlation (NaN at the grid's end).
+    gain_sigma2 : float
+        ``chi2(centre) - chi2(best)`` in the same scaled units.
+    chosen : float
+        The scale the fit starts from: ``best`` when it is measured (see :func:`_scale_scan`),
+        else ``centre``.
+    reason : str
+        Why ``centre`` was kept (empty when ``best`` was taken).
+    """
+
+    scales: NDArray
+    chi2: NDArray
+    centre: float
+    best: float
+    best_err: float
+    gain_sigma2: float
+    chosen: float
+    reason: str
+
+
+_SCAN_TEMPERATURES_K = (4000.0, 4500.0, 5000.0)
+_SCAN_MIN_GAIN = 25.0
+"""Chi-square gain (scaled units) over the calibration's scale for the scan to replace it: the
+5-sigma convention for a detection (common practice)."""
+
+
+def _correlation_factor(spectrum, good: NDArray) -> float:
+    """``1 + 2 sum_lag rho``, the median over good bins: by how much correlated bins overstate
+    chi-square differences taken as independent (1 without correlations)."""
+    corr = np.asarray(getattr(spectrum, "correlation", np.zeros((0, 0))), float)
+    if corr.ndim != 2 or corr.shape[0] != good.size or corr.shape[1] == 0:
+        return 1.0
+    f = 1.0 + 2.0 * np.nansum(np.clip(corr[good], 0.0, 1.0), axis=1)
+    return float(np.median(f)) if f.size else 1.0
+
+
+def _scale_scan(build: Callable[[float], _Model], flux: NDArray, err: NDArray, good: NDArray, *,
+                centre: float, half_range: float, fwhm_fn: Callable, correlation_factor: float,
+                shift_max_nm: float) -> ScaleScan:
+    """Chi-square of the thin linear model over wavelength scales ``centre +- half_range``.
+
+    A groove density off by a factor scales every wavelength on the spectrum's axis by it
+    (contract 2.2: on a fixed curve the groove density enters only as ``m lambda G``), so one
+    number moves every line. The grid step moves the reddest bin's line by a quarter of the
+    narrowest instrument FWHM. The lowest point is taken when it is a minimum inside the grid,
+    gains :data:`_SCAN_MIN_GAIN` over the centre, and fixes the wavelengths at the red end to
+    half the refinement fit's own shift freedom (``shift_max_nm``) at 1 sigma; a broad valley
+    (a spectrum without sharp features, or a scale error that is not one) does not.
+    """
+    model = build(centre)
+    w_nm = model.wl[good]
+    fw = np.asarray(fwhm_fn(w_nm), float)
+    step = float(np.min(fw / (4.0 * w_nm)))
+    n = int(math.ceil(half_range / step))
+    scales = centre + step * np.arange(-n, n + 1)
+    chi2 = np.full(scales.size, np.inf)
+    for k, eps in enumerate(scales):
+        model.params["shift_nm"].value = float(eps) * model.mid_nm
+        model.params["stretch"].value = float(eps)
+        chi2[k] = _linear_start(model, flux, err, good, _SCAN_TEMPERATURES_K)[3]
+    k0, kb = n, int(np.argmin(chi2))
+    unit = max(float(chi2[kb]) / max(int(good.sum()), 1), 1e-300) * correlation_factor
+    gain = float(chi2[k0] - chi2[kb]) / unit
+    best_err = math.nan
+    if 0 < kb < scales.size - 1:
+        curv = float(chi2[kb - 1] - 2.0 * chi2[kb] + chi2[kb + 1]) / step**2
+        if curv > 0:
+            best_err = math.sqrt(2.0 * unit / curv)
+    red_nm = float(w_nm.max())
+    if kb == k0:
+        reason = "the calibration's scale fits best"
+    elif not np.isfinite(best_err):
+        reason = "the lowest chi-square lies at the end of the searched range"
+    elif gain < _SCAN_MIN_GAIN:
+        reason = f"gain {gain:.1f} < {_SCAN_MIN_GAIN:.0f} over the calibration's scale"
+    elif best_err * red_nm > 0.5 * shift_max_nm:
+        reason = (f"a broad minimum: {best_err * red_nm:.2f} nm (1 sigma) at {red_nm:.0f} nm, "
+                  f"more than {0.5 * shift_max_nm:.2f} nm")
+    else:
+        reason = ""
+    chosen = float(scales[kb]) if not reason else float(scales[k0])
+    return ScaleScan(scales=scales, chi2=chi2, centre=float(scales[k0]), best=float(scales[kb]),
+                     best_err=best_err, gain_sigma2=gain, chosen=chosen, reason=reason)
 
 
 def _cost(problem: _Problem, x: NDArray) -> float:
@@ -1586,7 +1701,8 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
                response_nm: tuple[ArrayLike, ArrayLike] | None = None,
                temperature_prior_k: tuple[float, float] | None = MAIN_TEMPERATURE_PRIOR_K,
                response_prior_sigma: float | None = RESPONSE_PRIOR_SIGMA,
-               max_nfev: int = 300, bootstrap_draws: int = BOOTSTRAP_DRAWS) -> PlasmaFit:
+               max_nfev: int = 300, bootstrap_draws: int = BOOTSTRAP_DRAWS,
+               wavelength_scale: float = 0.0, scale_search: float = 0.0) -> PlasmaFit:
     """Fit the two-temperature LTE model to a (whole-flight) spectrum.
 
     Parameters
@@ -1615,6 +1731,18 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
         Fit a residual wavelength error (shift within +-1.5 nm or one bin width, whichever is
         larger, and scale within +-1 %) and
         an instrument-width factor (0.6-1.6).
+    wavelength_scale : float
+        Lab wavelengths read ``(1 + wavelength_scale)`` times longer on the spectrum's axis (a
+        groove density off by that factor, contract 2.2); the fitted shift and stretch refine
+        about it. 0: the axis is taken as calibrated.
+    scale_search : float
+        When positive, first scan the scale over ``wavelength_scale +- scale_search`` with the
+        thin linear model (:func:`_scale_scan`) and start from the scale the lines prefer, if
+        it is measured (an interior minimum, a chi-square gain of 25 in units scaled to a
+        reduced chi-square of 1 and the bins' correlation, and a 1-sigma error that moves the
+        reddest line by at most half the shift freedom); else from ``wavelength_scale``. For
+        a spectrum on a wavelength axis nobody measured on the event (the station file's). The
+        scan is ``config["wavelength_scale_scan"]`` (:class:`ScaleScan`).
     group_freedom_dex : float or None
         Let the lines of each composition group depart from the LTE level of their species
         by a factor ``10^d`` (applied to the column seen by those lines), with a Gaussian
@@ -1709,6 +1837,14 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
                                 wl.size)
     lo_nm = float(wl[good][0] - 3.0 * fwhm_fn(np.array([wl[good][0]]))[0])
     hi_nm = float(wl[good][-1] + 3.0 * fwhm_fn(np.array([wl[good][-1]]))[0])
+    scale_search = float(scale_search)
+    wavelength_scale = float(wavelength_scale)
+    if not (np.isfinite(scale_search) and 0.0 <= scale_search < 0.2
+            and np.isfinite(wavelength_scale) and abs(wavelength_scale) < 0.2):
+        raise ValueError(f"wavelength_scale {wavelength_scale!r} and scale_search {scale_search!r} must be "
+                         "finite fractions below 0.2 (scale_search >= 0)")
+    reach = abs(wavelength_scale) + scale_search  # lab lines that the scales can move into the range
+    lo_nm, hi_nm = lo_nm / (1.0 + reach), hi_nm / (1.0 - reach)
     index, component = select_model_lines(line_list, lo_nm, hi_nm, main_species=main_species,
                                           hot_species=hot_species, air_species=air_species,
                                           min_relative=min_relative)
@@ -1743,17 +1879,28 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     metal = component != "air"
     line_index = np.concatenate([index[metal], index[~metal]])
 
-    def build() -> _Model:
+    def build(scale: float | None = None) -> _Model:
         model = _Model(wl, bw, fwhm_fn, lines, component, self_absorption=self_absorption,
                        continuum_degree=continuum_degree, group_freedom_dex=group_freedom_dex,
                        response_degree=response_degree, n2_tied=bool(n2_tied),
-                       response_table=config["response_table"])
+                       response_table=config["response_table"],
+                       scale=wavelength_scale if scale is None else scale)
         model.params["shift_nm"].free = bool(fit_shift)
         model.params["stretch"].free = bool(fit_shift)
         model.params["width_scale"].free = bool(fit_width)
         if speed_km_s is not None and speed_km_s < 20.0:
             model.params["log_t_hot"].value = math.log10(9000.0)
         return model
+
+    scan = None
+    if scale_search > 0.0:
+        scan = _scale_scan(build, flux, err, good, centre=wavelength_scale, half_range=scale_search,
+                           fwhm_fn=fwhm_fn, correlation_factor=_correlation_factor(spectrum, good),
+                           shift_max_nm=max(_SHIFT_MAX_NM, float(np.median(bw)) if bw.size else 0.0))
+        wavelength_scale = scan.chosen
+        config["wavelength_scale_scan"] = scan
+    config["wavelength_scale"] = wavelength_scale
+    config["mid_nm"] = 0.5 * float(wl[0] + wl[-1])  # the stretch's pivot (_Model.mid_nm)
 
     # Starts: the thin linear solution's temperature, and for self-absorption a few
     # (temperature, opacity) pairs, since a saturated spectrum mimics a hotter thin one.

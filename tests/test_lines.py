@@ -205,6 +205,9 @@ def test_plasma_fit_with_unconstrained_lines_weighs_nothing(line_list):
         def __bool__(self):
             return True
 
+        def line_position_nm(self, lab_nm):
+            return np.asarray(lab_nm, float) + self.shift_nm
+
     table = identify_lines(spec, fwhm_nm=1.2, plasma_fit=_Fit())  # filterwarnings=error: no warning
     ca = np.abs(table.measured_nm - 393.37) < 0.6
     assert ca.sum() == 1 and table.status[ca][0] == "unidentified"

@@ -263,3 +263,22 @@ def test_locate_equals_newton_on_public_curve_evaluations(geo):
         assert one[0] == lam[k] or np.isnan(lam[k]) and np.isnan(one[0])
         assert np.array_equal(geo.direction(x0[k], y0[k], lam[k]),
                               (geo.direction(x0, y0, lam)[0][k], geo.direction(x0, y0, lam)[1][k]), equal_nan=True)
+
+
+@pytest.mark.parametrize("geo", GEOMETRIES, ids=[g.lens.projection for g in GEOMETRIES])
+def test_groove_density_scales_every_wavelength_by_the_same_factor(geo):
+    # Grating equation (contract 2.2; Fraunhofer's, common practice): the diffracted direction
+    # cosines move by m * lambda * G, so a groove density (1 + s) times larger puts lambda where
+    # the old one put lambda (1 + s), on every curve and at every wavelength, whatever the lens
+    # and tilt. The pipeline's station-fallback scale correction (pipeline.scaled_solution)
+    # rests on this.
+    rng = np.random.default_rng(8)
+    x0, y0 = rng.uniform(150, 650, 40), rng.uniform(150, 450, 40)
+    lam = rng.uniform(380.0, 800.0, 40)
+    for s in (-0.03, 0.021):
+        scaled = geo.with_grating(grooves_per_mm=geo.grating.grooves_per_mm * (1.0 + s))
+        x1, y1 = scaled.spectrum_pixel(x0, y0, lam)
+        x2, y2 = geo.spectrum_pixel(x0, y0, lam * (1.0 + s))
+        ok = np.isfinite(x1) & np.isfinite(x2)
+        assert ok.sum() > 20
+        assert np.max(np.hypot(x1 - x2, y1 - y2)[ok]) < ROUND_TRIP_PX

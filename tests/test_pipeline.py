@@ -400,3 +400,22 @@ def test_unsaturated_frames_summed_on_the_bins_every_frame_records(monkeypatch):
                     rtol=1e-12)
     assert np.array_equal(second.mask, first.mask)
     assert_allclose(second.flux[keep], first.flux[keep], rtol=1e-12)
+
+
+def test_scaled_solution_corrects_the_station_groove_density():
+    # lab wavelengths read (1 + s) times longer on the station's axis when the grating has
+    # (1 + s) times the station's grooves (grating equation, contract 2.2; checked in
+    # tests/test_optics.py): the scan's scale goes into the groove density, nothing else moves
+    from meteorspec.calibrate import station_solution
+    from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
+    geo = SpectralGeometry(LensModel("equidistant", 560.0, 319.5, 239.5), GratingModel(492.5, 1.7, 1.3, 180.0))
+    sol = station_solution(geo, flags=("calibration_few_lines",))
+    scan = plasma.ScaleScan(scales=np.array([0.0, 0.018]), chi2=np.array([9.0, 1.0]), centre=0.0, best=0.018,
+                            best_err=2e-4, gain_sigma2=100.0, chosen=0.018, reason="")
+    out = pipeline.scaled_solution(sol, scan)
+    assert out.source == "station" and out.flags == sol.flags
+    assert out.geometry.grating.grooves_per_mm == pytest.approx(492.5 * 1.018, rel=1e-12)
+    assert out.values["grooves_per_mm"] == pytest.approx(492.5 * 1.018, rel=1e-12)
+    assert out.errors["grooves_per_mm"] == pytest.approx(492.5 * 1.018 * 2e-4, rel=1e-12)
+    for k in ("dispersion_angle_deg", "tilt_deg", "tilt_azimuth_deg", "focal_px"):
+        assert out.values[k] == sol.values[k]

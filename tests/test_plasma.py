@@ -764,3 +764,71 @@ def test_fwhm_validation():
         plasma.fit_plasma(spec, fwhm_nm=-1.0)
     with pytest.raises(ValueError, match="fwhm_nm"):
         plasma.fit_plasma(spec, fwhm_nm=np.ones(3))
+
+
+def _scaled_meteor(line_list, scale: float, *, seed: int):
+    """A bright meteor on a wavelength axis whose lab wavelengths read (1 + scale) times longer
+    (a groove density off by that factor): the lines rendered at the scaled positions."""
+    spec, truth = _meteor(line_list, snr=300.0, seed=seed, lo=400, hi=700, fwhm=3.0)
+    index, component = plasma.select_model_lines(line_list, 350, 760)
+    metal = line_list.select(index[component != "air"])
+    hot = np.isin(metal.species, plasma.HOT_SPECIES)
+    energy = np.zeros(len(metal))
+    for is_hot, t in ((False, 4600.0), (True, 10000.0)):
+        m = hot == is_hot
+        sel = metal.select(m)
+        energy[m] = 1e4 * plasma.emergent_line_radiance(sel, t, {s: COLUMNS[s] for s in set(sel.species.tolist())})
+    wl = spec.wavelength_nm
+    flux = _render(wl, spec.bin_width_nm, metal.wavelength_nm * (1.0 + scale), energy, 3.0)
+    flux += atomic.planck_radiance(wl, 4600.0) / atomic.planck_radiance(600, 4600.0)
+    rng = np.random.default_rng(seed)
+    err = np.full(wl.size, flux.max() / 300.0)
+    scaled = SimpleNamespace(wavelength_nm=wl, bin_width_nm=spec.bin_width_nm, flux=flux + rng.normal(0, err),
+                             flux_err=err, mask=np.zeros(wl.size, bool))
+    truth = {g: float(energy[metal.group == g].sum()) for g in plasma.GROUPS}
+    return scaled, truth
+
+
+def test_scale_scan_finds_a_groove_density_error_and_the_fit_recovers_the_groups(line_list):
+    # The truth: lines 2 % redder on the axis than their NIST wavelengths (a station groove
+    # density 2 % low, inside the +-3 % the calibration issue allows). Without the scan the
+    # fit's own shift (+-1.5 nm) and stretch (+-1 %) cannot reach them.
+    spec, truth = _scaled_meteor(line_list, 0.02, seed=21)
+    fit = plasma.fit_plasma(spec, fwhm_nm=3.0, scale_search=0.06, bootstrap_draws=0)
+    scan = fit.config["wavelength_scale_scan"]
+    assert fit and scan.reason == ""
+    step = float(np.diff(scan.scales)[0])
+    assert abs(scan.best - 0.02) <= step  # the grid's resolution
+    # where the refined fit puts Na I D2: within 0.1 nm (a thirtieth of the FWHM) of 588.995 * 1.02
+    assert abs(float(fit.line_position_nm(588.995)) - 588.995 * 1.02) < 0.1
+    for g in plasma.GROUPS:  # the bright fit's tolerance (3 sigma plus 1 % of render differences)
+        assert abs(fit.group_intensity[g] - truth[g]) < 3 * fit.group_intensity_err[g] + 0.01 * truth[g], g
+    plain = plasma.fit_plasma(spec, fwhm_nm=3.0, bootstrap_draws=0)
+    assert plain.chi2_reduced > 10 * fit.chi2_reduced  # the residual terms alone cannot reach it
+
+
+def test_scale_scan_keeps_a_right_axis_and_a_featureless_one(line_list):
+    spec, _ = _scaled_meteor(line_list, 0.0, seed=22)
+    fit = plasma.fit_plasma(spec, fwhm_nm=3.0, scale_search=0.06, bootstrap_draws=0)
+    scan = fit.config["wavelength_scale_scan"]
+    assert scan.chosen == 0.0 and scan.best == 0.0 and "fits best" in scan.reason
+    # a smooth continuum with noise has no lines to fix a scale by: the centre stays
+    wl = spec.wavelength_nm
+    rng = np.random.default_rng(23)
+    flat = SimpleNamespace(wavelength_nm=wl, bin_width_nm=spec.bin_width_nm,
+                           flux=1.0 + 0.3 * (wl - 550) / 150 + rng.normal(0, 0.01, wl.size),
+                           flux_err=np.full(wl.size, 0.01), mask=np.zeros(wl.size, bool))
+    fit = plasma.fit_plasma(flat, fwhm_nm=3.0, scale_search=0.06, bootstrap_draws=0)
+    if fit:
+        scan = fit.config["wavelength_scale_scan"]
+        assert scan.chosen == 0.0 and scan.reason
+
+
+@pytest.mark.parametrize("kw", [dict(scale_search=-0.01), dict(scale_search=0.3),
+                                dict(wavelength_scale=float("nan"))])
+def test_scale_options_are_validated(kw):
+    wl = np.arange(400.0, 500.0)
+    spec = SimpleNamespace(wavelength_nm=wl, bin_width_nm=1.0, flux=np.ones(wl.size),
+                           flux_err=np.ones(wl.size), mask=np.zeros(wl.size, bool))
+    with pytest.raises(ValueError, match="scale"):
+        plasma.fit_plasma(spec, fwhm_nm=2.0, **kw)

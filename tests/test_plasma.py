@@ -50,12 +50,10 @@ COLUMNS = {"Na I": 3e16, "Mg I": 3e17, "Fe I": 1e18, "Ca I": 3e16, "Cr I": 1e16,
            "H I": 1e16}
 
 
-def _meteor(line_list, *, t_main=4600.0, columns=COLUMNS, area=1e4, fwhm=2.5, step=1.0,
-            lo=360.0, hi=880.0, snr=300.0, seed=0, self_absorption=True, continuum=1.0):
-    """Noisy synthetic meteor spectrum and its true group energies (independent render)."""
-    wl = np.arange(lo, hi, step) + step / 2
-    bw = np.full(wl.size, step)
-    index, component = plasma.select_model_lines(line_list, lo - 10, hi + 10)
+def _line_energies(line_list, lo_nm, hi_nm, *, t_main=4600.0, columns=COLUMNS, area=1e4, self_absorption=True):
+    """The model's metal lines over a range and their emergent energies: main component at
+    ``t_main``, hot at 10 000 K, ``area`` times the slab radiance of ``columns``."""
+    index, component = plasma.select_model_lines(line_list, lo_nm, hi_nm)
     metal = line_list.select(index[component != "air"])
     hot = np.isin(metal.species, plasma.HOT_SPECIES)
     energy = np.zeros(len(metal))
@@ -63,8 +61,17 @@ def _meteor(line_list, *, t_main=4600.0, columns=COLUMNS, area=1e4, fwhm=2.5, st
         m = hot == is_hot
         sel = metal.select(m)
         cols = {s: columns[s] for s in set(sel.species.tolist())}
-        energy[m] = area * plasma.emergent_line_radiance(sel, t, cols,
-                                                         self_absorption=self_absorption)
+        energy[m] = area * plasma.emergent_line_radiance(sel, t, cols, self_absorption=self_absorption)
+    return metal, energy
+
+
+def _meteor(line_list, *, t_main=4600.0, columns=COLUMNS, area=1e4, fwhm=2.5, step=1.0,
+            lo=360.0, hi=880.0, snr=300.0, seed=0, self_absorption=True, continuum=1.0):
+    """Noisy synthetic meteor spectrum and its true group energies (independent render)."""
+    wl = np.arange(lo, hi, step) + step / 2
+    bw = np.full(wl.size, step)
+    metal, energy = _line_energies(line_list, lo - 10, hi + 10, t_main=t_main, columns=columns, area=area,
+                                   self_absorption=self_absorption)
     flux = _render(wl, bw, metal.wavelength_nm, energy, fwhm)
     flux += continuum * atomic.planck_radiance(wl, t_main) / atomic.planck_radiance(600, t_main)
     rng = np.random.default_rng(seed)
@@ -476,15 +483,7 @@ def _coarse_scene(line_list):
     bw = np.full(wl.size, step)
     r_wl = np.array([300.0, 360.0, 600.0, 950.0])
     r_val = np.array([0.1, 0.1, 1.0, 1.0])
-    index, component = plasma.select_model_lines(line_list, lo - 100, hi + 100)
-    metal = line_list.select(index[component != "air"])
-    hot = np.isin(metal.species, plasma.HOT_SPECIES)
-    energy = np.zeros(len(metal))
-    for is_hot, t in ((False, 4600.0), (True, 10000.0)):
-        m = hot == is_hot
-        sel = metal.select(m)
-        energy[m] = 1e4 * plasma.emergent_line_radiance(
-            sel, t, {sp: COLUMNS[sp] for sp in set(sel.species.tolist())})
+    metal, energy = _line_energies(line_list, lo - 100, hi + 100)
     return fwhm, step, wl, bw, r_wl, r_val, metal, energy
 
 
@@ -769,21 +768,14 @@ def test_fwhm_validation():
 def _scaled_meteor(line_list, scale: float, *, seed: int):
     """A bright meteor on a wavelength axis whose lab wavelengths read (1 + scale) times longer
     (a groove density off by that factor): the lines rendered at the scaled positions."""
-    spec, truth = _meteor(line_list, snr=300.0, seed=seed, lo=400, hi=700, fwhm=3.0)
-    index, component = plasma.select_model_lines(line_list, 350, 760)
-    metal = line_list.select(index[component != "air"])
-    hot = np.isin(metal.species, plasma.HOT_SPECIES)
-    energy = np.zeros(len(metal))
-    for is_hot, t in ((False, 4600.0), (True, 10000.0)):
-        m = hot == is_hot
-        sel = metal.select(m)
-        energy[m] = 1e4 * plasma.emergent_line_radiance(sel, t, {s: COLUMNS[s] for s in set(sel.species.tolist())})
-    wl = spec.wavelength_nm
-    flux = _render(wl, spec.bin_width_nm, metal.wavelength_nm * (1.0 + scale), energy, 3.0)
+    wl = np.arange(400.0, 700.0) + 0.5
+    bw = np.ones(wl.size)
+    metal, energy = _line_energies(line_list, 350, 760)
+    flux = _render(wl, bw, metal.wavelength_nm * (1.0 + scale), energy, 3.0)
     flux += atomic.planck_radiance(wl, 4600.0) / atomic.planck_radiance(600, 4600.0)
     rng = np.random.default_rng(seed)
     err = np.full(wl.size, flux.max() / 300.0)
-    scaled = SimpleNamespace(wavelength_nm=wl, bin_width_nm=spec.bin_width_nm, flux=flux + rng.normal(0, err),
+    scaled = SimpleNamespace(wavelength_nm=wl, bin_width_nm=bw, flux=flux + rng.normal(0, err),
                              flux_err=err, mask=np.zeros(wl.size, bool))
     truth = {g: float(energy[metal.group == g].sum()) for g in plasma.GROUPS}
     return scaled, truth

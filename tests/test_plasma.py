@@ -20,6 +20,7 @@ from numpy.testing import assert_allclose
 from scipy.integrate import quad
 
 from meteorspec import atomic, plasma
+from meteorspec.lines import identify_lines
 
 K_B_EV = 8.617333262e-5  # eV/K, exact (2019 SI)
 EULER_GAMMA = 0.5772156649  # from memory
@@ -797,6 +798,11 @@ def test_scale_scan_finds_a_groove_density_error_and_the_fit_recovers_the_groups
         assert abs(fit.group_intensity[g] - truth[g]) < 3 * fit.group_intensity_err[g] + 0.01 * truth[g], g
     plain = plasma.fit_plasma(spec, fwhm_nm=3.0, bootstrap_draws=0)
     assert plain.chi2_reduced > 10 * fit.chi2_reduced  # the residual terms alone cannot reach it
+    # line identification looks for each line where the fit puts it (shift and stretch): the
+    # peak at 589.3 * 1.02 nm is Na I D (NIST 588.995 / 589.592 nm), not an unidentified peak
+    table = identify_lines(spec, fwhm_nm=3.0, plasma_fit=fit)
+    na = np.abs(table.measured_nm - 589.3 * 1.02) < 1.5  # half the FWHM
+    assert na.sum() == 1 and table.species[na][0] == "Na I"
 
 
 def test_scale_scan_keeps_a_right_axis_and_a_featureless_one(line_list):

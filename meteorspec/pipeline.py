@@ -318,7 +318,7 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
             solution, spectra = moved
             result.parts["calibration"] = calibration_part(solution)
             result.add_flag(APERTURE_FROM_LIGHT)
-    flux_unit = "adu" if station.response is None else "adu/response"
+    flux_unit = _flux_unit(station)
     measured = _measured_spectra(result, spectra, solution, station, track, order=order)
     spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg = measured
     # a station fallback of the calibration: its groove density may be off (the event could not
@@ -410,6 +410,11 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     _flag_missing(result)
 
 
+def _flux_unit(station: Station) -> str:
+    """Unit of the spectra's flux: ADU, or ADU per unit response when the station has one."""
+    return "adu" if station.response is None else "adu/response"
+
+
 def _measured_spectra(result: EventResult, spectra: FrameSpectra, solution: WavelengthSolution, station: Station,
                       track: Track, *, order: int) -> tuple:
     """Extracted spectra made physical, for the plasma fit; adds their flags and ``/spectrum``.
@@ -424,8 +429,7 @@ def _measured_spectra(result: EventResult, spectra: FrameSpectra, solution: Wave
     frame_altitude_deg = _frame_altitude_deg(solution.geometry, station, track)
     spectra, flags = _flux_corrected(spectra, station, frame_altitude_deg)
     _add_flags(result, flags)
-    flux_unit = "adu" if station.response is None else "adu/response"
-    result.parts["spectrum"] = spectrum_part(spectra, flux_unit=flux_unit)
+    result.parts["spectrum"] = spectrum_part(spectra, flux_unit=_flux_unit(station))
     whole = spectra.whole_flight()
     fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order)
     station_response = None if station.response is None else (station.response.wavelength_nm,

@@ -1337,6 +1337,8 @@ class ScaleScan:
 
 
 _SCAN_TEMPERATURES_K = (4000.0, 4500.0, 5000.0)
+"""Main temperatures of the scan's thin linear model: the 4000-5000 K the issue gives for the
+main component (Borovicka 1993); the scan only needs the lines' pattern, not the temperature."""
 _SCAN_MIN_GAIN = 25.0
 """Chi-square gain (scaled units) over the calibration's scale for the scan to replace it: the
 5-sigma convention for a detection (common practice)."""
@@ -1353,8 +1355,8 @@ def _correlation_factor(spectrum, good: NDArray) -> float:
 
 
 def _scale_scan(build: Callable[[float], _Model], flux: NDArray, err: NDArray, good: NDArray, *,
-                centre: float, half_range: float, fwhm_fn: Callable, correlation_factor: float,
-                shift_max_nm: float) -> ScaleScan:
+                centre: float, half_range: float, fwhm_fn: Callable, correlation_factor: float
+                ) -> ScaleScan:
     """Chi-square of the thin linear model over wavelength scales ``centre +- half_range``.
 
     A groove density off by a factor scales every wavelength on the spectrum's axis by it
@@ -1362,10 +1364,11 @@ def _scale_scan(build: Callable[[float], _Model], flux: NDArray, err: NDArray, g
     number moves every line. The grid step moves the reddest bin's line by a quarter of the
     narrowest instrument FWHM. The lowest point is taken when it is a minimum inside the grid,
     gains :data:`_SCAN_MIN_GAIN` over the centre, and fixes the wavelengths at the red end to
-    half the refinement fit's own shift freedom (``shift_max_nm``) at 1 sigma; a broad valley
+    half the refinement fit's own shift freedom (the model's ``shift_nm`` bounds) at 1 sigma; a broad valley
     (a spectrum without sharp features, or a scale error that is not one) does not.
     """
     model = build(centre)
+    shift_max_nm = 0.5 * (model.params["shift_nm"].hi - model.params["shift_nm"].lo)
     w_nm = model.wl[good]
     fw = np.asarray(fwhm_fn(w_nm), float)
     step = float(np.min(fw / (4.0 * w_nm)))
@@ -1895,8 +1898,7 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     scan = None
     if scale_search > 0.0:
         scan = _scale_scan(build, flux, err, good, centre=wavelength_scale, half_range=scale_search,
-                           fwhm_fn=fwhm_fn, correlation_factor=_correlation_factor(spectrum, good),
-                           shift_max_nm=max(_SHIFT_MAX_NM, float(np.median(bw)) if bw.size else 0.0))
+                           fwhm_fn=fwhm_fn, correlation_factor=_correlation_factor(spectrum, good))
         wavelength_scale = scan.chosen
         config["wavelength_scale_scan"] = scan
     config["wavelength_scale"] = wavelength_scale

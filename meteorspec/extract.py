@@ -33,7 +33,10 @@ nm-per-pixel. The steps, per frame:
    streak's light-weighted centre (the exposure's light curve from the
    frame energies, :func:`_light_centroid_fraction`), so that each line's
    centroid stays on its wavelength (up to 0.7 nm of shift otherwise, for a
-   5 nm/px spectrum and a meteor brightening by e per frame).
+   5 nm/px spectrum and a meteor brightening by e per frame). In the first
+   and last lit exposures, and next to a saturated zeroth order (whose
+   energy is only a lower bound), the tracker's measured centroid of the
+   zeroth order sets where the light falls instead.
 4. **Exact fractional binning.** A unit pixel maps onto the wavelength axis as
    a trapezoid (the convolution of two boxes, ``|du/dx|`` and ``|du/dy|``
    wide); its flux is split over the common-grid bins in proportion to the
@@ -52,7 +55,10 @@ nm-per-pixel. The steps, per frame:
    which widens the profile, and bins scaled up by it read low). When enough
    unsaturated cross-sections remain (``_MIN_CLEAN_SECTIONS``), saturated
    pixels count as lost light: a bin holding them is scaled up while all its
-   bad pixels carry at most ``max_saturated_fraction`` (0.8) of it. Its lost
+   bad pixels carry at most ``max_saturated_fraction`` (0.8) of it, and
+   while its scaled-up light, through the profile, explains its saturated
+   pixels (at least half their clipped value, :func:`_underlit_saturation`;
+   a profile that lights the wrong part of the streak fails it). Its lost
    share is weighed by each pixel's own profile (the PSF refitted to the
    frame's unsaturated cross-sections, convolved with the frame's streak at
    its wavelength) times the frame's spectrum over the pixel's

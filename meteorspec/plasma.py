@@ -65,6 +65,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import sparse
 from scipy.interpolate import CubicSpline
+from scipy.linalg import cholesky_banded
 from scipy.optimize import least_squares, lsq_linear
 from scipy.special import ndtr
 
@@ -1089,6 +1090,9 @@ class _Problem:
         self.data = flux[good]
         self.weight = 1.0 / err[good]
         self.prior = prior or {}
+        # correlated pairs of fitted bins (positions among the good bins, coefficient):
+        # see _bin_pairs; empty when the spectrum carries no correlations
+        self.pairs: tuple[NDArray, NDArray, NDArray] = (np.zeros(0, int), np.zeros(0, int), np.zeros(0))
 
     def _prior_residuals(self) -> list[float]:
         return [(self.model.value(n) - mu) / sd for n, (mu, sd) in self.prior.items()
@@ -1344,6 +1348,82 @@ _SCAN_MIN_GAIN = 25.0
 5-sigma convention for a detection (common practice)."""
 
 
+def _bin_pairs(spectrum, good: NDArray) -> tuple[NDArray, NDArray, NDArray]:
+    """Pairs of fitted bins whose noise is correlated: positions ``p < q`` among the good bins
+    and their coefficient (``Spectrum.correlation``, per lag; empty without correlations).
+
+    A pixel spreads over two to several bins, so neighbouring bins share noise (0.64 and 0.14
+    at lags 1 and 2 on the default grid of seed-6 event 12 of bench/plasma_end_to_end.py).
+    """
+    corr = np.asarray(getattr(spectrum, "correlation", np.zeros((0, 0))), float)
+    empty = (np.zeros(0, int), np.zeros(0, int), np.zeros(0))
+    if corr.ndim != 2 or corr.shape[0] != good.size or corr.shape[1] == 0:
+        return empty
+    index = np.flatnonzero(good)
+    position = np.full(good.size, -1)
+    position[index] = np.arange(index.size)
+    ps, qs, rs = [], [], []
+    for lag in range(1, corr.shape[1] + 1):
+        i = index[index + lag < good.size]
+        j = i + lag
+        keep = good[j] & np.isfinite(corr[i, lag - 1]) & (corr[i, lag - 1] != 0.0)
+        ps.append(position[i[keep]])
+        qs.append(position[j[keep]])
+        rs.append(np.clip(corr[i[keep], lag - 1], -1.0, 1.0))
+    if not ps:
+        return empty
+    return np.concatenate(ps), np.concatenate(qs), np.concatenate(rs)
+
+
+def _pair_term(g: NDArray, pairs: tuple[NDArray, NDArray, NDArray], *, diagonal: bool = False) -> NDArray:
+    """``sum over correlated pairs (p, q) of rho (g_p g_q^T + g_q g_p^T)``: the share of the bins'
+    correlation in the covariance ``g R g^T`` of linear combinations ``g`` (rows) of the bins.
+    With ``diagonal`` only its diagonal (a vector).
+
+    A least-squares fit that weighs correlated bins as independent stays unbiased, but its
+    covariance is the "sandwich" ``(U^T U)^-1 U^T R U (U^T U)^-1`` (``U``: the whitened
+    Jacobian, ``R``: the bins' correlation matrix; common practice, e.g. Seber & Wild,
+    *Nonlinear Regression*, 1989, sec. 2.1.4, from memory), which is ``(U^T U)^-1`` plus this
+    term of ``g = (U^T U)^-1 U^T``. The fit adds the term to its plain covariance, whose
+    unconstrained directions keep their huge floor variance (:func:`_covariance`).
+    """
+    p, q, rho = pairs
+    if rho.size == 0:
+        return np.zeros(g.shape[0]) if diagonal else np.zeros((g.shape[0], g.shape[0]))
+    if diagonal:
+        return 2.0 * np.sum(g[:, p] * g[:, q] * rho, axis=1)
+    cross = (g[:, p] * rho) @ g[:, q].T
+    return cross + cross.T
+
+
+def _correlated_noise(rng: np.random.Generator, n: int, pairs: tuple[NDArray, NDArray, NDArray]) -> NDArray:
+    """Standard normal noise of ``n`` fitted bins with the correlation of ``pairs`` (unit variance).
+
+    Banded Cholesky factor of the correlation matrix; if the stored coefficients do not make
+    a positive definite matrix (they are estimated per bin), they are shrunk by 10 % until
+    they do (independent noise after 20 tries).
+    """
+    z = rng.standard_normal(n)
+    p, q, rho = pairs
+    if rho.size == 0 or n == 0:
+        return z
+    band = int(np.max(q - p))
+    for shrink in 0.9 ** np.arange(20):
+        ab = np.zeros((band + 1, n))
+        ab[band] = 1.0
+        ab[band - (q - p), q] = rho * shrink
+        try:
+            upper = cholesky_banded(ab, lower=False)
+        except np.linalg.LinAlgError:
+            continue
+        # R = U^T U: the noise U^T z has covariance R
+        out = np.zeros(n)
+        for k in range(band + 1):
+            out[k:] += upper[band - k, k:] * z[: n - k] if k else upper[band] * z
+        return out
+    return z
+
+
 def _correlation_factor(spectrum, good: NDArray) -> float:
     """``1 + 2 sum_lag rho``, the median over good bins: by how much correlated bins overstate
     chi-square differences taken as independent (1 without correlations)."""
@@ -1475,7 +1555,7 @@ def _bootstrap_group_covariance(model: _Model, problem: _Problem, x: NDArray, *,
     draws = []
     try:
         for _ in range(int(n_draws)):
-            problem.data = centre + noise_scale * rng.standard_normal(centre.size) / problem.weight
+            problem.data = centre + noise_scale * _correlated_noise(rng, centre.size, problem.pairs) / problem.weight
             problem.prior = {n: (prior_at[n] + noise_scale * sd * rng.standard_normal(), sd)
                              for n, (_, sd) in prior0.items()}
             with np.errstate(over="ignore", under="ignore", invalid="ignore"):
@@ -1594,10 +1674,14 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
     # group intensities only through their own dependence on it (_covariance).
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         cov_plain, col_scale = _covariance(jac)
-        cov_unit = cov_plain * max(1.0, chi2_red)
         qj = _quantity_jacobian(model) / col_scale
-        qcov = qj @ cov_unit @ qj.T
-        sd = dict(zip(names, np.sqrt(np.clip(np.diag(cov_unit), 0, None)) / col_scale))
+        # the bins' shared noise (problem.pairs) widens the errors of a fit that weighs them as
+        # independent: the sandwich covariance (_pair_term)
+        unit = jac[:n_data] / col_scale
+        noise_scale2 = max(1.0, chi2_red)
+        qcov = (qj @ cov_plain @ qj.T + _pair_term((qj @ cov_plain) @ unit.T, problem.pairs)) * noise_scale2
+        var = np.diag(cov_plain) + _pair_term(cov_plain @ unit.T, problem.pairs, diagonal=True)
+        sd = dict(zip(names, np.sqrt(np.clip(var * noise_scale2, 0, None)) / col_scale))
     if not np.all(np.isfinite(qcov[-3:, -3:])):
         return PlasmaFit.failed("the fit leaves the Na/Mg/Fe group intensities unconstrained "
                                 "(non-finite covariance)", n_bins)
@@ -1915,11 +1999,13 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     trials = []
     reason = "optimiser failed"
     linear_starts: dict = {}
+    pairs = _bin_pairs(spectrum, good)
     for t_start, tau_start in starts:
         model = build()
         _initialise(model, flux, err, good, tau_start=tau_start,
                     temperatures_k=grid if t_start is None else [t_start], memo=linear_starts)
         problem = _Problem(model, flux, err, good, prior=model.group_prior | prior)
+        problem.pairs = pairs
         try:
             result = _solve(problem, max_nfev=_START_NFEV if len(starts) > 1 else max_nfev)
         except (ValueError, np.linalg.LinAlgError) as exc:  # pragma: no cover - defensive

@@ -1085,14 +1085,15 @@ class _Problem:
     """Residuals and Jacobian of one model against one spectrum (internal)."""
 
     def __init__(self, model: _Model, flux: NDArray, err: NDArray, good: NDArray,
-                 prior: dict[str, tuple[float, float]] | None = None):
+                 prior: dict[str, tuple[float, float]] | None = None,
+                 pairs: tuple[NDArray, NDArray, NDArray] | None = None):
         self.model, self.good = model, good
         self.data = flux[good]
         self.weight = 1.0 / err[good]
         self.prior = prior or {}
-        # correlated pairs of fitted bins (positions among the good bins, coefficient):
-        # see _bin_pairs; empty when the spectrum carries no correlations
-        self.pairs: tuple[NDArray, NDArray, NDArray] = (np.zeros(0, int), np.zeros(0, int), np.zeros(0))
+        # correlated pairs of fitted bins (positions among the good bins, coefficient;
+        # _bin_pairs): none when the spectrum carries no correlations
+        self.pairs = pairs if pairs is not None else (np.zeros(0, int), np.zeros(0, int), np.zeros(0))
 
     def _prior_residuals(self) -> list[float]:
         return [(self.model.value(n) - mu) / sd for n, (mu, sd) in self.prior.items()
@@ -2004,8 +2005,7 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
         model = build()
         _initialise(model, flux, err, good, tau_start=tau_start,
                     temperatures_k=grid if t_start is None else [t_start], memo=linear_starts)
-        problem = _Problem(model, flux, err, good, prior=model.group_prior | prior)
-        problem.pairs = pairs
+        problem = _Problem(model, flux, err, good, prior=model.group_prior | prior, pairs=pairs)
         try:
             result = _solve(problem, max_nfev=_START_NFEV if len(starts) > 1 else max_nfev)
         except (ValueError, np.linalg.LinAlgError) as exc:  # pragma: no cover - defensive

@@ -780,6 +780,14 @@ def test_end_exposures_take_the_light_slope_from_the_measured_centroid():
     got = _light_centroid_fraction(t, e, exposures, measured={0: 0.3, 4: -0.3, 7: -0.25})
     assert_allclose(got[[0, 7]], [0.3, -0.25], atol=1e-6)
     assert_allclose(got[1:7], plain[1:7], atol=1e-12)
+    # an exposure without a measured energy (a saturated zeroth order) makes its own slope and
+    # its neighbours' rough: there the measured centroid places the light as well
+    known = np.ones(t.size, bool)
+    known[4] = False
+    measured = {k: 0.1 * (k - 3.5) for k in range(t.size)}
+    got = _light_centroid_fraction(t, e, exposures, measured=measured, energy_known=known)
+    assert_allclose(got[[0, 3, 4, 5, 7]], [measured[k] for k in (0, 3, 4, 5, 7)], atol=1e-6)
+    assert_allclose(got[[1, 2, 6]], plain[[1, 2, 6]], atol=1e-12)
 
 # --------------------------------------------------------------------------- black-level floor of faint spectra
 

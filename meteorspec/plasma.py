@@ -1349,14 +1349,15 @@ _SCAN_MIN_GAIN = 25.0
 5-sigma convention for a detection (common practice)."""
 
 
-def _bin_pairs(spectrum, good: NDArray) -> tuple[NDArray, NDArray, NDArray]:
+def _bin_pairs(correlation: ArrayLike | None, good: NDArray) -> tuple[NDArray, NDArray, NDArray]:
     """Pairs of fitted bins whose noise is correlated: positions ``p < q`` among the good bins
-    and their coefficient (``Spectrum.correlation``, per lag; empty without correlations).
+    and their coefficient (``correlation``: per bin and lag, as ``Spectrum.correlation`` or one
+    frame's ``FrameSpectra.correlation``; empty without correlations).
 
     A pixel spreads over two to several bins, so neighbouring bins share noise (0.64 and 0.14
     at lags 1 and 2 on the default grid of seed-6 event 12 of bench/plasma_end_to_end.py).
     """
-    corr = np.asarray(getattr(spectrum, "correlation", np.zeros((0, 0))), float)
+    corr = np.asarray(np.zeros((0, 0)) if correlation is None else correlation, float)
     empty = (np.zeros(0, int), np.zeros(0, int), np.zeros(0))
     if corr.ndim != 2 or corr.shape[0] != good.size or corr.shape[1] == 0:
         return empty
@@ -2000,7 +2001,7 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     trials = []
     reason = "optimiser failed"
     linear_starts: dict = {}
-    pairs = _bin_pairs(spectrum, good)
+    pairs = _bin_pairs(getattr(spectrum, "correlation", None), good)
     for t_start, tau_start in starts:
         model = build()
         _initialise(model, flux, err, good, tau_start=tau_start,
@@ -2277,6 +2278,9 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
     wf_params = whole_flight_fit.parameters
     metal = cfg["component"] != "air"
     line_index = np.concatenate([cfg["line_index"][metal], cfg["line_index"][~metal]])
+    corr_all = np.asarray(getattr(frame_spectra, "correlation", np.zeros((0, 0, 0))), float)
+    if corr_all.ndim != 3 or corr_all.shape[:2] != flux_all.shape:
+        corr_all = None
     out = []
     for k in range(flux_all.shape[0]):
         flux, var = flux_all[k], var_all[k]
@@ -2315,7 +2319,8 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
             model.params["log_t"].free = True
             prior = {"log_t": (wf_params["log_t"],
                                temperature_prior_k / (_LN10 * 10.0 ** wf_params["log_t"]))}
-        problem = _Problem(model, flux, err, good, prior=prior)
+        problem = _Problem(model, flux, err, good, prior=prior,
+                           pairs=_bin_pairs(None if corr_all is None else corr_all[k], good))
         result = _solve(problem, max_nfev=max_nfev)
         if result.status < 0 or not np.all(np.isfinite(result.x)):
             out.append(PlasmaFit.failed(f"frame {k}: optimiser failed: {result.message}",

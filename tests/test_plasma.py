@@ -730,6 +730,20 @@ def test_per_frame_fits_follow_the_light_curve(line_list):
             expected = share[k] * wf.group_intensity[g] / share.sum()
             assert abs(f.group_intensity[g] - expected) < 4 * f.group_intensity_err[g] \
                 + 0.02 * expected, (k, g)
+    # frames whose neighbouring bins share noise (FrameSpectra.correlation, per bin and lag):
+    # the same values, with the sandwich errors of a fit that weighs the bins as independent
+    # (tests/test_plasma_covariance.py). These correlations widen them by at most 1.60, the root
+    # of the correlation matrix's largest eigenvalue, which is at most 1 + 2 (0.64 + 0.14) (a
+    # banded Toeplitz matrix: Gershgorin's theorem, common practice); here (lines of 2.5 nm FWHM
+    # on 1 nm bins) by 1.22-1.42
+    frames.correlation = np.zeros(flux.shape + (2,))
+    frames.correlation[:, :, 0], frames.correlation[:, :, 1] = 0.64, 0.14
+    wide = plasma.fit_plasma_per_frame(frames, wf, fwhm_nm=2.5)
+    for k in (0, 1, 3):
+        for g in plasma.GROUPS:
+            assert wide[k].group_intensity[g] == pytest.approx(fits[k].group_intensity[g], rel=1e-9)
+            ratio = wide[k].group_intensity_err[g] / fits[k].group_intensity_err[g]
+            assert 1.15 < ratio < 1.61, (k, g, ratio)
 
 
 def test_fit_failures_are_falsy_with_reason(line_list):

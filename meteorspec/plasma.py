@@ -38,9 +38,10 @@ The observed flux density (data units per nm) in bin ``k`` is
 * Atmospheric lines (O I, N I) are not in LTE with the meteor; each of their strongest
   multiplets gets its own amplitude ``a_j`` (energy, data units x nm), the rest of a species
   one common amplitude; shares ``s_ij`` within an amplitude are optically thin LTE at 10 000 K.
-* N2 first-positive bands: see :data:`N2_BAND_HEADS_NM`; two non-negative amplitudes per
-  Delta-v sequence (its blue and red end, linear in between), or at coarse resolution one
-  amplitude for the system with fixed head ratios (:data:`N2_HEAD_STRENGTHS`).
+* N2 first-positive bands: see :data:`N2_BAND_HEADS_NM`; three non-negative amplitudes per
+  Delta-v sequence (the heads' strengths a quadratic along it, :func:`n2_band_samples`), or
+  at coarse resolution one amplitude for the system with fixed head ratios
+  (:data:`N2_HEAD_STRENGTHS`).
 * Continuum: Legendre polynomial in wavelength over the fitted range.
 * Response factor: all lines and bands are multiplied by ``1 + sum_k r_k P_k(x)`` (Legendre,
   degree ``response_degree``, default 2; each coefficient with a Gaussian prior of width
@@ -133,9 +134,9 @@ N2_HEAD_STRENGTHS: dict[int, tuple[float, ...]] = {
 }
 N2_TIE_FWHM_NM = 15.0
 """Above this instrument FWHM at Na I D the N2 bands are tied by default: the Delta-v = 4
-sequence (585-613 nm) and Na I D (589 nm) then have nearly the same blurred shape, and two
-free amplitudes for that sequence take the Na light (on simulated 21-40 nm FWHM events the
-median |na - truth| fell from 0.19 to 0.04 when tied)."""
+sequence (585-613 nm) and Na I D (589 nm) then have nearly the same blurred shape, and free
+amplitudes for that sequence take the Na light (on simulated 21-40 nm FWHM events the
+median |na - truth| fell from 0.19 to 0.04 when tied, measured with two per sequence)."""
 
 # Standard atomic weights (IUPAC, from memory), for the thermal Doppler width only: a 1 %
 # error in the mass changes the width by 0.5 %.
@@ -513,12 +514,26 @@ class _Profiles:
         return self._derivatives
 
 
-def n2_band_samples(tied: bool = False) -> tuple[NDArray, NDArray, list[str]]:
+def n2_band_samples(tied: bool = False, degree: int = 2) -> tuple[NDArray, NDArray, list[str]]:
     """Sample wavelengths and (n_samples, n_params) weights of the N2 band model.
 
     ``tied``: one amplitude for the whole system, heads in the ratios of
-    :data:`N2_HEAD_STRENGTHS`; otherwise two per Delta-v sequence (blue and red end).
+    :data:`N2_HEAD_STRENGTHS`. Otherwise ``degree + 1`` non-negative amplitudes per
+    Delta-v sequence: the heads' strengths along the sequence are a Bernstein polynomial
+    of that degree in the head's place ``x`` (0 at the bluest head, 1 at the reddest),
+    ``sum_j a_j C(d, j) x^j (1 - x)^(d - j)``, named ``n2_dv<dv>_blue``, ``_mid`` (degree 2),
+    ``_red``. Non-negative amplitudes keep every head non-negative.
+
+    Degree 2 (the plasma fit's) lets a sequence's strengths rise and fall again: a
+    vibrational distribution times Franck-Condon factors peaks inside a sequence, as the
+    tied strengths do. Degree 1 (a straight line from the blue to the red end) cannot, and
+    on the noise-free truth of bench/plasma_end_to_end.py --seed 5 events at 9-11 nm FWHM
+    left residuals of 7-12 sigma across the Delta-v = 3 sequence (reduced chi^2 2.4-7.5 on
+    events 1, 13, 18 and 19; 0.7-1.2 with degree 2). The wavelength calibrator keeps degree
+    1 (:mod:`meteorspec.calfit`).
     """
+    if int(degree) not in (1, 2):
+        raise ValueError(f"degree must be 1 or 2, got {degree!r}")
     offsets = np.arange(0.0, _N2_EXTENT_NM, _N2_STEP_NM)
     shape = np.exp(-offsets / _N2_TAIL_NM)
     shape /= shape.sum()
@@ -530,14 +545,16 @@ def n2_band_samples(tied: bool = False) -> tuple[NDArray, NDArray, list[str]]:
                 wl.append(head - offsets)
                 cols.append((strength / total * shape)[:, None])
         return np.concatenate(wl), np.concatenate(cols), ["n2_system"]
-    n_params = 2 * len(N2_BAND_HEADS_NM)
+    d = int(degree)
+    labels = ("blue", "red") if d == 1 else ("blue", "mid", "red")
+    n_params = (d + 1) * len(N2_BAND_HEADS_NM)
     for j, (dv, heads) in enumerate(N2_BAND_HEADS_NM.items()):
-        names += [f"n2_dv{dv}_blue", f"n2_dv{dv}_red"]
+        names += [f"n2_dv{dv}_{label}" for label in labels]
         frac = np.linspace(0.0, 1.0, len(heads)) if len(heads) > 1 else np.zeros(1)
         for head, f in zip(heads, frac):
             w = np.zeros((offsets.size, n_params))
-            w[:, 2 * j] = (1.0 - f) * shape
-            w[:, 2 * j + 1] = f * shape
+            for i in range(d + 1):
+                w[:, (d + 1) * j + i] = math.comb(d, i) * f**i * (1.0 - f) ** (d - i) * shape
             wl.append(head - offsets)
             cols.append(w)
     return np.concatenate(wl), np.concatenate(cols), names
@@ -1853,8 +1870,8 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
         fix. 0 disables it.
     n2_tied : bool or None
         True: the N2 first-positive bands are one system with fixed head ratios
-        (:data:`N2_HEAD_STRENGTHS`, one amplitude); False: two free amplitudes per Delta-v
-        sequence. None (default): tied when the instrument FWHM at 589.3 nm exceeds
+        (:data:`N2_HEAD_STRENGTHS`, one amplitude); False: three free amplitudes per Delta-v
+        sequence (:func:`n2_band_samples`). None (default): tied when the instrument FWHM at 589.3 nm exceeds
         :data:`N2_TIE_FWHM_NM`, where Na I D and the Delta-v = 4 sequence are not separable
         otherwise.
     response_nm : (wavelength_nm, response) arrays, optional

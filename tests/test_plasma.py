@@ -463,7 +463,7 @@ def test_group_templates_split_the_model_exactly(bright_fit):
 def test_n2_system_is_tied_at_coarse_resolution(bright_fit):
     # Tied N2: one amplitude; each head carries its N2_HEAD_STRENGTHS share of the system
     # (shares sum to 1, energy conserved); the default ties only above N2_TIE_FWHM_NM at Na D
-    # (the 2.5 nm fixture keeps two amplitudes per sequence).
+    # (the 2.5 nm fixture keeps three amplitudes per sequence).
     wl, weight, names = plasma.n2_band_samples(tied=True)
     assert names == ["n2_system"] and weight.sum() == pytest.approx(1.0, rel=1e-12)
     heads = [h for dv in plasma.N2_BAND_HEADS_NM.values() for h in dv]
@@ -472,7 +472,34 @@ def test_n2_system_is_tied_at_coarse_resolution(bright_fit):
     assert_allclose(per_head, strengths / strengths.sum(), rtol=1e-12)
     _, _, fit = bright_fit
     assert fit.config["n2_tied"] is False
-    assert len([n for n in fit.parameters if n.startswith("n2_")]) == 2 * len(plasma.N2_BAND_HEADS_NM)
+    assert len([n for n in fit.parameters if n.startswith("n2_")]) == 3 * len(plasma.N2_BAND_HEADS_NM)
+
+
+def test_n2_sequences_are_quadratic_and_hold_a_peaked_distribution():
+    # Untied N2 (the plasma fit's degree 2): three non-negative Bernstein amplitudes per
+    # Delta-v sequence. Equal amplitudes give every head the same strength (the Bernstein
+    # polynomials of a degree sum to 1: the binomial theorem), and the quadratic holds the
+    # tied strengths (from memory, peaked inside Delta-v = 2 and 3) within 15 % per head,
+    # which a straight line from the blue to the red end (degree 1, the calibrator's) cannot
+    # (63 % off at the (4,2) head of Delta-v = 2).
+    from scipy.optimize import nnls
+
+    heads = [h for dv in plasma.N2_BAND_HEADS_NM.values() for h in dv]
+    strengths = np.array([x for dv in plasma.N2_HEAD_STRENGTHS.values() for x in dv])
+    worst = {}
+    for degree in (1, 2):
+        wl, weight, names = plasma.n2_band_samples(degree=degree)
+        assert len(names) == (degree + 1) * len(plasma.N2_BAND_HEADS_NM)
+        assert np.all(weight >= 0.0)
+        per_head = weight.reshape(len(heads), -1, weight.shape[1]).sum(axis=1)
+        # equal amplitudes within each sequence: one band shape (sum 1) per head
+        assert_allclose(per_head.sum(axis=1), 1.0, rtol=1e-12)
+        amp, _ = nnls(per_head, strengths)
+        worst[degree] = float(np.max(np.abs(per_head @ amp - strengths) / strengths))
+    assert worst[2] < 0.15 < 0.5 < worst[1]
+    assert plasma.n2_band_samples(degree=1)[2][:2] == ["n2_dv1_blue", "n2_dv1_red"]
+    with pytest.raises(ValueError, match="degree"):
+        plasma.n2_band_samples(degree=3)
 
 
 def _coarse_scene(line_list):

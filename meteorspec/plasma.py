@@ -1698,10 +1698,15 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
         # independent: the sandwich covariance (_pair_term)
         unit = jac[:n_data] / col_scale
         noise_scale2 = max(1.0, chi2_red)
-        qcov = (qj @ cov_plain @ qj.T + _pair_term((qj @ cov_plain) @ unit.T, problem.pairs)) * noise_scale2
+        # only the quantities' variances and the groups' 3 x 3 block are used: the full matrix
+        # over every line would cost (number of lines)^2 times the correlated bin pairs
+        spread = qj @ cov_plain
+        shared = spread @ unit.T
+        q_var = (np.einsum("ij,ij->i", spread, qj) + _pair_term(shared, problem.pairs, diagonal=True)) * noise_scale2
+        g_cov = (spread[-3:] @ qj[-3:].T + _pair_term(shared[-3:], problem.pairs)) * noise_scale2
         var = np.diag(cov_plain) + _pair_term(cov_plain @ unit.T, problem.pairs, diagonal=True)
         sd = dict(zip(names, np.sqrt(np.clip(var * noise_scale2, 0, None)) / col_scale))
-    if not np.all(np.isfinite(qcov[-3:, -3:])):
+    if not np.all(np.isfinite(g_cov)):
         return PlasmaFit.failed("the fit leaves the Na/Mg/Fe group intensities unconstrained "
                                 "(non-finite covariance)", n_bins)
     error_method = "linear"
@@ -1714,13 +1719,12 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
                                                noise_scale=math.sqrt(max(1.0, chi2_red)),
                                                n_draws=bootstrap_draws)
             if boot is not None and np.all(np.isfinite(boot)):
-                qcov = qcov.copy()
-                qcov[-3:, -3:] = boot
+                g_cov = boot
+                q_var[-3:] = np.diag(boot)
                 error_method = "bootstrap"
     q = _quantities(model)
-    q_err = np.sqrt(np.clip(np.diag(qcov), 0, None))
+    q_err = np.sqrt(np.clip(q_var, 0, None))
     n_metal, n_air = len(model.metal), len(model.air)
-    g_cov = qcov[-3:, -3:]
 
     energy, _, tau = model.line_state()
     p_metal = model.profiles()[0]

@@ -502,6 +502,43 @@ def test_n2_sequences_are_quadratic_and_hold_a_peaked_distribution():
         plasma.n2_band_samples(degree=3)
 
 
+def test_weak_lines_are_modelled(line_list):
+    # Every allowed line of the NIST extract (not the model's selection) rendered thin at
+    # 10 nm FWHM by the independent renderer, noise-free, Mg-poor (mg 0.03). The lines below
+    # 1e-3 of their species' strongest carry 1.6 % of the Fe I light (4500 K) but fill the
+    # gaps between strong lines (500-512 nm beside Mg I b): a model without them reads mg
+    # 0.013 low; with the default threshold (1e-4) the group split is right to 0.004
+    # (the lines left out carry 0.24 % of the Fe I light).
+    lo, hi, fwhm, step = 420.0, 680.0, 10.0, 2.0
+    columns = dict(COLUMNS, **{"Mg I": 3e16, "Na I": 5e14})
+    usable = ((line_list.wavelength_nm > lo - 40) & (line_list.wavelength_nm < hi + 40)
+              & (line_list.transition_type == "E1"))
+    centres, energies, groups = [], [], []
+    for species_list, t in ((plasma.MAIN_SPECIES, 4600.0), (plasma.HOT_SPECIES, 10000.0)):
+        for sp in species_list:
+            sel = line_list.select(np.flatnonzero(usable & (line_list.species == sp)))
+            centres.append(np.asarray(sel.wavelength_nm))
+            energies.append(1e4 * np.asarray(atomic.line_energy_rate(sel, t, columns[sp])))
+            groups.append(np.asarray(sel.group))
+    c, e, g = (np.concatenate(a) for a in (centres, energies, groups))
+    wl = np.arange(lo, hi, step) + step / 2
+    bw = np.full(wl.size, step)
+    flux = _render(wl, bw, c, e, fwhm, step_nm=0.02)
+    spec = SimpleNamespace(wavelength_nm=wl, bin_width_nm=bw, flux=flux, flux_err=np.full(wl.size, flux.max() / 300),
+                           mask=np.zeros(wl.size, bool))
+    truth = np.array([e[g == k].sum() for k in plasma.GROUPS])
+    truth /= truth.sum()
+    assert 0.02 < truth[1] < 0.04
+    errors = {}
+    for threshold in (plasma.MODEL_LINE_MIN_RELATIVE, 1e-3):
+        fit = plasma.fit_plasma(spec, fwhm_nm=fwhm, min_relative=threshold, self_absorption=False)
+        intensity = np.array([fit.group_intensity[k] for k in plasma.GROUPS])
+        errors[threshold] = np.abs(intensity / intensity.sum() - truth)
+    assert plasma.MODEL_LINE_MIN_RELATIVE == 1e-4
+    assert errors[1e-4].max() < 0.004
+    assert errors[1e-3][1] > 0.008
+
+
 def _coarse_scene(line_list):
     """A 30 nm FWHM camera with 5 nm bins over 360-880 nm, a response rising from 0.1 at 360 nm to
     1 at 600 nm (the blue fall of a silicon sensor behind glass, common practice), and the metal

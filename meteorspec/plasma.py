@@ -346,9 +346,9 @@ line_energy_rate` at 4500 K, Fe II at 10 000 K) the lines below 1e-3 carry 1.6 %
 (435 lines between 1e-4 and 1e-3) and 4.9 % of the Fe II light, below 1e-4 0.24 % and 0.36 %. The
 1.6 % is not spread evenly: where no strong line falls (500-512 nm) it is the spectrum, and a model
 without it moves the Mg I b blend. Fitted to their noise-free truth (bench/plasma_end_to_end.py
---oracle, --seed 6 events 8, 18, 30 at 9.5-11.3 nm FWHM) the model with 1e-3 was off by 0.057,
-0.046 and 0.034 (mg high), with 1e-4 by 0.003, 0.009 and 0.003 (1e-5: the same); the fit takes
-1.5-2 times longer (2179 lines instead of 848)."""
+--oracle --seed 6, events 8 and 30 at 9.5 and 11.3 nm FWHM) the model with 1e-3 was off by 0.058
+and 0.034 (mg high), with 1e-4 by 0.004 and 0.003 (1e-5 gave the same in a scratch refit); a
+whole-flight fit takes 1.5-2 times longer (2179 lines instead of 848)."""
 
 
 def select_model_lines(line_list: LineList, lo_nm: float, hi_nm: float, *,

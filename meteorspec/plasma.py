@@ -1409,6 +1409,9 @@ def _bin_pairs(correlation: ArrayLike | None, good: NDArray) -> tuple[NDArray, N
     return np.concatenate(ps), np.concatenate(qs), np.concatenate(rs)
 
 
+_PAIR_BLOCK = 2048  # correlated bin pairs per block of _pair_term (memory, not results)
+
+
 def _pair_term(g: NDArray, pairs: tuple[NDArray, NDArray, NDArray], *, diagonal: bool = False) -> NDArray:
     """``sum over correlated pairs (p, q) of rho (g_p g_q^T + g_q g_p^T)``: the share of the bins'
     correlation in the covariance ``g R g^T`` of linear combinations ``g`` (rows) of the bins.
@@ -1422,12 +1425,17 @@ def _pair_term(g: NDArray, pairs: tuple[NDArray, NDArray, NDArray], *, diagonal:
     unconstrained directions keep their huge floor variance (:func:`_covariance`).
     """
     p, q, rho = pairs
-    if rho.size == 0:
-        return np.zeros(g.shape[0]) if diagonal else np.zeros((g.shape[0], g.shape[0]))
-    if diagonal:
-        return 2.0 * np.sum(g[:, p] * g[:, q] * rho, axis=1)
-    cross = (g[:, p] * rho) @ g[:, q].T
-    return cross + cross.T
+    out = np.zeros(g.shape[0]) if diagonal else np.zeros((g.shape[0], g.shape[0]))
+    # in blocks of pairs: g[:, p] over every pair at once is rows x pairs (a spectrum of 2000
+    # bins with 30 lags of correlation and 2179 line rows: gigabytes per temporary)
+    for start in range(0, rho.size, _PAIR_BLOCK):
+        sl = slice(start, start + _PAIR_BLOCK)
+        gp, gq = g[:, p[sl]], g[:, q[sl]]
+        if diagonal:
+            out += np.einsum("ij,ij,j->i", gp, gq, rho[sl])
+        else:
+            out += (gp * rho[sl]) @ gq.T
+    return 2.0 * out if diagonal else out + out.T
 
 
 def _correlated_noise(rng: np.random.Generator, n: int, pairs: tuple[NDArray, NDArray, NDArray]) -> NDArray:

@@ -61,7 +61,9 @@ spectrum that gave the composition, scaled to that spectrum (one factor, weighte
 squares) and fitted with exactly the call's settings (``fit_plasma`` is wrapped while the
 pipeline runs to keep the call). Its composition error is the model's own (the model that
 cannot represent the simulator's spectrum, or a degeneracy the priors settle), apart from
-the extraction and calibration; the error of the pipeline's fit minus it is the data's share.
+the extraction and calibration; where the pipeline's error is large and this one small, the
+data (extraction, calibration, noise) carry it. Errors do not subtract: the two are compared
+event by event.
 The random events are rendered without an atmosphere by default, which the noise-free truth
 assumes (with ``--keep-pointing`` it is skipped).
 

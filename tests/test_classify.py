@@ -880,6 +880,32 @@ def _saturate_d(frames, na_curve: np.ndarray, level: float = 0.3) -> np.ndarray:
     return run
 
 
+def test_weak_lines_that_disagree_with_d_where_both_are_measured_do_not_time_it():
+    # As the test below, but the weak-line curve reads 2.3 times too much on the two frames after
+    # D's saturated run (as simulated event 18 of bench/plasma_end_to_end.py --seed 6 did on
+    # one): scaled to D on the frames that measure both, it disagrees with D's own values far
+    # beyond their errors (chi-square probability < WEAK_MIN_AGREEMENT_P), so it times nothing
+    # and the top stays unbounded. Unchanged, the same curve times the peak (test below).
+    n = 30
+    na, air = _bell(n, 14.4, 5.0, 3.5, 20000.0), _bell(n, 18.0, 6.0, 4.0, 8000.0)
+    frames, templates, weak_templates, fwhm = _nir_frames(na, air, seed=11)
+    run = _saturate_d(frames, na)
+    window = cl.window_light_curves(frames, templates, fwhm_nm=fwhm)
+    flux, err, lost = cl.weak_line_curve(frames, weak_templates, fwhm_nm=fwhm, reference_energy=na.sum())
+    t = frames.time_s
+    flat = {g: np.full(n, 100.0) for g in ("na", "mg", "fe")}
+    errs = {g: np.full(n, 1.0) for g in ("na", "mg", "fe")}
+    good = cl.time_resolved(t, flat, errs, window_curves=window, weak_curves={"na": (flux, err, lost)})
+    assert "na_peak_weak_lines" in good.flags
+    after = run[-1] + np.array([1, 2])
+    assert np.all(np.isfinite(window["na"][0][after]))
+    bad = flux.copy()
+    bad[after] *= 2.3
+    tr = cl.time_resolved(t, flat, errs, window_curves=window, weak_curves={"na": (bad, err, lost)})
+    assert math.isnan(tr.peak_time_s["Na I"])
+    assert "na_peak_unbounded_saturated" in tr.flags and "na_peak_weak_lines" not in tr.flags
+
+
 def test_weak_lines_time_the_na_peak_where_d_is_saturated_over_the_top():
     # Na peaks at frame 14.4 (D peak energy 20000: the 819 nm lines 400), the air lines at frame
     # 18. D is masked over frames 9-19 (11 frames: no bridge), so its own curve gives no time.

@@ -53,6 +53,10 @@ renders the atmosphere and lets the pipeline correct it. ``--samples`` runs the 
 they are (rendered through the atmosphere; station files with ``[pointing]``) in the chosen modes
 other than ``perturbed``.
 
+``--noise-draw K`` renders every event with another draw of its sky, photon and read noise
+(``EventSpec.noise_draw``; the scene, stars and emission unchanged): run with several K on the
+same events, it shows how far noise alone moves an event's composition and Na peak.
+
 ``--oracle`` also fits each event's noise-free truth: the simulator's emission
 (``simulate.emission.build_emission``: every line, N2 band and continuum sample at its share),
 blurred by Gaussians of the pipeline's instrument FWHM times the fit's width factor, recorded
@@ -388,6 +392,8 @@ def run_random(args) -> dict[str, list[dict]]:
     specs = perturbed_specs(args.n, args.seed)
     if args.only:
         specs = [specs[k] for k in args.only]
+    if args.noise_draw:
+        specs = [dataclasses.replace(s, noise_draw=args.noise_draw) for s in specs]
     rows: dict[str, list[dict]] = {m: [] for m in args.modes}
     out = open(args.out, "a") if args.out else None
     with tempfile.TemporaryDirectory(prefix="ms_e2e_") as tmp:
@@ -409,7 +415,8 @@ def run_random(args) -> dict[str, list[dict]]:
                                                     refine_geometry=(mode != "true"))
                 oracle = oracle_fit(spec, recorder.calls, result) if args.oracle else {}
                 r = measure(result, sim.truth, snr=snr) | oracle | {
-                    "mode": mode, "kind": kind, "seed": args.seed, "base_station": spec.station,
+                    "mode": mode, "kind": kind, "seed": args.seed, "noise_draw": args.noise_draw,
+                    "base_station": spec.station,
                     "binned": spec.station != "QM03", "projection": spec.true_station().lens.projection,
                     "interlaced": bool(spec.true_station().camera.interlaced)}
                 rows[mode].append(r)
@@ -475,6 +482,8 @@ def main(argv=None) -> int:
     ap.add_argument("--summarise", type=Path, metavar="JSONL",
                     help="print the summary of an earlier run's --out file instead of running")
     ap.add_argument("--out", type=Path, help="append one JSON line per event and mode")
+    ap.add_argument("--noise-draw", type=int, default=0,
+                    help="render with another draw of the noise (0: the seed's own)")
     ap.add_argument("--oracle", action="store_true",
                     help="also fit each event's noise-free truth on the pipeline's grid and settings")
     args = ap.parse_args(argv)

@@ -68,6 +68,16 @@ def test_same_spec_gives_identical_bytes(tmp_path):
     assert a[video] != _files(tmp_path / "c")[video]
 
 
+def test_noise_draw_changes_the_noise_only():
+    # Another noise draw of the same scene: the noise-free render (the scene) is identical,
+    # the noisy pixels differ, and draw 0 is the seed's own render (earlier benches unchanged).
+    spec = tiny()
+    noisy = [render_event(dataclasses.replace(spec, noise_draw=k)) for k in (0, 1)]
+    assert np.array_equal(noisy[0].linear_clean, noisy[1].linear_clean)
+    assert not np.array_equal(noisy[0].stored, noisy[1].stored)
+    assert np.array_equal(noisy[0].stored, render_event(spec).stored)
+
+
 @pytest.mark.parametrize("form", ["avi", "fits", "tiff", "fits-frames"])
 def test_written_event_loads_through_the_readers(tmp_path, form):
     spec = tiny(video_form=form, delta_grooves_frac=-0.005, delta_dispersion_deg=0.5, delta_tilt_deg=-3.0)

@@ -129,6 +129,9 @@ class EventSpec:
         ``[pointing]`` (without it there is no altitude); True without ``[pointing]`` is an
         error at render time.
     seed : int
+    noise_draw : int
+        Another draw of the sky, photon and read noise of the same scene (0: the seed's own):
+        the scene, the stars and the emission stay those of ``seed``.
     """
 
     station: str
@@ -168,6 +171,7 @@ class EventSpec:
     delta_tilt_deg: float = 0.0
     atmosphere: bool | None = None
     seed: int = 0
+    noise_draw: int = 0
 
     def __post_init__(self) -> None:
         if isinstance(self.overrides, dict):

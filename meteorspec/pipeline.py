@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
+import math
 from dataclasses import asdict
 from pathlib import Path
 
@@ -491,6 +492,46 @@ _MIN_RIDGE_POINTS = 20
 ``calibrate._saturated_start``): fewer come from one or two short cores and leave it loose."""
 
 
+APERTURE_LIGHT_GAIN = 2.0
+"""Factor of first-order light by which the extraction along the measured ridge must exceed the
+station aperture's to replace it when the station's extraction did recover saturated bins (a
+round value: an aperture beside the spectrum loses most of it, 170x on the case in
+:func:`aperture_from_light`; 1.0-1.02x for apertures 0-1 deg off the seeded test event's)."""
+
+
+def _clean_light(a: FrameSpectra, b: FrameSpectra) -> tuple[float, float]:
+    """Light (flux x nm, summed over frames) of two extractions where both record the spectrum
+    unsaturated: each sums its own unmasked, unrecovered bins whose nearest bin of the other
+    (the grids differ a little with the angle) is so too. Masked or recovered bins would
+    measure how each aperture's saturation was handled, not where it sits (a station aperture
+    1-2 deg off the seeded test event's spectrum summed 1.3-3.5 times the light of the one on
+    it when they counted). NaN when the frames differ."""
+    def clean(s: FrameSpectra) -> np.ndarray:
+        flux = np.asarray(s.flux, dtype=float)
+        ok = ~np.asarray(s.mask, dtype=bool) & np.isfinite(flux)
+        rec = np.asarray(getattr(s, "recovered", np.zeros((0, 0), bool)), dtype=bool)
+        return ok & ~rec if rec.shape == ok.shape else ok
+
+    if np.shape(a.flux)[0] != np.shape(b.flux)[0]:
+        return math.nan, math.nan
+    ca, cb = clean(a), clean(b)
+    wa, wb = np.asarray(a.wavelength_nm, dtype=float), np.asarray(b.wavelength_nm, dtype=float)
+    near_b = np.clip(np.searchsorted(wb, wa), 1, wb.size - 1)
+    near_b = np.where(np.abs(wb[near_b - 1] - wa) < np.abs(wb[near_b] - wa), near_b - 1, near_b)
+    near_a = np.clip(np.searchsorted(wa, wb), 1, wa.size - 1)
+    near_a = np.where(np.abs(wa[near_a - 1] - wb) < np.abs(wa[near_a] - wb), near_a - 1, near_a)
+    ba = np.broadcast_to(np.asarray(a.bin_width_nm, dtype=float), wa.shape)
+    bb = np.broadcast_to(np.asarray(b.bin_width_nm, dtype=float), wb.shape)
+    # a bin beyond the other grid's end has no counterpart (its nearest bin does not overlap it)
+    over_a = np.abs(wb[near_b] - wa) < 0.5 * (ba + bb[near_b])
+    over_b = np.abs(wa[near_a] - wb) < 0.5 * (bb + ba[near_a])
+    both_a, both_b = ca & cb[:, near_b] & over_a, cb & ca[:, near_a] & over_b
+    light = [float(np.sum(np.where(m, np.asarray(s.flux, dtype=float), 0.0)
+                          * np.broadcast_to(np.asarray(s.bin_width_nm, dtype=float), m.shape)))
+             for s, m in ((a, both_a), (b, both_b))]
+    return light[0], light[1]
+
+
 def aperture_from_light(stack: FrameStack, background: Background, track: Track, solution: WavelengthSolution,
                         spectra: FrameSpectra, *, camera: Camera, order: int, max_frames: int = 40
                         ) -> tuple[WavelengthSolution, FrameSpectra] | None:
@@ -514,7 +555,14 @@ def aperture_from_light(stack: FrameStack, background: Background, track: Track,
     A blanket rule (the searched angle of every station fallback) moved seeded fireballs
     whose aperture was already on the spectrum, and made their compositions worse
     (``bench/plasma_end_to_end.py --seed 5 --modes perturbed``: 005, 017, 029, 034), so the
-    angle is only replaced where the station's aperture demonstrably misses the light.
+    angle is only replaced where the station's aperture demonstrably misses the light: its
+    saturated bins could not be recovered, or the extraction along the ridge records at
+    least :data:`APERTURE_LIGHT_GAIN` times its light on the bins both record unsaturated
+    (:func:`_clean_light`). The second case: a meteor moving along
+    the dispersion (few lines, station fallback) with the station's angle 3.5 deg off, seed-6
+    event 030 of the same bench, whose station aperture recovered a few bins at its zeroth
+    order end and recorded 1/170 of the ridge's light on the bins both record unsaturated
+    (composition 0.35 off, flagged uncertain; on the ridge 0.016 off).
 
     Returns
     -------
@@ -524,8 +572,9 @@ def aperture_from_light(stack: FrameStack, background: Background, track: Track,
         few ridge points are found, when the fit fails or reaches its bound, or when the
         extraction along the measured angle still lacks a clean profile.
     """
-    if "saturated" not in spectra.flags or "saturation_recovered" in spectra.flags:
+    if "saturated" not in spectra.flags:
         return None
+    profile_lost = "saturation_recovered" not in spectra.flags
     station = solution.geometry
     ridge = ridge_angle(stack, background, track, station, order=order, max_frames=max_frames,
                         min_points=_MIN_RIDGE_POINTS)
@@ -538,6 +587,10 @@ def aperture_from_light(stack: FrameStack, background: Background, track: Track,
     moved = extract_spectra(stack, background, track, geo, camera=camera, order=order)
     if "saturation_recovered" not in moved.flags:
         return None
+    if not profile_lost:
+        station_light, moved_light = _clean_light(spectra, moved)
+        if not moved_light >= APERTURE_LIGHT_GAIN * station_light:
+            return None
     errors = dict(solution.errors) | {"dispersion_angle_deg": err}
     return dataclasses.replace(solution, geometry=geo, values=geometry_values(geo), errors=errors), moved
 

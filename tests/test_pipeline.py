@@ -349,6 +349,34 @@ def test_instrument_fwhm_streak_of_each_line_image_off_axis_on_a_rectilinear_len
     assert_allclose(_fwhm_from_geometry(ev, lam), expected, rtol=1e-4)
 
 
+def test_clean_light_compares_apertures_on_the_bins_both_record_unsaturated():
+    # _clean_light decides whether the ridge's aperture records more of the spectrum than the
+    # station's (aperture_from_light). Two extractions on grids one bin apart (the grid moves a
+    # little with the angle): the light on the bins both record unsaturated, by each one's own
+    # bins; a bin masked or recovered in either counts in neither (saturation handling, not
+    # the aperture's place). Exact sums of constant densities (flux x width).
+    n_frames = 3
+    wa = np.arange(400.0, 500.0, 1.0) + 0.5
+    wb = np.arange(400.0, 501.0, 1.0) + 0.5  # one bin more
+    def frames(wl, density, recovered=None, mask=None):
+        shape = (n_frames, wl.size)
+        return FrameSpectra(wavelength_nm=wl, bin_width_nm=np.ones(wl.size), flux=np.full(shape, density),
+                            variance=np.ones(shape), mask=np.zeros(shape, bool) if mask is None else mask,
+                            time_s=np.arange(n_frames) * 0.04, flags=(), frame_weight=np.ones(n_frames),
+                            recovered=np.zeros(shape, bool) if recovered is None else recovered)
+    a, b = frames(wa, 1.0), frames(wb, 30.0)
+    la, lb = pipeline._clean_light(a, b)
+    assert la == pytest.approx(n_frames * 100 * 1.0) and lb == pytest.approx(n_frames * 100 * 30.0)
+    rec = np.zeros((n_frames, wb.size), bool)
+    rec[:, 40:50] = True  # 440-450 nm recovered in b: out of both sums
+    mask = np.zeros((n_frames, wa.size), bool)
+    mask[1, 60:70] = True  # 460-470 nm masked in a's frame 1: out of both
+    la, lb = pipeline._clean_light(frames(wa, 1.0, mask=mask), frames(wb, 30.0, recovered=rec))
+    kept = n_frames * 90 - 10
+    assert la == pytest.approx(kept * 1.0) and lb == pytest.approx(kept * 30.0)
+    assert all(math.isnan(v) for v in pipeline._clean_light(a, frames(wb, 1.0).select_frames(np.arange(2))))
+
+
 def test_aperture_angle_from_light_only_where_the_station_aperture_misses():
     # A seeded simulator event (QM03, interlaced) bright enough that its group lines saturate,
     # extracted with the truth track. Station angle 3.4 deg off (as the perturbed station file of

@@ -1741,7 +1741,7 @@ def weak_line_curves(frame_spectra: Any, whole_flight_fit: Any, *, fwhm_nm: Arra
 
 
 def _jackknifed_peak(t: NDArray, flux: NDArray, err: NDArray, saturated: NDArray, *,
-                    min_snr: float) -> tuple[float, float, str]:
+                     min_snr: float) -> tuple[float, float, str]:
     """:func:`_window_peak` of a light curve, its sigma at least the jackknife's.
 
     Used for every window curve (:func:`time_resolved`), weak-line curve and deep-wing curve.

@@ -568,7 +568,8 @@ def aperture_from_light(stack: FrameStack, background: Background, track: Track,
     -------
     (solution, spectra) or None
         The solution with the measured angle and the extraction along it; None when the
-        station's extraction already holds a clean profile (or nothing saturates), when too
+        station's extraction already holds a clean profile and at least half the ridge's
+        light on the bins both record unsaturated (or nothing saturates), when too
         few ridge points are found, when the fit fails or reaches its bound, or when the
         extraction along the measured angle still lacks a clean profile.
     """

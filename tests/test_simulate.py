@@ -382,6 +382,9 @@ def test_bad_specs_fail_clearly(tmp_path):
         tiny(video_form="mp4")
     with pytest.raises(ValueError, match="unknown override"):
         tiny(overrides={"camera.colour": 3})
+    for draw in (-1, 1.5):
+        with pytest.raises(ValueError, match="noise_draw"):
+            tiny(noise_draw=draw)
     spec = EventSpec("QM04", video_form="avi", n_frames=2)
     with pytest.raises(ValueError, match="8-bit"):
         simulate_event(spec, tmp_path, truth_dir=tmp_path / "truth")

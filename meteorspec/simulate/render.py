@@ -265,7 +265,7 @@ def _transmission(wavelength_nm: np.ndarray, altitude_deg: np.ndarray,
 
 
 def render_event(spec: EventSpec, *, station: Station | None = None) -> Rendered:
-    """Render all frames of ``spec`` (deterministic in ``spec.seed``).
+    """Render all frames of ``spec`` (deterministic in ``spec.seed`` and ``spec.noise_draw``).
 
     Parameters
     ----------

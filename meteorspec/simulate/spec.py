@@ -189,6 +189,8 @@ class EventSpec:
         comp = (self.na, self.mg, self.fe)
         if min(comp) < 0 or abs(sum(comp) - 1.0) > 1e-9:
             problems.append(f"na, mg, fe must be >= 0 and sum to 1, got {comp}")
+        if not (hasattr(self.noise_draw, "__index__") and self.noise_draw.__index__() >= 0):
+            problems.append(f"noise_draw must be an integer >= 0, got {self.noise_draw!r}")
         if not 11.0 <= self.speed_km_s <= 72.0:
             problems.append(f"speed_km_s must be within [11, 72], got {self.speed_km_s}")
         if not (self.fps > 0 and self.n_frames >= 2):

@@ -517,8 +517,9 @@ class SpectrumFit:
     n_data : int
         Number of samples fitted.
     errors : dict
-        1-sigma of ``grooves_per_mm``, ``dispersion_angle_deg`` (Gauss-Newton covariance,
-        scaled by the reduced chi-square when that exceeds 1).
+        1-sigma of ``grooves_per_mm``, ``dispersion_angle_deg`` and, with the tilt fitted,
+        ``tilt_deg`` and ``tilt_azimuth_deg`` (Gauss-Newton covariance, scaled by the reduced
+        chi-square when that exceeds 1 and by the residuals' correlation).
     n_frames : int
     success : bool
     n_components : int
@@ -656,6 +657,14 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
         errors = {"grooves_per_mm": float(err[0]), "dispersion_angle_deg": float(err[1])}
         if fit_tilt:
             tilt_err = float(max(err[2], err[3]))
+            # tilt and azimuth from the components, first-order propagation (as fit_geometry)
+            tx, ty = p[2], p[3]
+            t = math.hypot(tx, ty)
+            jt = np.array([tx / t, ty / t]) if t > 0 else np.array([1.0, 0.0])
+            errors["tilt_deg"] = float(np.sqrt(jt @ cov[2:4, 2:4] @ jt))
+            if t > 0:
+                ja = np.degrees(np.array([-ty, tx]) / t**2)  # d(azimuth)/d(components), deg per deg
+                errors["tilt_azimuth_deg"] = float(np.sqrt(ja @ cov[2:4, 2:4] @ ja))
     except np.linalg.LinAlgError:
         pass
     # status 0 (evaluation budget used up) still returns the best point found

@@ -1968,10 +1968,17 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
         # feature) 0.96 nm apart, kept (lines 0.31 nm median, 0.66 max; the station's 13.9);
         # seed 4 event 024 (2.4 nm/px, station tilt 2 deg off) 8.86 nm apart, refused (it was
         # 0.90 nm median, 3.04 max, grooves +0.37 %)
+        # Neither reason holds where the fit freed the tilt (its error within
+        # whole_spectrum_max_tilt_err_deg) and matches the spectrum to its noise: the fit is then
+        # kept whatever the features' stretch. On a saturated event that stretch comes from the
+        # ridge of clipped cores and is the weaker reading: seed 4 event 001 (2.85 nm/px, tilt
+        # fitted to 0.13 deg, reduced chi-square 1.00, halves 0.02 nm apart) lay 4.52 nm from
+        # it and was refused for station values 0.43 %, 2.0 deg off (lines 3.7 nm median); kept,
+        # its lines are 0.07 nm median, 0.16 max, grooves 0.009 %, angle 0.012 deg off
         from .calfit import wavelength_disagreement_nm
         apart = wavelength_disagreement_nm(new.geometry, coarse["chosen"], cuts, order=order)
         _log.debug("whole-spectrum fit on a fine spectrum: %.2f nm from the features' stretch", apart)
-        if not apart <= max_halves_nm:
+        if not apart <= max_halves_nm and not _whole_fit_self_sufficient(new):
             new, flag = None, "calibration_ambiguous"
     if new is not None:
         return _checked_zeroth_order(new, cuts, psf, station_geometry, order)
@@ -1979,6 +1986,19 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
         return station_solution(station_geometry, flags=(flag,))
     return station_solution(station_geometry, flags=tuple(f for f in sol.flags) + (flag,),
                             measurements=sol.measurements)
+
+
+#: Largest reduced chi-square at which a whole-spectrum fit with its tilt freed stands on its own
+#: on a fine spectrum (see _calibrate): the model matches the spectrum to within its noise plus a
+#: margin for the residuals' correlation (a judgement; the refused example was at 31, the kept
+#: seed-4 event 001 at 1.00).
+_SELF_SUFFICIENT_CHI2 = 2.0
+
+
+def _whole_fit_self_sufficient(solution: WavelengthSolution) -> bool:
+    """Whether a whole-spectrum solution fitted its tilt and matches the spectrum to its noise."""
+    return bool(np.isfinite(solution.errors.get("tilt_deg", math.nan))
+                and solution.reduced_chi2 <= _SELF_SUFFICIENT_CHI2)
 
 
 #: A start converging elsewhere with a chi-square within this many units of the reduced
@@ -2192,7 +2212,7 @@ def _whole_spectrum_solution(cuts: list[_FrameCut], station_geometry: SpectralGe
     return WavelengthSolution(
         geometry=best.geometry, source="event", values=values, errors=errors, rms_nm=rms,
         n_lines=int(best.n_components), n_frames_used=int(best.n_frames), residuals=ResidualTable.empty(),
-        flags=flags,
+        flags=flags, reduced_chi2=float(best.reduced_chi2),
         measurements=model_measurements(cuts, best.geometry, rms_nm=rms, angle_err_deg=errors["dispersion_angle_deg"],
                                         order=order, event=event)), ""
 

@@ -9,6 +9,7 @@ table so that a night's events can be refitted together.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, fields
 from typing import Any
 
@@ -151,6 +152,9 @@ class WavelengthSolution:
     flags : tuple of str
     measurements : LineMeasurements
         The positions the fit used (empty for a station fallback without lines).
+    reduced_chi2 : float
+        Reduced chi-square of a whole-spectrum fit (NaN for a fit of line positions and for
+        the station's values).
     """
 
     geometry: SpectralGeometry
@@ -163,6 +167,7 @@ class WavelengthSolution:
     residuals: ResidualTable
     flags: tuple[str, ...] = ()
     measurements: LineMeasurements | None = None
+    reduced_chi2: float = math.nan
 
     def __post_init__(self) -> None:
         if self.source not in ("event", "station", "night"):

@@ -129,6 +129,7 @@ each frame (a few tens of thousands of numbers) are kept for the second pass.
 
 from __future__ import annotations
 
+import math
 import functools
 from collections.abc import Iterable
 from dataclasses import dataclass, field, replace
@@ -312,6 +313,15 @@ class FrameSpectra:
         every frame, so :meth:`whole_flight` adds it coherently over frames
         rather than in quadrature. Relative, so it stays valid when later
         stages rescale ``flux`` and ``variance`` per bin. Empty: none.
+
+    light_spread : ndarray of shape (n_frames,)
+        RMS spread in time of each exposure's light about ``light_time_s``, in
+        exposures: ``1 / sqrt(12)`` (0.289) for light even over the exposure,
+        less where the meteor brightens or fades steeply in it or lights up or
+        goes out inside it (the light curve within the exposure that places
+        the lines). A line's motion streak, as the extraction records it, is
+        this times ``sqrt(12)`` times the streak of the whole exposure. Empty:
+        not computed.
     """
 
     wavelength_nm: np.ndarray
@@ -329,6 +339,7 @@ class FrameSpectra:
     light_time_s: np.ndarray = field(default_factory=lambda: np.zeros(0))
     recovered: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), bool))
     shape_rel_err: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+    light_spread: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     @property
     def n_frames(self) -> int:
@@ -340,7 +351,7 @@ class FrameSpectra:
         n = self.n_frames
         per_frame = {}
         for name in ("flux", "variance", "mask", "time_s", "frame_weight", "light_time_s", "recovered",
-                     "shape_rel_err", "correlation"):
+                     "shape_rel_err", "correlation", "light_spread"):
             value = np.asarray(getattr(self, name))
             if value.ndim >= 1 and value.shape[0] == n:
                 per_frame[name] = value[index]
@@ -1103,8 +1114,12 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
     for fidx, c in box_corr.items():
         correlation[fidx, :, :c.shape[1]] = c
     t_exp = np.array([exposures.get(k, 0.0) for k in range(n_frames)])
+    spread = np.full(n_frames, _EVEN_LIGHT_SPREAD)
+    for band in bands:
+        spread[band.frame] = _light_spread(*band.light_bc)
     return FrameSpectra(centres, widths, flux, variance, mask, time_s, tuple(flags), frame_weight,
-                        use_optimal, prof_x, prof, correlation, time_s + eps * t_exp, recovered, shape_rel)
+                        use_optimal, prof_x, prof, correlation, time_s + eps * t_exp, recovered, shape_rel,
+                        spread)
 
 
 def _rank1_model(weight: np.ndarray, flux: np.ndarray, mask: np.ndarray, widths: np.ndarray,
@@ -1196,6 +1211,26 @@ def _rough_energies(weight: np.ndarray, band_sums: dict[int, float]) -> np.ndarr
     fill = ~np.isfinite(energy[k])
     energy[k[fill]] = sums[fill] * ratio
     return np.where(np.isfinite(energy), energy, 0.0)
+
+
+#: RMS of a time spread evenly over one exposure, in exposures (a uniform distribution).
+_EVEN_LIGHT_SPREAD = 1.0 / math.sqrt(12.0)
+
+
+def _light_spread(b: float, c: float) -> float:
+    """RMS spread (in exposures) of light ``exp(b s + c s^2)`` over ``s`` in [-1/2, 1/2].
+
+    The light curve within an exposure as :func:`_light_centroid_fraction` sets it (16-point
+    Gauss-Legendre quadrature, as there); ``b = c = 0``: even light, ``1 / sqrt(12)``.
+    """
+    if b == 0.0 and c == 0.0:
+        return _EVEN_LIGHT_SPREAD
+    x, w = np.polynomial.legendre.leggauss(16)
+    s = 0.5 * x
+    lr = b * s + c * s * s
+    r = w * np.exp(lr - lr.max())
+    mean = float(np.sum(r * s) / np.sum(r))
+    return float(math.sqrt(max(float(np.sum(r * s * s) / np.sum(r)) - mean * mean, 0.0)))
 
 
 def _slope_for_centroid(centroid: float) -> float:

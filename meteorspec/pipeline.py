@@ -28,7 +28,8 @@ from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
 from .extract import FrameSpectra, Spectrum, extract_spectra
 from .lines import identify_lines, instrument_fwhm_nm, line_streak_px
 from .optics import SpectralGeometry
-from .plasma import PlasmaFit, ScaleScan, effective_response, fit_plasma, fit_plasma_per_frame, group_templates
+from .plasma import (WIDTH_SCALE_BOUNDS, PlasmaFit, ScaleScan, effective_response, fit_plasma, fit_plasma_per_frame,
+                     group_templates)
 from .result import STAGES, EventResult, FrameTimes, InputRecord
 from .track import Track, find_track, remeasure_light_curve
 from .wavesol import WavelengthSolution, geometry_values
@@ -129,6 +130,8 @@ def spectrum_part(spectra: FrameSpectra, *, flux_unit: str) -> dict[str, object]
         part["datasets"]["flux_correlation"] = (whole.correlation, "1")
     if spectra.light_time_s.size:
         part["datasets"]["light_time_s"] = (spectra.light_time_s, "s")
+    if spectra.light_spread.size:  # RMS spread of each exposure's light in time, in exposures
+        part["datasets"]["light_spread"] = (spectra.light_spread, "1")
     if spectra.recovered.shape == spectra.flux.shape and spectra.recovered.any():
         # bins scaled up from the unsaturated wings, and the profile-shape share of their error
         # (relative; common to the frames, so a re-derived whole flight adds it coherently)
@@ -347,8 +350,11 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
                          extinction=ExtinctionModel.for_station(station))
         # a station fallback whose whole-flight fit could not scan the scale scans it on the subset
         search = scale_kw.get("scale_search", 0.0) if scan is None else 0.0
+        # the lines' width without motion: a subset of frames has its own streaks (the lit part
+        # of an exposure where the meteor lights up or goes out inside it)
+        psf_fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order, streak_scale=0.0)
         fallback = fit_unsaturated_frames(spectra, fwhm_nm=fwhm_nm, why=why_not_subset, scale_search=search,
-                                          **subset_kw)
+                                          psf_fwhm_nm=psf_fwhm_nm, **subset_kw)
         # the whole-flight fit may still measure a group from the unsaturated wings of its
         # lines; keep whichever composition is the more precise
         if fallback is not None and (not fit or _composition_error(fallback[1]) <= _composition_error(fit)):
@@ -749,7 +755,8 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
                            min_share: float = 0.0, response_nm: tuple | None = None,
                            altitude_deg: np.ndarray | None = None, extinction: ExtinctionModel | None = None,
                            min_coverage_saturated: float = 0.25, why: list[str] | None = None,
-                           scale_search: float = 0.0) -> tuple[Spectrum, PlasmaFit, dict] | None:
+                           scale_search: float = 0.0,
+                           psf_fwhm_nm: np.ndarray | None = None) -> tuple[Spectrum, PlasmaFit, dict] | None:
     """Plasma fit of the sum of the frames that record every group unsaturated.
 
     Used when the whole-flight spectrum has lost a group's lines (saturated or off the
@@ -770,6 +777,12 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
 
     ``scale_search`` is passed to :func:`meteorspec.plasma.fit_plasma` (a station fallback
     whose whole-flight spectrum could not scan the wavelength scale).
+
+    ``fwhm_nm`` is the lines' width over the whole flight (``psf_fwhm_nm``: without motion).
+    With ``psf_fwhm_nm`` the fit gets the frames' own width where the fit's width factor
+    (:data:`meteorspec.plasma.WIDTH_SCALE_BOUNDS`) cannot reach it: their motion streak is that
+    of a whole exposure times :func:`streak_share` of the frames (a meteor that lights up late
+    in its first exposure draws a short streak there).
 
     Returns
     -------
@@ -814,7 +827,20 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
     response_nm = effective_response(subset, response_nm=response_nm, extinction=extinction,
                                      altitude_deg=None if altitude_deg is None
                                      else np.asarray(altitude_deg, dtype=float)[frames])
-    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=speed_km_s, response_nm=response_nm,
+    fit_fwhm_nm = np.asarray(fwhm_nm, dtype=float)
+    streak = streak_share(subset)
+    if psf_fwhm_nm is not None and np.isfinite(streak):
+        psf = np.asarray(psf_fwhm_nm, dtype=float)
+        streak2 = np.clip(fit_fwhm_nm**2 - psf**2, 0.0, None)
+        own = np.sqrt(psf**2 + streak**2 * streak2)
+        # only beyond the reach of the fit's own width factor: within it the fit finds the width
+        # itself, and a faint frame's fit given another starting width can settle elsewhere
+        # (plasma_end_to_end.py --seed 5 --modes perturbed event 028, one exposure with a streak
+        # 0.88 of a whole one's: 0.026 -> 0.102 off, stated 0.03); beyond it the factor stops
+        # at its bound (seed 6 event 015, lit over its first exposure's last quarter: 0.29)
+        if np.any(own < WIDTH_SCALE_BOUNDS[0] * fit_fwhm_nm):
+            fit_fwhm_nm = own
+    fit = fit_plasma(whole, fwhm_nm=fit_fwhm_nm, speed_km_s=speed_km_s, response_nm=response_nm,
                      scale_search=scale_search)
     min_coverage = min_coverage_saturated if saturated else 0.5
     which = "least saturated" if saturated else "unsaturated"
@@ -842,6 +868,26 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
     return whole, fit, attrs
 
 
+def streak_share(spectra: FrameSpectra) -> float:
+    """Light-weighted motion streak of these frames' lines over that of a whole evenly lit exposure.
+
+    The extraction records each frame's line at its light's centroid, spread along the streak
+    as the light spreads in time (``FrameSpectra.light_spread``, ``1 / sqrt(12)`` of an exposure
+    for even light): summed over frames, the variances add with the frames' light
+    (``frame_weight``). 1 for evenly lit exposures; NaN when the frames carry no spread or no
+    known light.
+    """
+    spread = np.asarray(spectra.light_spread, dtype=float)
+    weight = np.asarray(spectra.frame_weight, dtype=float)
+    if spread.shape != weight.shape or spread.size == 0:
+        return math.nan
+    ok = np.isfinite(spread) & np.isfinite(weight) & (weight > 0)
+    if not ok.any():
+        return math.nan
+    var = float(np.sum(weight[ok] * spread[ok] ** 2) / np.sum(weight[ok]))
+    return math.sqrt(12.0 * var)
+
+
 def _add_flags(result: EventResult, flags) -> None:
     for flag in flags:
         result.add_flag(str(flag))
@@ -854,8 +900,10 @@ def _flag_missing(result: EventResult) -> None:
 
 
 def _instrument_fwhm(geometry: SpectralGeometry, track: Track, wavelength_nm: np.ndarray, *,
-                     order: int) -> np.ndarray:
+                     order: int, streak_scale: float = 1.0) -> np.ndarray:
     """Instrument FWHM per wavelength bin at the middle of the luminous track.
+
+    ``streak_scale`` multiplies the motion streak (0: the PSF alone).
 
     The PSF comes from the tracker; the motion streak along the dispersion widens lines
     (median over the luminous frames). The streak is that of each line's own image: the
@@ -889,7 +937,7 @@ def _instrument_fwhm(geometry: SpectralGeometry, track: Track, wavelength_nm: np
                          streak_px if np.isfinite(streak_px) else 0.0)
     psf_sigma_px = track.psf_sigma_px if np.isfinite(track.psf_sigma_px) else 1.3
     return instrument_fwhm_nm(geometry, x0, y0, wavelength_nm, psf_fwhm_px=2.3548 * psf_sigma_px,
-                              streak_px=streak_px, order=order)
+                              streak_px=streak_px * float(streak_scale), order=order)
 
 
 def calibration_part(solution: WavelengthSolution) -> dict[str, object]:

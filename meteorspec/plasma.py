@@ -703,7 +703,7 @@ class _Model:
         s0 = float(scale) * self.mid_nm
         p["shift_nm"] = _Param("shift_nm", s0, s0 - shift_max, s0 + shift_max)
         p["stretch"] = _Param("stretch", float(scale), float(scale) - 0.01, float(scale) + 0.01)
-        p["width_scale"] = _Param("width_scale", 1.0, 0.6, 1.6)
+        p["width_scale"] = _Param("width_scale", 1.0, *WIDTH_SCALE_BOUNDS)
         for s in self.species:
             p[f"log_n {s}"] = _Param(f"log_n {s}", 18.0, 18.0 - _LOG_N_SPAN, 18.0 + _LOG_N_SPAN)
         for name in self.air_names + self.n2_names:
@@ -1322,6 +1322,8 @@ of magnitude by which broad saturated spectra of the seeded end-to-end bench ove
 errors. Milder departures (chi^2 changes of 2-30 on narrow-line events of the same bench) keep
 the linearised errors, which with the reduced chi^2 scaling matched those events' actual errors
 (median |error| / sigma about 1), while a noise-only bootstrap there gave about half of them."""
+WIDTH_SCALE_BOUNDS = (0.6, 1.6)
+"""Range of the fitted factor on the instrument FWHM the fit is given (``width_scale``)."""
 BOOTSTRAP_DRAWS = 16
 """Noise redraws of the parametric bootstrap of the group covariance (:func:`fit_plasma`)."""
 _BOOTSTRAP_NFEV = 50  # each redraw starts at the solution, a few Gauss-Newton steps away

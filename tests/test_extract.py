@@ -789,6 +789,51 @@ def test_end_exposures_take_the_light_slope_from_the_measured_centroid():
     assert_allclose(got[[0, 3, 4, 5, 7]], [measured[k] for k in (0, 3, 4, 5, 7)], atol=1e-6)
     assert_allclose(got[[1, 2, 6]], plain[[1, 2, 6]], atol=1e-12)
 
+
+def test_light_spread_within_an_exposure():
+    # The RMS spread in time of light exp(b s + c s^2) over s in [-1/2, 1/2] (in exposures),
+    # which sets how long a line's streak the extraction records. Even light: the uniform
+    # distribution's 1/sqrt(12) (textbook). Exponential light: the truncated exponential's
+    # variance 1/b^2 - 1/(4 sinh^2(b/2)) (worked by hand from its moment generating function);
+    # with curvature, against adaptive quadrature (scipy.integrate.quad); to 1e-6 of an exposure
+    # (16-point Gauss-Legendre is exact to far below that for these smooth weights).
+    from scipy.integrate import quad
+
+    from meteorspec.extract import _light_spread
+
+    assert _light_spread(0.0, 0.0) == pytest.approx(1.0 / np.sqrt(12.0), abs=1e-12)
+    for b in (-20.0, -3.0, 0.5, 4.0, 12.0):
+        exact = np.sqrt(1.0 / b**2 - 1.0 / (4.0 * np.sinh(b / 2.0) ** 2))
+        assert _light_spread(b, 0.0) == pytest.approx(exact, abs=1e-6), b
+    for b, c in ((2.0, -8.0), (-5.0, 6.0)):
+        m0 = quad(lambda s: np.exp(b * s + c * s * s), -0.5, 0.5)[0]
+        m1 = quad(lambda s: s * np.exp(b * s + c * s * s), -0.5, 0.5)[0] / m0
+        m2 = quad(lambda s: s * s * np.exp(b * s + c * s * s), -0.5, 0.5)[0] / m0
+        assert _light_spread(b, c) == pytest.approx(np.sqrt(m2 - m1**2), abs=1e-6), (b, c)
+
+
+def test_streak_share_of_frames():
+    # streak_share: the light-weighted RMS spread of the frames' light over that of an evenly lit
+    # exposure (variances add with the frames' light). Evenly lit frames: 1. One frame lit at
+    # 1/sqrt(12) and one, three times as bright, lit over its last quarter only (a uniform
+    # quarter: spread 0.25/sqrt(12)): sqrt((1 + 3/16) / 4) (worked by hand).
+    from meteorspec.extract import FrameSpectra
+    from meteorspec.pipeline import streak_share
+
+    def frames(spread, weight):
+        n = len(spread)
+        return FrameSpectra(np.array([500.0]), np.array([1.0]), np.ones((n, 1)), np.ones((n, 1)),
+                            np.zeros((n, 1), bool), np.arange(n) * 0.04, (), np.asarray(weight, float),
+                            light_spread=np.asarray(spread, float))
+
+    even = 1.0 / np.sqrt(12.0)
+    assert streak_share(frames([even, even, even], [1.0, 5.0, 2.0])) == pytest.approx(1.0, abs=1e-12)
+    assert streak_share(frames([even, 0.25 * even], [1.0, 3.0])) == pytest.approx(np.sqrt((1 + 3 / 16) / 4), abs=1e-12)
+    # frames without a known light (weight NaN, saturated in full) do not count; none known: NaN
+    assert streak_share(frames([even, 0.25 * even], [1.0, np.nan])) == pytest.approx(1.0, abs=1e-12)
+    assert np.isnan(streak_share(frames([even], [np.nan])))
+    assert np.isnan(streak_share(frames([], [])))
+
 # --------------------------------------------------------------------------- black-level floor of faint spectra
 
 

@@ -48,7 +48,7 @@ from scipy import ndimage, optimize
 
 from . import atomic
 from .calibrate import (_PRIOR_SIGMA, _TEMPLATE_WEIGHT, _FrameCut, _line_list, _line_profile, _pack,
-                        _response_at, _sample_curves_both, _unpack)
+                        _response_at, _sample_curves_both, _unpack, tilt_errors)
 from .optics import SpectralGeometry
 from .plasma import n2_band_samples
 
@@ -657,14 +657,7 @@ def fit_spectrum_geometry(cuts: list[_FrameCut], start: SpectralGeometry, *, psf
         errors = {"grooves_per_mm": float(err[0]), "dispersion_angle_deg": float(err[1])}
         if fit_tilt:
             tilt_err = float(max(err[2], err[3]))
-            # tilt and azimuth from the components, first-order propagation (as fit_geometry)
-            tx, ty = p[2], p[3]
-            t = math.hypot(tx, ty)
-            jt = np.array([tx / t, ty / t]) if t > 0 else np.array([1.0, 0.0])
-            errors["tilt_deg"] = float(np.sqrt(jt @ cov[2:4, 2:4] @ jt))
-            if t > 0:
-                ja = np.degrees(np.array([-ty, tx]) / t**2)  # d(azimuth)/d(components), deg per deg
-                errors["tilt_azimuth_deg"] = float(np.sqrt(ja @ cov[2:4, 2:4] @ ja))
+            errors.update(tilt_errors(p[2], p[3], cov[2:4, 2:4]))
     except np.linalg.LinAlgError:
         pass
     # status 0 (evaluation budget used up) still returns the best point found

@@ -340,6 +340,21 @@ class GeometryFit:
         return float(np.sqrt(np.mean(r**2))) if r.size else float("nan")
 
 
+def tilt_errors(tx_deg: float, ty_deg: float, cov: NDArray) -> dict[str, float]:
+    """1-sigma of ``tilt_deg`` and ``tilt_azimuth_deg`` from the tilt's two components.
+
+    ``tx_deg, ty_deg`` are the components as :func:`_pack` holds them and ``cov`` their 2 x 2
+    covariance; first-order propagation. No azimuth error for a zero tilt.
+    """
+    t = math.hypot(tx_deg, ty_deg)
+    jt = np.array([tx_deg / t, ty_deg / t]) if t > 0 else np.array([1.0, 0.0])
+    out = {"tilt_deg": float(np.sqrt(jt @ cov @ jt))}
+    if t > 0:
+        ja = np.degrees(np.array([-ty_deg, tx_deg]) / t**2)  # d(azimuth)/d(components), deg per deg
+        out["tilt_azimuth_deg"] = float(np.sqrt(ja @ cov @ ja))
+    return out
+
+
 def _pack(geometry: SpectralGeometry, fit_lens: bool) -> NDArray:
     g, lens = geometry.grating, geometry.lens
     t, a = math.radians(g.tilt_deg), math.radians(g.tilt_azimuth_deg)
@@ -488,14 +503,7 @@ def fit_geometry(measurements: LineMeasurements, start: SpectralGeometry, *, fit
     errors = {k: math.nan for k in values}
     errors["grooves_per_mm"] = float(err[0])
     errors["dispersion_angle_deg"] = float(err[1])
-    # tilt and azimuth from the components, first-order propagation
-    tx, ty = p[2], p[3]
-    t = math.hypot(tx, ty)
-    jt = np.array([tx / t, ty / t]) if t > 0 else np.array([1.0, 0.0])
-    errors["tilt_deg"] = float(np.sqrt(jt @ cov[2:4, 2:4] @ jt))
-    if t > 0:
-        ja = np.degrees(np.array([-ty, tx]) / t**2)  # d(azimuth)/d(components), deg per deg
-        errors["tilt_azimuth_deg"] = float(np.sqrt(ja @ cov[2:4, 2:4] @ ja))
+    errors.update(tilt_errors(p[2], p[3], cov[2:4, 2:4]))
     if fit_lens:
         errors["focal_px"] = float(err[4])
         errors["k1"] = float(err[5])

@@ -129,8 +129,8 @@ each frame (a few tens of thousands of numbers) are kept for the second pass.
 
 from __future__ import annotations
 
-import math
 import functools
+import math
 from collections.abc import Iterable
 from dataclasses import dataclass, field, replace
 from typing import Any
@@ -313,7 +313,6 @@ class FrameSpectra:
         every frame, so :meth:`whole_flight` adds it coherently over frames
         rather than in quadrature. Relative, so it stays valid when later
         stages rescale ``flux`` and ``variance`` per bin. Empty: none.
-
     light_spread : ndarray of shape (n_frames,)
         RMS spread in time of each exposure's light about ``light_time_s``, in
         exposures: ``1 / sqrt(12)`` (0.289) for light even over the exposure,

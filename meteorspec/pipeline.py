@@ -903,8 +903,6 @@ def _instrument_fwhm(geometry: SpectralGeometry, track: Track, wavelength_nm: np
                      order: int, streak_scale: float = 1.0) -> np.ndarray:
     """Instrument FWHM per wavelength bin at the middle of the luminous track.
 
-    ``streak_scale`` multiplies the motion streak (0: the PSF alone).
-
     The PSF comes from the tracker; the motion streak along the dispersion widens lines
     (median over the luminous frames). The streak is that of each line's own image: the
     first-order pixel of a wavelength is a nonlinear function of the zeroth-order pixel
@@ -915,7 +913,7 @@ def _instrument_fwhm(geometry: SpectralGeometry, track: Track, wavelength_nm: np
     seed-5 bench event 034 (rectilinear, 512 px, f = 240 px) 1.6x at 777 nm, and the
     zeroth-order streak left the lines 10-35 % wider than the FWHM the fit was given.
     Where a wavelength's image leaves the lens field at either end of the streak, the
-    zeroth order's streak is used.
+    zeroth order's streak is used. ``streak_scale`` multiplies the streak (0: the PSF alone).
     """
     lum = track.luminous & np.isfinite(track.x_px)
     x0, y0 = float(np.median(track.x_px[lum])), float(np.median(track.y_px[lum]))

@@ -88,6 +88,7 @@ __all__ = [
     "classify",
     "classify_points",
     "composition_from_groups",
+    "cover_other_fit",
     "deep_wing_peak",
     "expected_normal",
     "light_curve_from_spectra",
@@ -685,6 +686,65 @@ def composition_from_groups(
     jac = (np.eye(3) - frac[:, None]) / total
     var = np.einsum("ij,jk,ik->i", jac, cov, jac)
     return frac, np.sqrt(np.clip(var, 0.0, None))
+
+
+FITS_DISAGREE_SIGMA = 2.0
+"""Disagreement (in combined sigma) between two fits of one meteor's composition beyond which
+:func:`cover_other_fit` widens the kept fit's covariance to reach the other's value. The two
+errors are combined as if independent; the fits share data (a subset of the frames is part of
+the whole flight), so their difference scatters less than that and a 2-sigma threshold is
+passed by noise less than 5 % of the time (invented, round value)."""
+
+
+def cover_other_fit(intensity: dict[str, float] | ArrayLike, covariance: ArrayLike,
+                    other_intensity: dict[str, float] | ArrayLike, other_covariance: ArrayLike, *,
+                    max_sigma: float = FITS_DISAGREE_SIGMA) -> tuple[NDArray[np.float64], float]:
+    """A composition's group covariance widened to cover a second fit of the same meteor.
+
+    Parameters
+    ----------
+    intensity, covariance
+        The kept fit's group intensities (na, mg, fe) and their 3 x 3 covariance.
+    other_intensity, other_covariance
+        The other fit's (e.g. the whole flight's where the frames without saturated group
+        lines were kept, or the reverse).
+    max_sigma : float
+        Largest disagreement, in combined sigma, left as noise (:data:`FITS_DISAGREE_SIGMA`).
+
+    Returns
+    -------
+    covariance : ndarray of shape (3, 3)
+        ``covariance`` unchanged when the two compositions agree (or either is undefined),
+        else ``covariance + S^2 d d^T`` (see Notes).
+    disagreement_sigma : float
+        The largest of ``|d_i| / sqrt(s_i^2 + t_i^2)`` over na, mg, fe (``s``, ``t`` the two
+        fits' composition errors); NaN when either composition is undefined.
+
+    Notes
+    -----
+    Two fits of one meteor that differ by more than their errors allow show that at least one
+    of them carries a systematic error its covariance does not hold, and the data do not say
+    which. The difference of the two methods is then taken as a systematic error of the kept
+    one (common practice in error budgets): with ``d`` the other composition minus the kept
+    one (``sum d = 0``) and ``S`` the kept intensities' sum, adding ``S^2 d d^T`` to the group
+    covariance adds exactly ``d d^T`` to the composition's (the normalisation's Jacobian
+    ``(I - f 1^T) / S`` maps ``S d`` to ``d``), so each fraction's error becomes
+    ``sqrt(s_i^2 + d_i^2)`` and the other fit's value lies within one sigma of the kept one.
+    """
+    vec, cov = _intensity_vector(intensity), _covariance_matrix(covariance)
+    frac, err = composition_from_groups(vec, cov)
+    other, other_err = composition_from_groups(other_intensity, other_covariance)
+    if not (np.all(np.isfinite(frac)) and np.all(np.isfinite(other))):
+        return cov, math.nan
+    d = other - frac
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z = np.abs(d) / np.hypot(err, other_err)
+    z = np.where(np.abs(d) > 0, z, 0.0)
+    worst = float(np.max(np.where(np.isnan(z), 0.0, z)))
+    if not worst > max_sigma:
+        return cov, worst
+    _, total = _normalise(vec)
+    return cov + float(total) ** 2 * np.outer(d, d), worst
 
 
 # --------------------------------------------------------------------------------------------

@@ -12,6 +12,7 @@ import hashlib
 import math
 from dataclasses import asdict
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -19,9 +20,9 @@ from .atomic import load_line_list
 from .background import (Background, BinnedFrames, StoredFrameBinner, bin_frames, estimate_background,
                          refine_background)
 from .calibrate import apply_response, calibrate_event, ridge_angle, station_solution
-from .classify import (DEEP_SATURATED_SHARE, LIGHT_CURVE_BANDS_NM, Composition, TimeResolved, classify,
-                       composition_from_groups, deep_wing_peak, light_curve_from_spectra, time_resolved_from_fits,
-                       weak_line_curves, window_light_curves)
+from .classify import (DEEP_SATURATED_SHARE, FITS_DISAGREE_SIGMA, LIGHT_CURVE_BANDS_NM, Composition, TimeResolved,
+                       classify, composition_from_groups, cover_other_fit, deep_wing_peak, light_curve_from_spectra,
+                       time_resolved_from_fits, weak_line_curves, window_light_curves)
 from .config import Camera, Event, Station, find_station_file, load_event, load_station
 from .errors import InputError
 from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
@@ -343,6 +344,7 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
             fit = dataclasses.replace(fit, config=fit.config | {"wavelength_scale_scan": scan})
     subset_attrs: dict[str, object] = {}
     why_not_subset: list[str] = []
+    other_fit: tuple[PlasmaFit, str] | None = None  # the composition fit not kept, and its source
     if not fit or min(fit.group_coverage.values(), default=0.0) < 0.5:
         # saturated (or off-sensor) group lines in the brightest frames: the whole-flight sum
         # cannot hold them, so measure the composition on the frames that record every group
@@ -358,6 +360,7 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         # the whole-flight fit may still measure a group from the unsaturated wings of its
         # lines; keep whichever composition is the more precise
         if fallback is not None and (not fit or _composition_error(fallback[1]) <= _composition_error(fit)):
+            other_fit = (fit, "whole flight") if fit else None
             whole, fit, subset_attrs = fallback
             sub_scan = fit.config.get("wavelength_scale_scan")
             if sub_scan is not None and not sub_scan.reason:
@@ -366,6 +369,9 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
                 result.add_flag(SUBSET_SCALE_FROM_PLASMA)
             result.add_flag("composition_from_least_saturated_frames" if subset_attrs["group_lines_saturated"]
                             else "composition_from_unsaturated_frames")
+        elif fallback is not None and fallback[1]:
+            other_fit = (fallback[1], "least saturated frames" if fallback[2]["group_lines_saturated"]
+                         else "unsaturated frames")
     table = identify_lines(whole, fwhm_nm=fwhm_nm, plasma_fit=fit if fit else None)
     result.parts["lines"] = {"table": (table.to_records(), flux_unit + " nm"),
                              "attrs": {"columns_unit": "lab_nm, measured_nm: nm; intensity: flux x nm"}}
@@ -384,10 +390,12 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         if share < 0.5:  # the group rests mostly on the model of other lines
             result.add_flag(f"group_poorly_covered:{group}")
 
-    composition = classify(fit.group_intensity, fit.group_covariance, speed_km_s=event.speed_km_s,
+    group_cov, other_attrs, flags = composition_covariance(fit, other_fit)
+    _add_flags(result, flags)
+    composition = classify(fit.group_intensity, group_cov, speed_km_s=event.speed_km_s,
                            speed_err_km_s=event.speed_err_km_s, seed=0)
     _add_flags(result, composition.flags)
-    if _composition_error(fit) > COMPOSITION_UNCERTAIN:
+    if _composition_error(fit, group_cov) > COMPOSITION_UNCERTAIN:
         # e.g. Mg I 517 and Fe I 526-546 unresolved at a coarse dispersion, or Na I D lost in N2
         result.add_flag("composition_uncertain")
     frame_fits = fit_plasma_per_frame(spectra, fit, fwhm_nm=fwhm_nm)
@@ -421,7 +429,7 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
     if subset_attrs:
         label = "least saturated frames" if subset_attrs["group_lines_saturated"] else "unsaturated frames"
         source = {"source": label} | {f"source_{k}": v for k, v in subset_attrs.items()}
-    result.parts["composition"]["attrs"].update(source)
+    result.parts["composition"]["attrs"].update(source | other_attrs)
     _flag_missing(result)
 
 
@@ -606,6 +614,11 @@ STATION_SCALE_SEARCH = 0.06
 """Half range of the plasma fit's wavelength-scale scan on a station fallback: the calibration's
 own groove-density search (``calibrate_event(grooves_range_frac=0.06)``), twice the +-3 % by
 which the issue expects a station file's groove density to be off."""
+FITS_DISAGREE = "composition_fits_disagree"
+"""Flag: the whole-flight fit and the fit of the least saturated frames both measured the
+composition and differ by more than :data:`meteorspec.classify.FITS_DISAGREE_SIGMA` combined
+sigma; the kept one's errors are widened to reach the other's value
+(:func:`meteorspec.classify.cover_other_fit`), and ``/composition`` ``other_fit_*`` give it."""
 SCALE_FROM_PLASMA = "wavelength_scale_from_plasma_fit"
 """Flag: the calibration fell back to the station file, and the plasma fit measured the
 wavelength scale (:func:`meteorspec.plasma.fit_plasma` ``scale_search``)."""
@@ -625,10 +638,51 @@ COMPOSITION_UNCERTAIN = 0.1
 spread of a class region across the ternary in most directions (invented, round value)."""
 
 
-def _composition_error(fit: PlasmaFit) -> float:
-    """Largest 1-sigma error of na, mg, fe (contract section 6) from a fit's group covariance."""
+def composition_covariance(fit: Any, other_fit: tuple[Any, str] | None
+                           ) -> tuple[np.ndarray, dict[str, object], tuple[str, ...]]:
+    """The group covariance the composition is given, with the other fit's record.
+
+    Parameters
+    ----------
+    fit : PlasmaFit-like
+        The kept fit (``group_intensity``, ``group_covariance``).
+    other_fit : (PlasmaFit-like, str) or None
+        The composition fit not kept (the whole flight's, or that of the unsaturated or least
+        saturated frames) and its source label; None where only one fit measured it.
+
+    Returns
+    -------
+    covariance : ndarray of shape (3, 3)
+        ``fit.group_covariance``, widened where the two fits disagree beyond
+        :data:`~meteorspec.classify.FITS_DISAGREE_SIGMA` combined sigma
+        (:func:`~meteorspec.classify.cover_other_fit`: at least one of them carries an error
+        its covariance does not hold, and the data do not say which). A meteoroid that
+        ablates differentially (Na early) can make a subset of frames differ from the whole
+        flight for real; as an estimate of the meteor's composition the subset then carries
+        that difference as well.
+    attrs : dict
+        ``other_fit_source``, ``other_fit_composition`` (na, mg, fe) and
+        ``other_fit_disagreement_sigma`` for ``/composition``; empty without ``other_fit``.
+    flags : tuple of str
+        ``(FITS_DISAGREE,)`` when widened, else empty.
+    """
+    cov = np.asarray(fit.group_covariance, dtype=float)
+    if other_fit is None:
+        return cov, {}, ()
+    other, label = other_fit
+    widened, disagreement = cover_other_fit(fit.group_intensity, cov, other.group_intensity,
+                                            other.group_covariance)
+    values, _ = composition_from_groups(other.group_intensity, other.group_covariance)
+    attrs = {"other_fit_source": label, "other_fit_composition": np.asarray(values, dtype=float),
+             "other_fit_disagreement_sigma": float(disagreement)}
+    return widened, attrs, ((FITS_DISAGREE,) if disagreement > FITS_DISAGREE_SIGMA else ())
+
+
+def _composition_error(fit: PlasmaFit, covariance: np.ndarray | None = None) -> float:
+    """Largest 1-sigma error of na, mg, fe (contract section 6) from a fit's group covariance
+    (or ``covariance`` in its place)."""
     intensity = np.array([fit.group_intensity[g] for g in ("na", "mg", "fe")], dtype=float)
-    _, errors = composition_from_groups(intensity, fit.group_covariance)
+    _, errors = composition_from_groups(intensity, fit.group_covariance if covariance is None else covariance)
     worst = float(np.max(errors))
     return worst if np.isfinite(worst) else np.inf
 

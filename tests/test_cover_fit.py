@@ -105,3 +105,20 @@ def test_pipeline_records_the_other_fit_and_flags_a_disagreement():
     cov, attrs, flags = pipeline.composition_covariance(kept, (near, "unsaturated frames"))
     assert flags == () and attrs["other_fit_disagreement_sigma"] < cl.FITS_DISAGREE_SIGMA
     assert_allclose(cov, KEPT_COV, rtol=0, atol=0)
+
+
+def test_other_fit_record_survives_the_event_file(tmp_path):
+    from meteorspec import pipeline
+    from meteorspec.result import EventResult, FrameTimes
+    from meteorspec.store import read_event, write_event
+    other = _fit(KEPT + np.array([-600.0, 0.0, 600.0]), KEPT_COV)
+    _, attrs, flags = pipeline.composition_covariance(_fit(KEPT, KEPT_COV), (other, "whole flight"))
+    result = EventResult(event_id="20261114T031522Z_TST1", station="TST1", start_utc="2026-11-14T03:15:22.120Z",
+                         software_version="0.1.0", status="partial", flags=list(flags),
+                         frames=FrameTimes(time_s=np.array([0.02]), exposure_s=0.04,
+                                           n_saturated_px=np.array([0]), interlaced=False),
+                         parts={"composition": {"attrs": {"na": 0.82} | attrs}})
+    back = read_event(write_event(tmp_path / "e.h5", result))["groups"]["composition"]["attrs"]
+    assert back["other_fit_source"] == "whole flight"
+    assert_allclose(back["other_fit_composition"], attrs["other_fit_composition"])
+    assert back["other_fit_disagreement_sigma"] == pytest.approx(attrs["other_fit_disagreement_sigma"])

@@ -692,8 +692,9 @@ FITS_DISAGREE_SIGMA = 2.0
 """Disagreement (in combined sigma) between two fits of one meteor's composition beyond which
 :func:`cover_other_fit` widens the kept fit's covariance to reach the other's value. The two
 errors are combined as if independent; the fits share data (a subset of the frames is part of
-the whole flight), so their difference scatters less than that and a 2-sigma threshold is
-passed by noise less than 5 % of the time (invented, round value)."""
+the whole flight), so their difference scatters less than that, and noise alone passes the
+threshold less often than the 5 % of a two-sided 2-sigma test on one value, times up to three
+for the largest of the three fractions (invented, round value)."""
 
 
 def cover_other_fit(intensity: dict[str, float] | ArrayLike, covariance: ArrayLike,

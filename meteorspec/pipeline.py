@@ -615,8 +615,8 @@ STATION_SCALE_SEARCH = 0.06
 own groove-density search (``calibrate_event(grooves_range_frac=0.06)``), twice the +-3 % by
 which the issue expects a station file's groove density to be off."""
 FITS_DISAGREE = "composition_fits_disagree"
-"""Flag: the whole-flight fit and the fit of the least saturated frames both measured the
-composition and differ by more than :data:`meteorspec.classify.FITS_DISAGREE_SIGMA` combined
+"""Flag: the whole-flight fit and the fit of the unsaturated (or least saturated) frames both
+measured the composition and differ by more than :data:`meteorspec.classify.FITS_DISAGREE_SIGMA` combined
 sigma; the kept one's errors are widened to reach the other's value
 (:func:`meteorspec.classify.cover_other_fit`), and ``/composition`` ``other_fit_*`` give it."""
 SCALE_FROM_PLASMA = "wavelength_scale_from_plasma_fit"

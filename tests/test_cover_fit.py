@@ -8,6 +8,8 @@ with a Monte Carlo of the intensities (seeded).
 
 from __future__ import annotations
 
+from types import SimpleNamespace
+
 import numpy as np
 import pytest
 from numpy.testing import assert_allclose
@@ -82,7 +84,7 @@ def test_threshold_is_the_stated_sigma():
 
 
 def _fit(intensity: np.ndarray, cov: np.ndarray):
-    from types import SimpleNamespace
+    """A PlasmaFit-like record: what pipeline.composition_covariance reads of a fit."""
     return SimpleNamespace(group_intensity=dict(zip(cl.GROUPS, intensity)), group_covariance=cov)
 
 
@@ -92,11 +94,12 @@ def test_pipeline_records_the_other_fit_and_flags_a_disagreement():
     cov, attrs, flags = pipeline.composition_covariance(kept, None)
     assert_allclose(cov, KEPT_COV, rtol=0, atol=0)
     assert attrs == {} and flags == ()
-    other = _fit(KEPT + np.array([-600.0, 0.0, 600.0]), KEPT_COV)
-    cov, attrs, flags = pipeline.composition_covariance(kept, (other, "whole flight"))
+    other_intensity = KEPT + np.array([-600.0, 0.0, 600.0])
+    other_frac = other_intensity / other_intensity.sum()
+    cov, attrs, flags = pipeline.composition_covariance(kept, (_fit(other_intensity, KEPT_COV), "whole flight"))
     assert flags == (pipeline.FITS_DISAGREE,)
     assert attrs["other_fit_source"] == "whole flight"
-    assert_allclose(attrs["other_fit_composition"], other_frac := (KEPT + [-600.0, 0.0, 600.0]) / KEPT.sum())
+    assert_allclose(attrs["other_fit_composition"], other_frac)
     assert attrs["other_fit_disagreement_sigma"] > cl.FITS_DISAGREE_SIGMA
     values, errors = cl.composition_from_groups(KEPT, cov)
     assert np.all(np.abs(other_frac - values) <= errors * (1 + 1e-9))

@@ -70,11 +70,17 @@ def test_same_spec_gives_identical_bytes(tmp_path):
 
 def test_noise_draw_changes_the_noise_only():
     # Another noise draw of the same scene: the noise-free render (the scene) is identical,
-    # the noisy pixels differ, and draw 0 is the seed's own render (earlier benches unchanged).
+    # the noisy pixels and the stars' twinkle differ, and draw 0 is the seed's own render
+    # (earlier benches unchanged).
     spec = tiny()
+    scene = [render_event(dataclasses.replace(spec, noise=False, noise_draw=k)) for k in (0, 1)]
+    assert np.array_equal(scene[0].linear_clean, scene[1].linear_clean)
     noisy = [render_event(dataclasses.replace(spec, noise_draw=k)) for k in (0, 1)]
-    assert np.array_equal(noisy[0].linear_clean, noisy[1].linear_clean)
     assert not np.array_equal(noisy[0].stored, noisy[1].stored)
+    # the light without noise differs only by the stars' twinkle (7 % per draw, render.SCINTILLATION):
+    # under half the brightest light of the scene (5 sigma of the two draws' difference, 0.1)
+    twinkle = np.abs(noisy[1].linear_clean - noisy[0].linear_clean)
+    assert 0 < twinkle.max() <= 0.5 * scene[0].linear_clean.max()
     assert np.array_equal(noisy[0].stored, render_event(spec).stored)
 
 

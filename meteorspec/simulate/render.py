@@ -320,7 +320,8 @@ def render_event(spec: EventSpec, *, station: Station | None = None) -> Rendered
 
     full = cam.full_scale_adu
     lin_sat = full * ((cam.saturation_adu - cam.black_level_adu) / full) ** (1.0 / cam.gamma)
-    rng_star = np.random.default_rng([spec.seed, 404])
+    # the stars' twinkle is noise too: a fresh draw with each noise draw (draw 0: the scene's own)
+    rng_star = np.random.default_rng([spec.seed, 404] + ([int(spec.noise_draw)] if spec.noise_draw else []))
     rng_noise = np.random.default_rng([spec.seed, 303] + ([int(spec.noise_draw)] if spec.noise_draw else []))
     read_noise = _DEFAULT_READ_NOISE_ADU if cam.read_noise_adu is None else cam.read_noise_adu
     gain = _DEFAULT_GAIN_E_PER_ADU if cam.gain_e_per_adu is None else cam.gain_e_per_adu

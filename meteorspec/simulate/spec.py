@@ -130,8 +130,8 @@ class EventSpec:
         error at render time.
     seed : int
     noise_draw : int
-        Another draw of the sky, photon and read noise of the same scene (0: the seed's own):
-        the scene, the stars and the emission stay those of ``seed``.
+        Another draw of the sky, photon and read noise and of the stars' twinkle of the same
+        scene (0: the seed's own): the scene, the stars and the emission stay those of ``seed``.
     """
 
     station: str

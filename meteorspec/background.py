@@ -156,6 +156,10 @@ class Background:
         Smooth sky level without stars (the level's large-scale part).
     gain_estimated, read_noise_estimated : bool
         True where the value was estimated from the data rather than read from the station.
+    level_samples : int
+        Fewest frames (of one field parity) whose mean gives a pixel's level: a star's
+        twinkle averages down in it by ``1 / sqrt(level_samples)`` and is then common to
+        every frame the level is subtracted from. 0: unknown.
     """
 
     level_adu: np.ndarray
@@ -168,6 +172,7 @@ class Background:
     sky_adu: np.ndarray | None = None
     gain_estimated: bool = False
     read_noise_estimated: bool = False
+    level_samples: int = 0
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -482,7 +487,8 @@ def _model_from_stats(level: np.ndarray, var: np.ndarray, camera: Camera, *, dof
     return Background(level_adu=level, noise_adu=np.sqrt(noise_var).astype(np.float32),
                       read_noise_adu=read, gain_e_per_adu=gain, star_mask=star_mask,
                       frames_used=frames_used, scintillation=scint,
-                      sky_adu=sky, gain_estimated=gain_est, read_noise_estimated=read_est)
+                      sky_adu=sky, gain_estimated=gain_est, read_noise_estimated=read_est,
+                      level_samples=dof + 1)
 
 
 def _check_frame(frame, h: int, w: int) -> None:
@@ -815,6 +821,7 @@ def refine_background(frames: Sequence, background: Background, track, geometry,
     # the stored temporal variance is not kept; the refit needs a per-pixel variance: use the model's
     # noise where nothing changes (it is what the fit sees at those pixels anyway)
     var_changed = np.zeros((h, w), bool)
+    counts: list[int] = []
     for key, pos_list in by_parity.items():
         if key not in union:
             continue
@@ -831,6 +838,8 @@ def refine_background(frames: Sequence, background: Background, track, geometry,
         lv, vr, cnt = _clipped_stats_masked(samples, clip_sigma, read_noise_adu=background.read_noise_adu,
                                             gain_e_per_adu=background.gain_e_per_adu)
         ok = cnt >= min_samples
+        if ok.any():
+            counts.append(int(np.median(cnt[ok])))
         yy = y0 + step * rr[ok]
         level[yy, cc[ok]] = lv[ok]
         var[yy, cc[ok]] = vr[ok]
@@ -838,6 +847,9 @@ def refine_background(frames: Sequence, background: Background, track, geometry,
     # noise and star mask where the level changed: the first estimate's read noise, gain and
     # scintillation (fitted over the whole frame, hardly touched by the meteor) on the new level
     read, gain, scint = background.read_noise_adu, background.gain_e_per_adu, background.scintillation
+    # the re-estimated pixels' levels rest on their own counts of dark samples
+    n_level = min([background.level_samples or np.iinfo(np.int32).max] + counts) if counts else \
+        background.level_samples
     sky = _smooth_sky(level)
     excess = level - sky
     model = _model_var(level, read, gain).astype(np.float32)
@@ -854,7 +866,7 @@ def refine_background(frames: Sequence, background: Background, track, geometry,
     return Background(level_adu=level, noise_adu=noise, read_noise_adu=read, gain_e_per_adu=gain,
                       star_mask=star_mask, frames_used=background.frames_used, scintillation=scint,
                       sky_adu=sky, gain_estimated=background.gain_estimated,
-                      read_noise_estimated=background.read_noise_estimated)
+                      read_noise_estimated=background.read_noise_estimated, level_samples=int(n_level))
 
 
 def _bin_stored(stack, stored: np.ndarray, camera: Camera) -> BinnedFrames:

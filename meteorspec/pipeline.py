@@ -129,6 +129,10 @@ def spectrum_part(spectra: FrameSpectra, *, flux_unit: str) -> dict[str, object]
         part["datasets"]["frame_weight"] = (spectra.frame_weight, "1")
     if whole.correlation.size:  # column d-1: correlation of bin j with bin j+d (shared pixels)
         part["datasets"]["flux_correlation"] = (whole.correlation, "1")
+    if whole.common_share.size:  # errors common to bins far apart (twinkling star light), share of flux_err
+        part["datasets"]["flux_common_share"] = (whole.common_share, "1")
+    if spectra.twinkle_share.shape == spectra.flux.shape and np.any(spectra.twinkle_share > 0):
+        part["datasets"]["per_frame_twinkle_share"] = (spectra.twinkle_share, "1")
     if spectra.light_time_s.size:
         part["datasets"]["light_time_s"] = (spectra.light_time_s, "s")
     if spectra.light_spread.size:  # RMS spread of each exposure's light in time, in exposures

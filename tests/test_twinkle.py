@@ -138,3 +138,19 @@ def test_whole_flight_adds_the_twinkle_per_frame_and_the_levels_per_field_parity
     sub = fs.select_frames(np.array([0, 1])).whole_flight()
     np.testing.assert_allclose(np.diag(sub.covariance()),
                                (t[0] ** 2 + t[1] ** 2) * (1.0 + lam) + p[0] + p[1], rtol=1e-10)
+
+
+def test_event_file_part_carries_the_common_errors():
+    from meteorspec.pipeline import spectrum_part
+
+    _, _, fs = _draws(1, stated_scint=SCINT)
+    part = spectrum_part(fs, flux_unit="ADU")["datasets"]
+    wf = fs.whole_flight()
+    assert wf.common_share.shape[1] > 0
+    np.testing.assert_array_equal(part["flux_common_share"][0], wf.common_share)
+    np.testing.assert_array_equal(part["per_frame_twinkle_share"][0], fs.twinkle_share)
+    # and a review's corrected wavelength scale keeps them
+    from meteorspec.review.rework import regrid
+
+    moved = regrid(wf, shift_nm=0.3, stretch=1.01)
+    np.testing.assert_allclose(moved.covariance(), wf.covariance() / 1.01**2, rtol=1e-12)

@@ -475,7 +475,7 @@ def regrid(spectrum: Spectrum, *, shift_nm: float, stretch: float) -> Spectrum:
     return Spectrum(corrected_wavelength(spectrum.wavelength_nm, shift_nm, stretch),
                     np.asarray(spectrum.bin_width_nm, float) * stretch,
                     np.asarray(spectrum.flux, float) / stretch, np.asarray(spectrum.flux_err, float) / stretch,
-                    np.asarray(spectrum.mask, bool).copy(), spectrum.correlation)
+                    np.asarray(spectrum.mask, bool).copy(), spectrum.correlation, spectrum.common_share)
 
 
 @dataclass(frozen=True)
@@ -605,7 +605,7 @@ def rederive(view: EventView, corrections: Corrections, *, line_list: LineList |
         for lo, hi in corrections.ignored_nm:
             mask |= (spectrum.wavelength_nm >= lo) & (spectrum.wavelength_nm <= hi)
         spectrum = Spectrum(spectrum.wavelength_nm, spectrum.bin_width_nm, spectrum.flux, spectrum.flux_err,
-                            mask, spectrum.correlation)
+                            mask, spectrum.correlation, spectrum.common_share)
     if corrections.rejected:
         drop = np.zeros(len(line_list), bool)
         drop[[r.index for r in corrections.rejected]] = True

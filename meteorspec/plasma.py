@@ -1118,7 +1118,7 @@ class _Problem:
 
     def __init__(self, model: _Model, flux: NDArray, err: NDArray, good: NDArray,
                  prior: dict[str, tuple[float, float]] | None = None,
-                 pairs: tuple[NDArray, NDArray, NDArray] | None = None):
+                 pairs: tuple[NDArray, NDArray, NDArray] | None = None, common: NDArray | None = None):
         self.model, self.good = model, good
         self.data = flux[good]
         self.weight = 1.0 / err[good]
@@ -1126,6 +1126,8 @@ class _Problem:
         # correlated pairs of fitted bins (positions among the good bins, coefficient;
         # _bin_pairs): none when the spectrum carries no correlations
         self.pairs = pairs if pairs is not None else (np.zeros(0, int), np.zeros(0, int), np.zeros(0))
+        # errors common to bins beyond the pairs' lags (_common_columns), as shares of the bins' errors
+        self.common = common if common is not None else np.zeros((int(good.sum()), 0))
 
     def _prior_residuals(self) -> list[float]:
         return [(self.model.value(n) - mu) / sd for n, (mu, sd) in self.prior.items()
@@ -1411,6 +1413,32 @@ def _bin_pairs(correlation: ArrayLike | None, good: NDArray) -> tuple[NDArray, N
     return np.concatenate(ps), np.concatenate(qs), np.concatenate(rs)
 
 
+def _common_columns(common_share: ArrayLike | None, good: NDArray) -> NDArray:
+    """The fitted bins' rows of ``Spectrum.common_share`` (errors common to bins far apart, as
+    shares of each bin's error; one column per independent error); no columns without them."""
+    s = np.asarray(np.zeros((0, 0)) if common_share is None else common_share, float)
+    if s.ndim == 1 and s.size == good.size:
+        s = s[:, None]
+    if s.ndim != 2 or s.shape[0] != good.size or s.shape[1] == 0 or not np.any(s):
+        return np.zeros((int(good.sum()), 0))
+    return np.nan_to_num(s[good])
+
+
+def _common_term(g: NDArray, problem: _Problem, *, diagonal: bool = False) -> NDArray:
+    """The common errors' share of ``g R g^T`` (as :func:`_pair_term`): ``S S^T`` off the diagonal
+    and beyond the pairs' lags, whose correlation holds it already."""
+    s = problem.common
+    if s.shape[1] == 0:
+        return np.zeros(g.shape[0]) if diagonal else np.zeros((g.shape[0], g.shape[0]))
+    a = g @ s
+    s2 = np.sum(s**2, axis=1)
+    p, q, _ = problem.pairs
+    within = (p, q, np.sum(s[p] * s[q], axis=1))
+    if diagonal:
+        return np.sum(a**2, axis=1) - (g**2) @ s2 - _pair_term(g, within, diagonal=True)
+    return a @ a.T - (g * s2) @ g.T - _pair_term(g, within)
+
+
 _PAIR_BLOCK = 2048  # correlated bin pairs per block of _pair_term (memory, not results)
 
 
@@ -1466,6 +1494,25 @@ def _correlated_noise(rng: np.random.Generator, n: int, pairs: tuple[NDArray, ND
             out[k:] += upper[band - k, k:] * z[: n - k] if k else upper[band] * z
         return out
     return z
+
+
+def _noise_with_common(rng: np.random.Generator, problem: _Problem) -> NDArray:
+    """Standard normal noise of the fitted bins with the pairs' correlation and the common errors
+    (``problem.common``): the pairs' correlation without the common errors' share (the inverse of
+    ``extract._with_common``) on ``sqrt(1 - s^2)`` of each bin, plus ``S z``."""
+    s = problem.common
+    n = problem.good.sum()
+    if s.shape[1] == 0:
+        return _correlated_noise(rng, n, problem.pairs)
+    s2 = np.clip(np.sum(s**2, axis=1), 0.0, 1.0)
+    rest = np.sqrt(1.0 - s2)
+    p, q, rho = problem.pairs
+    with np.errstate(invalid="ignore", divide="ignore"):
+        own = np.where(rest[p] * rest[q] > 0,
+                       (rho - np.sum(s[p] * s[q], axis=1)) / np.where(rest[p] * rest[q] > 0, rest[p] * rest[q], 1.0),
+                       0.0)
+    z = _correlated_noise(rng, n, (p, q, np.clip(own, -1.0, 1.0)))
+    return rest * z + s @ rng.standard_normal(s.shape[1])
 
 
 def _correlation_factor(spectrum, good: NDArray) -> float:
@@ -1599,7 +1646,7 @@ def _bootstrap_group_covariance(model: _Model, problem: _Problem, x: NDArray, *,
     draws = []
     try:
         for _ in range(int(n_draws)):
-            problem.data = centre + noise_scale * _correlated_noise(rng, centre.size, problem.pairs) / problem.weight
+            problem.data = centre + noise_scale * _noise_with_common(rng, problem) / problem.weight
             problem.prior = {n: (prior_at[n] + noise_scale * sd * rng.standard_normal(), sd)
                              for n, (_, sd) in prior0.items()}
             with np.errstate(over="ignore", under="ignore", invalid="ignore"):
@@ -1727,9 +1774,14 @@ def _finish(model: _Model, problem: _Problem, result, *, line_index: NDArray,
         # over every line would cost (number of lines)^2 times the correlated bin pairs
         spread = qj @ cov_plain
         shared = spread @ unit.T
-        q_var = (np.einsum("ij,ij->i", spread, qj) + _pair_term(shared, problem.pairs, diagonal=True)) * noise_scale2
-        g_cov = (spread[-3:] @ qj[-3:].T + _pair_term(shared[-3:], problem.pairs)) * noise_scale2
-        var = np.diag(cov_plain) + _pair_term(cov_plain @ unit.T, problem.pairs, diagonal=True)
+        # (and the errors common to bins far apart, _common_term)
+        q_var = (np.einsum("ij,ij->i", spread, qj) + _pair_term(shared, problem.pairs, diagonal=True)
+                 + _common_term(shared, problem, diagonal=True)) * noise_scale2
+        g_cov = (spread[-3:] @ qj[-3:].T + _pair_term(shared[-3:], problem.pairs)
+                 + _common_term(shared[-3:], problem)) * noise_scale2
+        spread_p = cov_plain @ unit.T
+        var = (np.diag(cov_plain) + _pair_term(spread_p, problem.pairs, diagonal=True)
+               + _common_term(spread_p, problem, diagonal=True))
         sd = dict(zip(names, np.sqrt(np.clip(var * noise_scale2, 0, None)) / col_scale))
     if not np.all(np.isfinite(g_cov)):
         return PlasmaFit.failed("the fit leaves the Na/Mg/Fe group intensities unconstrained "
@@ -2048,11 +2100,12 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     reason = "optimiser failed"
     linear_starts: dict = {}
     pairs = _bin_pairs(getattr(spectrum, "correlation", None), good)
+    common = _common_columns(getattr(spectrum, "common_share", None), good)
     for t_start, tau_start in starts:
         model = build()
         _initialise(model, flux, err, good, tau_start=tau_start,
                     temperatures_k=grid if t_start is None else [t_start], memo=linear_starts)
-        problem = _Problem(model, flux, err, good, prior=model.group_prior | prior, pairs=pairs)
+        problem = _Problem(model, flux, err, good, prior=model.group_prior | prior, pairs=pairs, common=common)
         try:
             result = _solve(problem, max_nfev=_START_NFEV if len(starts) > 1 else max_nfev)
         except (ValueError, np.linalg.LinAlgError) as exc:  # pragma: no cover - defensive
@@ -2327,6 +2380,10 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
     corr_all = np.asarray(getattr(frame_spectra, "correlation", np.zeros((0, 0, 0))), float)
     if corr_all.ndim != 3 or corr_all.shape[:2] != flux_all.shape:
         corr_all = None
+    # a frame's twinkle of star light: one error common to its bins (extract, module notes step 7)
+    twinkle_all = np.asarray(getattr(frame_spectra, "twinkle_share", np.zeros((0, 0))), float)
+    if twinkle_all.shape != flux_all.shape:
+        twinkle_all = None
     out = []
     for k in range(flux_all.shape[0]):
         flux, var = flux_all[k], var_all[k]
@@ -2366,7 +2423,8 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
             prior = {"log_t": (wf_params["log_t"],
                                temperature_prior_k / (_LN10 * 10.0 ** wf_params["log_t"]))}
         problem = _Problem(model, flux, err, good, prior=prior,
-                           pairs=_bin_pairs(None if corr_all is None else corr_all[k], good))
+                           pairs=_bin_pairs(None if corr_all is None else corr_all[k], good),
+                           common=_common_columns(None if twinkle_all is None else twinkle_all[k], good))
         result = _solve(problem, max_nfev=max_nfev)
         if result.status < 0 or not np.all(np.isfinite(result.x)):
             out.append(PlasmaFit.failed(f"frame {k}: optimiser failed: {result.message}",

@@ -154,3 +154,45 @@ def test_event_file_part_carries_the_common_errors():
 
     moved = regrid(wf, shift_nm=0.3, stretch=1.01)
     np.testing.assert_allclose(moved.covariance(), wf.covariance() / 1.01**2, rtol=1e-12)
+
+
+def _plasma_problem(rng):
+    """A plasma-fit problem's noise model only: 12 bins with 2 lags of correlation, of which the
+    common errors (two columns) hold their share, as extract writes them."""
+    from meteorspec import plasma
+
+    n = 12
+    s = rng.uniform(0.0, 0.5, (n, 2)) / np.sqrt(2.0)
+    rho_pix = np.column_stack([np.full(n, 0.5), np.full(n, 0.1)])
+    # the total lag correlation, as extract._with_common forms it for one column
+    rest = np.sqrt(1.0 - np.sum(s**2, axis=1))
+    total = np.zeros_like(rho_pix)
+    for d in (1, 2):
+        total[: n - d, d - 1] = rho_pix[: n - d, d - 1] * rest[: n - d] * rest[d:] + np.sum(s[: n - d] * s[d:], axis=1)
+    good = np.ones(n, bool)
+    problem = plasma._Problem.__new__(plasma._Problem)
+    problem.good = good
+    problem.pairs = plasma._bin_pairs(total, good)
+    problem.common = plasma._common_columns(s, good)
+    # the full correlation matrix written out
+    r = s @ s.T
+    for d in (1, 2):
+        for j in range(n - d):
+            r[j, j + d] = r[j + d, j] = total[j, d - 1]
+    np.fill_diagonal(r, 1.0)
+    return plasma, problem, r
+
+
+def test_plasma_covariance_and_bootstrap_noise_carry_the_common_errors():
+    rng = np.random.default_rng(5)
+    plasma, problem, r = _plasma_problem(rng)
+    g = rng.standard_normal((3, 12))
+    # the sandwich's correlated share, g (R - I) g^T, against the matrix written out
+    got = plasma._pair_term(g, problem.pairs) + plasma._common_term(g, problem)
+    np.testing.assert_allclose(got, g @ (r - np.eye(12)) @ g.T, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(plasma._pair_term(g, problem.pairs, diagonal=True)
+                               + plasma._common_term(g, problem, diagonal=True), np.diag(got), rtol=1e-10)
+    # the bootstrap's noise has that correlation: 40000 draws, sample correlations to ~0.005
+    # (standard error (1 - rho^2) / sqrt(n)); 0.02 is a 4-sigma bar
+    z = np.array([plasma._noise_with_common(rng, problem) for _ in range(40000)])
+    np.testing.assert_allclose(np.cov(z.T), r, atol=0.02)

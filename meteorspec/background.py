@@ -157,9 +157,10 @@ class Background:
     gain_estimated, read_noise_estimated : bool
         True where the value was estimated from the data rather than read from the station.
     level_samples : int
-        Fewest frames (of one field parity) whose mean gives a pixel's level: a star's
-        twinkle averages down in it by ``1 / sqrt(level_samples)`` and is then common to
-        every frame the level is subtracted from. 0: unknown.
+        Frames (of one field parity) whose mean gives a pixel's level: the first estimate's
+        count, or where :func:`refine_background` re-estimated pixels from fewer, their median
+        count. A star's twinkle averages down in the level by ``1 / sqrt(level_samples)`` and
+        is then common to every frame the level is subtracted from. 0: unknown.
     """
 
     level_adu: np.ndarray

@@ -196,3 +196,24 @@ def test_plasma_covariance_and_bootstrap_noise_carry_the_common_errors():
     # (standard error (1 - rho^2) / sqrt(n)); 0.02 is a 4-sigma bar
     z = np.array([plasma._noise_with_common(rng, problem) for _ in range(40000)])
     np.testing.assert_allclose(np.cov(z.T), r, atol=0.02)
+
+
+def test_the_levels_own_noise_is_not_taken_for_star_light():
+    # No star, but a level with its own noise (a mean of LEVEL_SAMPLES frames): above the smooth
+    # sky by noise alone, 3 sigma of the level's noise at most but for 0.13 % of the pixels
+    # (normal tail), so almost nothing twinkles; counted in full (every positive excess) it would
+    # give the bins a share of up to 0.10 here (median 0.05), common to all of them.
+    cam, geo, tr, meteor, _ = _scene()
+    rng = np.random.default_rng(3)
+    level_sd = np.sqrt((SKY_ADU / GAIN + READ_ADU**2) / LEVEL_SAMPLES)
+    bg = StarBackground(cam.height, cam.width, sky_adu=SKY_ADU, read_noise_adu=READ_ADU, gain_e_per_adu=GAIN,
+                        star_adu=level_sd * rng.standard_normal((cam.height, cam.width)),
+                        scintillation=SCINT, level_samples=LEVEL_SAMPLES)
+    frames = []
+    for m in meteor:
+        light = m.signal + SKY_ADU
+        img = rng.poisson(light * GAIN) / GAIN + READ_ADU * rng.standard_normal(light.shape)
+        frames.append(Frame(m.index, m.time_s, m.exposure_s, img.astype(np.float32), m.saturated))
+    fs = extract_spectra(frames, bg, tr, geo, camera=cam, wavelength_grid_nm=np.arange(500.0, 580.0, 0.5),
+                         optimal=False, floor_correction=False)
+    assert np.max(fs.twinkle_share) < 0.03

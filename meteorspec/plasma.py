@@ -1426,7 +1426,8 @@ def _common_columns(common_share: ArrayLike | None, good: NDArray) -> NDArray:
 
 def _common_term(g: NDArray, problem: _Problem, *, diagonal: bool = False) -> NDArray:
     """The common errors' share of ``g R g^T`` (as :func:`_pair_term`): ``S S^T`` off the diagonal
-    and beyond the pairs' lags, whose correlation holds it already."""
+    and beyond the pairs' lags (within them the pairs' correlation holds it already, as
+    ``extract._with_common`` wrote it)."""
     s = problem.common
     if s.shape[1] == 0:
         return np.zeros(g.shape[0]) if diagonal else np.zeros((g.shape[0], g.shape[0]))

@@ -161,6 +161,10 @@ class Background:
         count, or where :func:`refine_background` re-estimated pixels from fewer, their median
         count. A star's twinkle averages down in the level by ``1 / sqrt(level_samples)`` and
         is then common to every frame the level is subtracted from. 0: unknown.
+    level_count : ndarray of shape (height, width), uint16, optional
+        Samples each pixel's level is the mean of (after clipping): the level's
+        noise is the pixel's sky noise over this count, and it is common to every
+        frame the level is subtracted from (see :meth:`level_variance`). None: unknown.
     """
 
     level_adu: np.ndarray
@@ -174,6 +178,7 @@ class Background:
     gain_estimated: bool = False
     read_noise_estimated: bool = False
     level_samples: int = 0
+    level_count: np.ndarray | None = None
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -231,6 +236,23 @@ class Background:
             var, var_sky = var + extra, var_sky + extra
         return (resid.astype(np.float32, copy=False), var.astype(np.float32, copy=False),
                 var_sky.astype(np.float32, copy=False))
+
+    def level_variance(self, y_px: np.ndarray, x_px: np.ndarray) -> np.ndarray:
+        """Variance (ADU^2) of the level at full-frame pixels ``(y_px, x_px)``, float32.
+
+        The level is a (clipped) mean of ``level_count`` samples, each with the
+        pixel's read and photon noise: ``(read^2 + max(level, 0) / gain) / count``.
+        Star scintillation is left out (a star's twinkle is one factor over all
+        its pixels; the extraction carries it on its own). 0 where the count is
+        unknown.
+        """
+        if self.level_count is None or self.level_count.shape != self.level_adu.shape:
+            return np.zeros(np.shape(y_px), np.float32)
+        level = self.level_adu[y_px, x_px]
+        count = self.level_count[y_px, x_px].astype(np.float32)
+        var = np.maximum(level, np.float32(0.0)) * np.float32(1.0 / self.gain_e_per_adu) + np.float32(
+            self.read_noise_adu**2)
+        return np.where(count > 0, var / np.maximum(count, np.float32(1.0)), np.float32(0.0)).astype(np.float32)
 
     def _check(self, frame) -> None:
         h, w = self.level_adu.shape
@@ -428,6 +450,7 @@ def estimate_background(frames: Sequence, *, camera: Camera, seed: int | None = 
     # ---- choose quiet frames per parity, then pass 2 over them at full resolution
     level = np.zeros((h, w), np.float32)
     var = np.zeros((h, w), np.float32)
+    count = np.zeros((h, w), np.uint16)
     covered = np.zeros(h, bool)
     used: list[int] = []
     dof = []
@@ -443,26 +466,27 @@ def estimate_background(frames: Sequence, *, camera: Camera, seed: int | None = 
         quiet = [frames[int(p)] for p in chosen]
         used.extend(int(f.index) for f in quiet)
         dof.append(len(quiet) - 1)
-        lv, vr = _clipped_stats(quiet, clip_sigma, read_noise_adu=camera.read_noise_adu,
-                                gain_e_per_adu=camera.gain_e_per_adu)
+        lv, vr, cnt = _clipped_stats(quiet, clip_sigma, read_noise_adu=camera.read_noise_adu,
+                                     gain_e_per_adu=camera.gain_e_per_adu)
         del quiet
         rows = np.arange(y0, h, step)[: lv.shape[0]]
         level[rows] = lv
         var[rows] = vr
+        count[rows] = cnt
         covered[rows] = True
     if not covered.all():
         # fields cover all rows by construction; guard against a partial set of fields
         missing = np.flatnonzero(~covered)
         src = np.flatnonzero(covered)
         nearest = src[np.clip(np.searchsorted(src, missing), 0, src.size - 1)]
-        level[missing], var[missing] = level[nearest], var[nearest]
+        level[missing], var[missing], count[missing] = level[nearest], var[nearest], count[nearest]
 
     return _model_from_stats(level, var, camera, dof=min(dof), star_sigma=star_sigma,
-                             frames_used=np.array(sorted(used), dtype=int))
+                             frames_used=np.array(sorted(used), dtype=int), level_count=count)
 
 
 def _model_from_stats(level: np.ndarray, var: np.ndarray, camera: Camera, *, dof: int, star_sigma: float,
-                      frames_used: np.ndarray) -> Background:
+                      frames_used: np.ndarray, level_count: np.ndarray | None = None) -> Background:
     """Noise model, star mask and scintillation from per-pixel temporal level and variance."""
     sky = _smooth_sky(level)
     # a first star mask from the level alone (variance model not known yet): 5 x local robust scatter
@@ -489,7 +513,7 @@ def _model_from_stats(level: np.ndarray, var: np.ndarray, camera: Camera, *, dof
                       read_noise_adu=read, gain_e_per_adu=gain, star_mask=star_mask,
                       frames_used=frames_used, scintillation=scint,
                       sky_adu=sky, gain_estimated=gain_est, read_noise_estimated=read_est,
-                      level_samples=dof + 1)
+                      level_samples=dof + 1, level_count=level_count)
 
 
 def _check_frame(frame, h: int, w: int) -> None:
@@ -504,8 +528,9 @@ def _check_frame(frame, h: int, w: int) -> None:
 
 def _clipped_stats(frames: list, clip_sigma: float, *, read_noise_adu: float | None = None,
                    gain_e_per_adu: float | None = None,
-                   block_rows: int = 96) -> tuple[np.ndarray, np.ndarray]:
-    """Per-pixel sigma-clipped temporal mean and variance of ``n`` frames' signals, in row blocks.
+                   block_rows: int = 96) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-pixel sigma-clipped temporal mean, variance and count of kept samples (uint16) of ``n``
+    frames' signals, in row blocks.
 
     The samples are sorted along time (the fastest robust route in numpy): the
     median and the interquartile range (sigma = IQR / 1.349 for a Gaussian, common
@@ -525,6 +550,7 @@ def _clipped_stats(frames: list, clip_sigma: float, *, read_noise_adu: float | N
     sig = np.empty((rows, width), np.float32)
     mean = np.empty((rows, width), np.float32)
     var = np.empty((rows, width), np.float32)
+    kept = np.empty((rows, width), np.uint16)
     q1, q3 = (n - 1) * 0.25, (n - 1) * 0.75
     # with the camera's noise model the floor is per pixel: one pass; otherwise the floor pools
     # the whole frame's interquartile sigma, known only after a first pass
@@ -532,9 +558,11 @@ def _clipped_stats(frames: list, clip_sigma: float, *, read_noise_adu: float | N
 
     def clipped(d: np.ndarray, m0: np.ndarray, lim: np.ndarray, r0: int) -> None:
         keep = np.abs(d - m0) <= lim
-        cnt = np.maximum(keep.sum(axis=0), 1).astype(np.float32)
+        n_keep = keep.sum(axis=0)
+        cnt = np.maximum(n_keep, 1).astype(np.float32)
         m = np.where(keep, d, np.float32(0.0)).sum(axis=0) / cnt
         dev = np.where(keep, d - m, np.float32(0.0))
+        kept[r0:r0 + block_rows] = n_keep
         mean[r0:r0 + block_rows] = m
         var[r0:r0 + block_rows] = (dev * dev).sum(axis=0) / np.maximum(cnt - 1, 1)
 
@@ -556,7 +584,7 @@ def _clipped_stats(frames: list, clip_sigma: float, *, read_noise_adu: float | N
         for r0 in range(0, rows, block_rows):
             clipped(block(r0), med[r0:r0 + block_rows],
                     lim_all[r0:r0 + block_rows], r0)
-    return mean, var
+    return mean, var, kept
 
 
 def _clip_floor(med: np.ndarray, sig: np.ndarray, n: int | np.ndarray, *, read_noise_adu: float | None,
@@ -822,6 +850,7 @@ def refine_background(frames: Sequence, background: Background, track, geometry,
     # the stored temporal variance is not kept; the refit needs a per-pixel variance: use the model's
     # noise where nothing changes (it is what the fit sees at those pixels anyway)
     var_changed = np.zeros((h, w), bool)
+    level_count = None if background.level_count is None else background.level_count.copy()
     counts: list[int] = []
     for key, pos_list in by_parity.items():
         if key not in union:
@@ -836,8 +865,8 @@ def refine_background(frames: Sequence, background: Background, track, geometry,
             samples[i] = f.pixels(rr, cc)[0]
             if p in masks:
                 samples[i][masks[p][rr, cc]] = np.nan
-        lv, vr, cnt = _clipped_stats_masked(samples, clip_sigma, read_noise_adu=background.read_noise_adu,
-                                            gain_e_per_adu=background.gain_e_per_adu)
+        lv, vr, cnt, n_kept = _clipped_stats_masked(samples, clip_sigma, read_noise_adu=background.read_noise_adu,
+                                                    gain_e_per_adu=background.gain_e_per_adu)
         ok = cnt >= min_samples
         if ok.any():
             counts.append(int(np.median(cnt[ok])))
@@ -845,6 +874,8 @@ def refine_background(frames: Sequence, background: Background, track, geometry,
         level[yy, cc[ok]] = lv[ok]
         var[yy, cc[ok]] = vr[ok]
         var_changed[yy, cc[ok]] = True
+        if level_count is not None:
+            level_count[yy, cc[ok]] = n_kept[ok]
     # noise and star mask where the level changed: the first estimate's read noise, gain and
     # scintillation (fitted over the whole frame, hardly touched by the meteor) on the new level
     read, gain, scint = background.read_noise_adu, background.gain_e_per_adu, background.scintillation
@@ -867,7 +898,8 @@ def refine_background(frames: Sequence, background: Background, track, geometry,
     return Background(level_adu=level, noise_adu=noise, read_noise_adu=read, gain_e_per_adu=gain,
                       star_mask=star_mask, frames_used=background.frames_used, scintillation=scint,
                       sky_adu=sky, gain_estimated=background.gain_estimated,
-                      read_noise_estimated=background.read_noise_estimated, level_samples=int(n_level))
+                      read_noise_estimated=background.read_noise_estimated, level_samples=int(n_level),
+                      level_count=level_count)
 
 
 def _bin_stored(stack, stored: np.ndarray, camera: Camera) -> BinnedFrames:
@@ -985,8 +1017,10 @@ class _FrameTimes:
 
 
 def _clipped_stats_masked(d: np.ndarray, clip_sigma: float, *, read_noise_adu: float | None = None,
-                          gain_e_per_adu: float | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-column sigma-clipped mean, variance and sample count of ``d`` (samples, n) with NaN = absent.
+                          gain_e_per_adu: float | None = None
+                          ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Per-column sigma-clipped mean, variance, sample count and kept (unclipped) count of ``d``
+    (samples, n) with NaN = absent.
 
     As :func:`_clipped_stats` (the same noise floor on the clip, :func:`_clip_floor`),
     with a count of its own per column: NaN sort to the end, so the order
@@ -1013,4 +1047,4 @@ def _clipped_stats_masked(d: np.ndarray, clip_sigma: float, *, read_noise_adu: f
     m = np.where(keep, s, np.float32(0.0)).sum(axis=0) / k
     dev = np.where(keep, s - m, np.float32(0.0))
     v = (dev * dev).sum(axis=0) / np.maximum(k - 1, 1)
-    return m, v, cnt
+    return m, v, cnt, keep.sum(axis=0)

@@ -352,7 +352,7 @@ def test_clipped_stats_with_absent_samples_are_unbiased_on_a_faint_sky():
     d = np.stack([f.signal.ravel() for f in frames]).astype(np.float32)
     rng = np.random.default_rng(8)
     d[rng.random(d.shape) < 1.0 / 3.0] = np.nan
-    m, v, cnt = _clipped_stats_masked(d, 4.0, read_noise_adu=FAINT_READ, gain_e_per_adu=FAINT_GAIN)
+    m, v, cnt, _ = _clipped_stats_masked(d, 4.0, read_noise_adu=FAINT_READ, gain_e_per_adu=FAINT_GAIN)
     ok = cnt >= 3
     sigma = float(np.sqrt(FAINT_READ**2 + FAINT_SKY / FAINT_GAIN))
     se = sigma * np.sqrt(np.mean(1.0 / cnt[ok]) / ok.sum())

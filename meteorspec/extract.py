@@ -146,6 +146,22 @@ nm-per-pixel. The steps, per frame:
    stated without it. The background
    measures the scintillation only on stars above 20 sigma; without one it is
    0 and so is this term.
+8. **The background level's noise.** The level subtracted from a pixel is the
+   mean of the frames it was estimated from, ``Background.level_count`` of
+   them: fewer where :func:`~meteorspec.background.refine_background`
+   re-estimated the meteor's pixels from the frames in which they are dark
+   (on a slow fireball half of them from 3 or fewer). Its error, the pixel's
+   sky variance over that count (``Background.level_variance``), is part of
+   every frame's residual and the same in every frame that subtracts that
+   level. Each frame's variances and lag correlations include it; where the
+   bands of two or more frames cover one pixel (a slow meteor, or one moving
+   along its spectrum) the frames share it, and :meth:`FrameSpectra.whole_flight`
+   adds it between them (``FrameSpectra.level_share``), at lags as far apart as
+   the frames' spectra are shifted, beyond the pixels' own lags where needed.
+   Six frames on the same pixels with a level from 4 dark frames
+   (tests/test_level_noise.py, 100 seeded draws): window sums scatter by
+   0.97 (boxcar) and 1.07-1.18 (optimal; 1.03-1.06 with a perfect level) times
+   the stated error, 1.43 times the error stated without the level's noise.
 
 Memory: a frame is used once, while it streams past; only the band pixels of
 each frame (a few tens of thousands of numbers) are kept for the second pass.
@@ -215,6 +231,11 @@ _PROFILE_STEP_PX = 0.25
 # of 0.13 % per pixel (normal tail, common practice), whose twinkle is some 6 % of the pixel's
 # noise (scintillation 0.07, a level from 13 frames).
 _STAR_LIGHT_SIGMA = 3.0
+# Correlations of whole-flight bins through the background level's noise shared by frames (module
+# notes, step 8) below this do not lengthen the stored lags. Measured on seed-4 event 25 of
+# bench/bench_calibration.py (moving along its dispersion: frames' spectra share pixels 43 bins
+# apart): 43 lags at 1e-3, 46 with every value kept, and window errors (20-90 nm) equal to 0.1 ADU.
+_LEVEL_CORR_TOL = 1e-3
 
 
 # --------------------------------------------------------------------------- containers
@@ -375,6 +396,13 @@ class FrameSpectra:
         Frames whose background level is one estimate (field parity: first image row).
     twinkle_level : float
         The level's twinkle variance relative to a frame's own (``1 / level_samples``).
+    level_share : scipy.sparse.csr_matrix of shape (n_frames * n_wl, n_px), optional
+        The background level's noise at image pixels seen by more than one frame
+        (module notes, step 8): row ``k * n_wl + j`` holds bin ``j`` of frame ``k``'s
+        weight of each such pixel times the level's 1-sigma there, as a share of
+        the bin's 1-sigma (relative, like ``twinkle_share``). Its sum over a
+        frame's pixels squared is already in the bin's variance; between frames
+        it is an error they share, which :meth:`whole_flight` adds. None: none.
     """
 
     wavelength_nm: np.ndarray
@@ -396,6 +424,7 @@ class FrameSpectra:
     twinkle_share: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
     twinkle_group: np.ndarray = field(default_factory=lambda: np.zeros(0, int))
     twinkle_level: float = 0.0
+    level_share: sparse.csr_matrix | None = None
 
     @property
     def n_frames(self) -> int:
@@ -411,6 +440,11 @@ class FrameSpectra:
             value = np.asarray(getattr(self, name))
             if value.ndim >= 1 and value.shape[0] == n:
                 per_frame[name] = value[index]
+        share = self.level_share
+        if share is not None and share.shape[0] == n * self.wavelength_nm.size:
+            pos = np.arange(n)[index]
+            n_wl = self.wavelength_nm.size
+            per_frame["level_share"] = share[(pos[:, None] * n_wl + np.arange(n_wl)).ravel()]
         return replace(self, **per_frame)
 
     def whole_flight(self, *, min_coverage: float = 0.1) -> Spectrum:
@@ -467,7 +501,10 @@ class FrameSpectra:
         twinkle, common = self._twinkle(good)
         if common.shape[1]:
             var = var - (twinkle**2).sum(axis=0) + (common**2).sum(axis=1)
-        corr = self._whole_flight_correlation(good, var, twinkle, common)
+        cross = self._level_cross(good)
+        if cross is not None:
+            var = var + cross.diagonal()
+        corr = self._whole_flight_correlation(good, var, twinkle, common, cross)
         with np.errstate(invalid="ignore", divide="ignore"):
             flux = np.where(ok, flux / cover, np.nan)
             err = np.where(ok, np.sqrt(var) / cover, np.nan)
@@ -495,21 +532,64 @@ class FrameSpectra:
             cols += [np.sqrt(lam) * own[groups == g].sum(axis=0) for g in np.unique(groups)]
         return t, (np.stack(cols, axis=1) if cols else np.zeros((n_wl, 0)))
 
+    def _level_cross(self, good: np.ndarray) -> sparse.csr_matrix | None:
+        """Covariance (n_wl x n_wl, sparse) of the frame sum from the background level's noise
+        shared by different frames (``level_share``; each frame's own part is in its variance and
+        correlation already): ``A A^T - sum_k B_k B_k^T`` with ``B_k`` frame ``k``'s weights times
+        the level's 1-sigma per pixel (its unmasked bins) and ``A`` their sum over frames."""
+        share = self.level_share
+        n_wl = self.wavelength_nm.size
+        if share is None or share.shape[0] != self.n_frames * n_wl or share.nnz == 0:
+            return None
+        sd = np.sqrt(np.where(good & np.isfinite(self.variance), self.variance, 0.0)).ravel()
+        b = sparse.csr_matrix(sparse.diags(sd) @ share)
+        to_bin = sparse.csr_matrix((np.ones(b.shape[0]), (np.tile(np.arange(n_wl), self.n_frames),
+                                                          np.arange(b.shape[0]))), shape=(n_wl, b.shape[0]))
+        a = to_bin @ b
+        cross = sparse.csr_matrix(a @ a.T)
+        for k in range(self.n_frames):
+            bk = b[k * n_wl:(k + 1) * n_wl]
+            if bk.nnz:
+                cross = cross - bk @ bk.T
+        return cross
+
     def _whole_flight_correlation(self, good: np.ndarray, var_sum: np.ndarray, twinkle: np.ndarray,
-                                  common: np.ndarray) -> np.ndarray:
+                                  common: np.ndarray, cross: sparse.csr_matrix | None = None) -> np.ndarray:
         """Correlation of neighbouring bins of the frame sum (the coverage scale cancels in it): the
-        frames' covariances with their twinkle (``twinkle``) replaced by the sum's (``common``)."""
+        frames' covariances with their twinkle (``twinkle``) replaced by the sum's (``common``), plus
+        the level's noise shared by frames (``cross``, whose lags may reach beyond the frames')."""
         corr = np.asarray(self.correlation, dtype=float)
         n_wl = self.wavelength_nm.size
-        if corr.ndim != 3 or corr.shape[:2] != (self.n_frames, n_wl) or corr.shape[2] == 0:
+        if corr.ndim != 3 or corr.shape[:2] != (self.n_frames, n_wl):
+            corr = np.zeros((self.n_frames, n_wl, 0))
+        n_lag = corr.shape[2]
+        diagonals: dict[int, np.ndarray] = {}
+        if cross is not None:
+            coo = cross.tocoo()
+            lag = coo.col - coo.row
+            with np.errstate(invalid="ignore", divide="ignore"):
+                rho = np.abs(coo.data) / np.sqrt(var_sum[coo.row] * var_sum[coo.col])
+            far = (lag > 0) & (rho > _LEVEL_CORR_TOL)
+            if far.any():
+                n_lag = max(n_lag, int(lag[far].max()))
+            for d in range(1, n_lag + 1):
+                diagonals[d] = cross.diagonal(d) if d < n_wl else np.zeros(0)
+        if n_lag == 0:
             return np.zeros((n_wl, 0))
         sd = np.sqrt(np.where(good, self.variance, 0.0))
-        out = np.zeros((n_wl, corr.shape[2]))
-        for d in range(1, min(corr.shape[2], n_wl - 1) + 1):
+        out = np.zeros((n_wl, n_lag))
+        for d in range(1, min(n_lag, n_wl - 1) + 1):
             both = good[:, :-d] & good[:, d:]
-            cov = np.where(both, np.nan_to_num(corr[:, :-d, d - 1]) * sd[:, :-d] * sd[:, d:], 0.0).sum(axis=0)
+            cov = np.zeros(n_wl - d)
+            if d <= corr.shape[2]:
+                cov = np.where(both, np.nan_to_num(corr[:, :-d, d - 1]) * sd[:, :-d] * sd[:, d:], 0.0).sum(axis=0)
+            elif common.shape[1]:
+                # beyond a frame's stored lags its bins covary by its twinkle alone
+                cov = (twinkle[:, :-d] * twinkle[:, d:]).sum(axis=0)
             if common.shape[1]:
                 cov = cov - (twinkle[:, :-d] * twinkle[:, d:]).sum(axis=0) + (common[:-d] * common[d:]).sum(axis=1)
+            if d in diagonals:
+                cov = cov + diagonals[d]
             den = np.sqrt(var_sum[:-d] * var_sum[d:])
             with np.errstate(invalid="ignore", divide="ignore"):
                 out[:-d, d - 1] = np.where(den > 0, cov / np.where(den > 0, den, 1.0), 0.0)
@@ -640,6 +720,8 @@ class _Band:
     prof_px: np.ndarray = field(default_factory=lambda: np.zeros(0))  # profile density at each pixel (per px)
     floor_fix: np.ndarray = field(default_factory=lambda: np.zeros(0))  # black-level correction added to data (scaled)
     twinkle: np.ndarray = field(default_factory=lambda: np.zeros(0))  # 1-sigma twinkle of star light (scaled); empty: none
+    level_var: np.ndarray = field(default_factory=lambda: np.zeros(0))  # variance of the background level (scaled)
+    pixel_id: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))  # y * width + x of the image pixel
 
 
 def _dense_curves(geometry: SpectralGeometry, p: np.ndarray, lam: np.ndarray, order: int):
@@ -981,6 +1063,9 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
             star[on] = np.asarray(star_mask)[py[on], x_on]
         finite = np.isfinite(data) & np.isfinite(var) & np.isfinite(var_sky) & (var > 0)
         bad = off_sensor | sat | star | ~finite
+        lvar = np.zeros(n, np.float32)
+        if hasattr(background, "level_variance"):
+            lvar[on] = background.level_variance(py[on], x_on)
         twk = np.zeros(0)
         if star_level is not None:
             # star light: the level above the smooth sky by more than 3 sigma of the level's own
@@ -992,12 +1077,13 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
             twk[on] = scint * np.where(excess > _STAR_LIGHT_SIGMA * level_sd, excess, 0.0)
             twk = np.where(bad | ~np.isfinite(twk), 0.0, twk) * scale
         data = np.where(finite, data, 0.0) * scale
+        lvar = np.where(bad | ~np.isfinite(lvar), 0.0, lvar) * scale**2
         var = np.where(finite, var, np.inf) * scale**2
         var_sky = np.where(finite, np.maximum(var_sky, 1e-12), np.inf) * scale**2
         g_adu = (1.0 / gain if gain else 0.0) * scale  # var per ADU of scaled signal: scale^2 / (g scale)
         bands.append(_Band(k, u, a, b, off.astype(np.float32), disp, data, var_sky, var,
                            np.full(n, g_adu), bad, sat, off_sensor, across, drift, level_px, scale,
-                           streak_n, twinkle=twk))
+                           streak_n, twinkle=twk, level_var=lvar, pixel_id=py.astype(np.int64) * w + px))
         exposures[k] = float(frame.exposure_s)
         band_sums[k] = float(np.sum(data[~bad]))
         field_rows[k] = int(frame.y_start_px)
@@ -1044,6 +1130,7 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
     shape_var: dict[int, np.ndarray] = {}  # relative variance of each bin's scale-up from the profile shape
     box_corr: dict[int, np.ndarray] = {}
     box_twk: dict[int, np.ndarray] = {}  # the frame's own twinkle of star light per bin (1 sigma, ADU/nm)
+    level_weight: dict[int, np.ndarray] = {}  # each pixel's weight in each of its bins (as frac_cache's jj)
 
     def boxcar(band: _Band) -> tuple[bool, bool]:
         """Bin one frame's band (boxcar); returns whether it has saturated and off-sensor bins."""
@@ -1057,8 +1144,10 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
         bad_w = np.bincount(jj.ravel(), (wprof * band.bad[:, None]).ravel(), n_wl)
         sat_w = np.bincount(jj.ravel(), (wprof * band.sat[:, None]).ravel(), n_wl)
         other_w = bad_w - sat_w if sat_limit is not None else bad_w
-        v = np.bincount(jj.ravel(), (fr**2 * np.where(good, band.var, 0.0)[:, None]).ravel(), n_wl)
-        box_corr[band.frame] = _lag_correlation(jj, fr, np.where(good, band.var, 0.0), v, n_wl)
+        # the background level's noise is the pixel's too (module notes, step 8)
+        pix_var = np.where(good, band.var + band.level_var if band.level_var.size else band.var, 0.0)
+        v = np.bincount(jj.ravel(), (fr**2 * pix_var[:, None]).ravel(), n_wl)
+        box_corr[band.frame] = _lag_correlation(jj, fr, pix_var, v, n_wl)
         cover = np.bincount(jj.ravel(), fr.ravel(), n_wl)
         with np.errstate(invalid="ignore", divide="ignore"):
             lost = np.where(all_w > 0, bad_w / all_w, 1.0)
@@ -1071,6 +1160,7 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
             ok = present & (other <= max_lost_fraction) & (lost <= sat_limit)
         corr = 1.0 / np.clip(1.0 - lost, 1e-6, None)
         box_flux[band.frame] = s / widths * corr
+        level_weight[band.frame] = fr * (corr / widths)[jj]
         box_twk[band.frame] = (np.bincount(jj.ravel(), (fr * band.twinkle[:, None]).ravel(), n_wl) / widths * corr
                                if band.twinkle.size else np.zeros(n_wl))
         if sat_limit is not None and np.any(band.sat & ~band.off_sensor):
@@ -1206,8 +1296,8 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
         for band in bands:
             jj, fr = frac_cache[band.frame]
             ok = lost_ok[band.frame]
-            f_opt, v_opt, box_corr[band.frame], box_twk[band.frame] = _horne(band, jj, fr, box_flux[band.frame],
-                                                                              widths, n_wl)
+            f_opt, v_opt, box_corr[band.frame], box_twk[band.frame], level_weight[band.frame] = _horne(
+                band, jj, fr, box_flux[band.frame], widths, n_wl)
             v_opt = (v_opt + shape_var[band.frame] * np.clip(np.nan_to_num(f_opt), 0.0, None) ** 2
                      + box_twk[band.frame] ** 2 * (1.0 + level_twinkle))
             flux[band.frame] = np.where(ok & np.isfinite(f_opt), f_opt, np.nan)
@@ -1250,9 +1340,56 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
     spread = np.full(n_frames, _EVEN_LIGHT_SPREAD)
     for band in bands:
         spread[band.frame] = _light_spread(*band.light_bc)
+    level_share = _level_shares(bands, frac_cache, level_weight, variance, mask)
     return FrameSpectra(centres, widths, flux, variance, mask, time_s, tuple(flags), frame_weight,
                         use_optimal, prof_x, prof, correlation, time_s + eps * t_exp, recovered, shape_rel,
-                        spread, twinkle_share, twinkle_group, level_twinkle)
+                        spread, twinkle_share, twinkle_group, level_twinkle, level_share)
+
+
+def _level_shares(bands: list[_Band], frac_cache: dict[int, tuple[np.ndarray, np.ndarray]],
+                  weights: dict[int, np.ndarray], variance: np.ndarray, mask: np.ndarray) -> sparse.csr_matrix | None:
+    """``FrameSpectra.level_share``: each unmasked bin's weight of the pixels seen by more than one
+    frame times the level's 1-sigma there, over the bin's 1-sigma."""
+    n_frames, n_wl = variance.shape
+
+    def shares(band: _Band) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+        # (bin index per pixel, share per pixel and bin, pixel kept) of one frame
+        k = band.frame
+        if not band.level_var.size or k not in weights or k not in frac_cache:
+            return None
+        jj = frac_cache[k][0]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            sd = np.sqrt(variance[k])
+            ok = ~mask[k] & np.isfinite(sd) & (sd > 0)
+            val = weights[k] * np.sqrt(np.clip(band.level_var, 0.0, None))[:, None] / np.where(ok, sd, np.inf)[jj]
+        val = np.where(np.isfinite(val), val, 0.0)
+        return jj, val, np.any(val != 0, axis=1)
+
+    # only pixels in two or more frames carry an error common to frames: found first from the
+    # pixels alone (a long fireball's bands hold millions of pixel-bin pairs, few of them shared)
+    seen = [band.pixel_id[s[2]] for band in bands if (s := shares(band)) is not None]
+    if len(seen) < 2:
+        return None
+    ids, n_seen = np.unique(np.concatenate(seen), return_counts=True)
+    shared_ids = ids[n_seen >= 2]
+    del seen, ids, n_seen
+    if not shared_ids.size:
+        return None
+    rows, cols, vals = [], [], []
+    for band in bands:
+        s = shares(band)
+        if s is None:
+            continue
+        jj, val, _ = s
+        col = np.searchsorted(shared_ids, band.pixel_id)
+        hit = (col < shared_ids.size) & (shared_ids[np.minimum(col, shared_ids.size - 1)] == band.pixel_id)
+        keep = hit[:, None] & (val != 0)
+        if keep.any():
+            rows.append((band.frame * n_wl + jj[keep]).astype(np.int64))
+            cols.append(np.broadcast_to(col[:, None], jj.shape)[keep])
+            vals.append(val[keep].astype(np.float32))
+    return sparse.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
+                             shape=(n_frames * n_wl, shared_ids.size))
 
 
 def _rank1_model(weight: np.ndarray, flux: np.ndarray, mask: np.ndarray, widths: np.ndarray,
@@ -2099,7 +2236,7 @@ def _smooth_sky_variance(band: _Band) -> float:
 
 
 def _horne(band: _Band, jj: np.ndarray, fr: np.ndarray, first_guess: np.ndarray, widths: np.ndarray,
-           n_wl: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+           n_wl: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Horne (1986) profile-weighted estimate per bin, with fractional pixel membership.
 
     Each pixel estimates the local spectral density as ``D / (p disp s)``
@@ -2131,6 +2268,9 @@ def _horne(band: _Band, jj: np.ndarray, fr: np.ndarray, first_guess: np.ndarray,
     estimate itself), so the stated errors stay right. The last value returned
     is the same weighted sum of the pixels' twinkle of star light
     (``band.twinkle``): one coherent error per bin (module notes, step 7).
+    Before it come the lag correlations and each pixel's weight in each of
+    its bins (shape of ``fr``; the estimate is ``sum`` of weight times data).
+    The variance includes the background level's (``band.level_var``).
     """
     p = band.prof_px
     good = ~band.bad
@@ -2147,6 +2287,8 @@ def _horne(band: _Band, jj: np.ndarray, fr: np.ndarray, first_guess: np.ndarray,
         f_new = np.where(den > 0, num / den, np.nan)
     model = (fr * np.where(np.isfinite(f_new), f_new, 0.0)[jj]).sum(axis=1) * pd
     v = band.var_sky + band.gain_adu * np.clip(model, 0.0, None)
+    if band.level_var.size:
+        v = v + band.level_var
     w2v = w**2 * np.where(w > 0, v, 0.0)
     var_num = np.bincount(jj.ravel(), (fr**2 * w2v[:, None]).ravel(), n_wl)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -2156,8 +2298,10 @@ def _horne(band: _Band, jj: np.ndarray, fr: np.ndarray, first_guess: np.ndarray,
         with np.errstate(invalid="ignore", divide="ignore"):
             twk = np.where(den > 0, np.bincount(jj.ravel(), (fr * (w * band.twinkle)[:, None]).ravel(), n_wl)
                            / np.where(den > 0, den, 1.0), 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        eff = fr * w[:, None] / np.where(den > 0, den, np.inf)[jj]
     # bins share pixels: their estimates are correlated (the 1 / den scales cancel in the coefficient)
-    return f_new, var_f, _lag_correlation(jj, fr, w2v, var_num, n_wl), twk
+    return f_new, var_f, _lag_correlation(jj, fr, w2v, var_num, n_wl), twk, eff
 
 
 def _lag_correlation(jj: np.ndarray, fr: np.ndarray, pixel_var: np.ndarray, bin_var: np.ndarray,

@@ -721,7 +721,7 @@ class _Band:
     floor_fix: np.ndarray = field(default_factory=lambda: np.zeros(0))  # black-level correction added to data (scaled)
     twinkle: np.ndarray = field(default_factory=lambda: np.zeros(0))  # 1-sigma twinkle of star light (scaled); empty: none
     level_var: np.ndarray = field(default_factory=lambda: np.zeros(0))  # variance of the background level (scaled)
-    pixel_id: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))  # y * width + x of the image pixel
+    pixel_id: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int32))  # y * width + x of the image pixel
 
 
 def _dense_curves(geometry: SpectralGeometry, p: np.ndarray, lam: np.ndarray, order: int):
@@ -1077,13 +1077,13 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
             twk[on] = scint * np.where(excess > _STAR_LIGHT_SIGMA * level_sd, excess, 0.0)
             twk = np.where(bad | ~np.isfinite(twk), 0.0, twk) * scale
         data = np.where(finite, data, 0.0) * scale
-        lvar = np.where(bad | ~np.isfinite(lvar), 0.0, lvar) * scale**2
+        lvar = (np.where(bad | ~np.isfinite(lvar), 0.0, lvar) * scale**2).astype(np.float32)
         var = np.where(finite, var, np.inf) * scale**2
         var_sky = np.where(finite, np.maximum(var_sky, 1e-12), np.inf) * scale**2
         g_adu = (1.0 / gain if gain else 0.0) * scale  # var per ADU of scaled signal: scale^2 / (g scale)
         bands.append(_Band(k, u, a, b, off.astype(np.float32), disp, data, var_sky, var,
                            np.full(n, g_adu), bad, sat, off_sensor, across, drift, level_px, scale,
-                           streak_n, twinkle=twk, level_var=lvar, pixel_id=py.astype(np.int64) * w + px))
+                           streak_n, twinkle=twk, level_var=lvar, pixel_id=(py * w + px).astype(np.int32)))
         exposures[k] = float(frame.exposure_s)
         band_sums[k] = float(np.sum(data[~bad]))
         field_rows[k] = int(frame.y_start_px)
@@ -1130,7 +1130,9 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
     shape_var: dict[int, np.ndarray] = {}  # relative variance of each bin's scale-up from the profile shape
     box_corr: dict[int, np.ndarray] = {}
     box_twk: dict[int, np.ndarray] = {}  # the frame's own twinkle of star light per bin (1 sigma, ADU/nm)
-    level_weight: dict[int, np.ndarray] = {}  # each pixel's weight in each of its bins (as frac_cache's jj)
+    # each pixel's weight in a bin is its fraction (frac_cache) times a per-pixel factor (None: 1)
+    # times a per-bin factor: kept in that form, a few numbers per pixel for every frame
+    level_weight: dict[int, tuple[np.ndarray | None, np.ndarray]] = {}
 
     def boxcar(band: _Band) -> tuple[bool, bool]:
         """Bin one frame's band (boxcar); returns whether it has saturated and off-sensor bins."""
@@ -1160,7 +1162,7 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
             ok = present & (other <= max_lost_fraction) & (lost <= sat_limit)
         corr = 1.0 / np.clip(1.0 - lost, 1e-6, None)
         box_flux[band.frame] = s / widths * corr
-        level_weight[band.frame] = fr * (corr / widths)[jj]
+        level_weight[band.frame] = (None, corr / widths)
         box_twk[band.frame] = (np.bincount(jj.ravel(), (fr * band.twinkle[:, None]).ravel(), n_wl) / widths * corr
                                if band.twinkle.size else np.zeros(n_wl))
         if sat_limit is not None and np.any(band.sat & ~band.off_sensor):
@@ -1296,8 +1298,9 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
         for band in bands:
             jj, fr = frac_cache[band.frame]
             ok = lost_ok[band.frame]
-            f_opt, v_opt, box_corr[band.frame], box_twk[band.frame], level_weight[band.frame] = _horne(
+            f_opt, v_opt, box_corr[band.frame], box_twk[band.frame], eff = _horne(
                 band, jj, fr, box_flux[band.frame], widths, n_wl)
+            level_weight[band.frame] = eff
             v_opt = (v_opt + shape_var[band.frame] * np.clip(np.nan_to_num(f_opt), 0.0, None) ** 2
                      + box_twk[band.frame] ** 2 * (1.0 + level_twinkle))
             flux[band.frame] = np.where(ok & np.isfinite(f_opt), f_opt, np.nan)
@@ -1347,7 +1350,8 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
 
 
 def _level_shares(bands: list[_Band], frac_cache: dict[int, tuple[np.ndarray, np.ndarray]],
-                  weights: dict[int, np.ndarray], variance: np.ndarray, mask: np.ndarray) -> sparse.csr_matrix | None:
+                  weights: dict[int, tuple[np.ndarray | None, np.ndarray]], variance: np.ndarray,
+                  mask: np.ndarray) -> sparse.csr_matrix | None:
     """``FrameSpectra.level_share``: each unmasked bin's weight of the pixels seen by more than one
     frame times the level's 1-sigma there, over the bin's 1-sigma."""
     n_frames, n_wl = variance.shape
@@ -1357,11 +1361,15 @@ def _level_shares(bands: list[_Band], frac_cache: dict[int, tuple[np.ndarray, np
         k = band.frame
         if not band.level_var.size or k not in weights or k not in frac_cache:
             return None
-        jj = frac_cache[k][0]
+        jj, fr = frac_cache[k]
+        per_px, per_bin = weights[k]
+        px_sd = np.sqrt(np.clip(band.level_var, 0.0, None))
+        if per_px is not None:
+            px_sd = px_sd * per_px
         with np.errstate(invalid="ignore", divide="ignore"):
             sd = np.sqrt(variance[k])
             ok = ~mask[k] & np.isfinite(sd) & (sd > 0)
-            val = weights[k] * np.sqrt(np.clip(band.level_var, 0.0, None))[:, None] / np.where(ok, sd, np.inf)[jj]
+            val = fr * px_sd[:, None] * (per_bin / np.where(ok, sd, np.inf))[jj]
         val = np.where(np.isfinite(val), val, 0.0)
         return jj, val, np.any(val != 0, axis=1)
 
@@ -1375,7 +1383,8 @@ def _level_shares(bands: list[_Band], frac_cache: dict[int, tuple[np.ndarray, np
     del seen, ids, n_seen
     if not shared_ids.size:
         return None
-    rows, cols, vals = [], [], []
+    # one frame's block at a time (float32 values, int32 indices): the whole never exists as triplets
+    blocks: dict[int, sparse.csr_matrix] = {}
     for band in bands:
         s = shares(band)
         if s is None:
@@ -1385,11 +1394,12 @@ def _level_shares(bands: list[_Band], frac_cache: dict[int, tuple[np.ndarray, np
         hit = (col < shared_ids.size) & (shared_ids[np.minimum(col, shared_ids.size - 1)] == band.pixel_id)
         keep = hit[:, None] & (val != 0)
         if keep.any():
-            rows.append((band.frame * n_wl + jj[keep]).astype(np.int64))
-            cols.append(np.broadcast_to(col[:, None], jj.shape)[keep])
-            vals.append(val[keep].astype(np.float32))
-    return sparse.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
-                             shape=(n_frames * n_wl, shared_ids.size))
+            blocks[band.frame] = sparse.csr_matrix(
+                (val[keep].astype(np.float32), (jj[keep].astype(np.int32),
+                                                np.broadcast_to(col[:, None], jj.shape)[keep].astype(np.int32))),
+                shape=(n_wl, shared_ids.size))
+    empty = sparse.csr_matrix((n_wl, shared_ids.size), dtype=np.float32)
+    return sparse.vstack([blocks.get(k, empty) for k in range(n_frames)], format="csr", dtype=np.float32)
 
 
 def _rank1_model(weight: np.ndarray, flux: np.ndarray, mask: np.ndarray, widths: np.ndarray,
@@ -2268,8 +2278,9 @@ def _horne(band: _Band, jj: np.ndarray, fr: np.ndarray, first_guess: np.ndarray,
     estimate itself), so the stated errors stay right. The last value returned
     is the same weighted sum of the pixels' twinkle of star light
     (``band.twinkle``): one coherent error per bin (module notes, step 7).
-    Before it come the lag correlations and each pixel's weight in each of
-    its bins (shape of ``fr``; the estimate is ``sum`` of weight times data).
+    Before it come the lag correlations, and last each pixel's weight in its
+    bins as a per-pixel and a per-bin factor of ``fr`` (the estimate is the
+    sum over pixels of ``fr`` times both factors times the data).
     The variance includes the background level's (``band.level_var``).
     """
     p = band.prof_px
@@ -2299,9 +2310,9 @@ def _horne(band: _Band, jj: np.ndarray, fr: np.ndarray, first_guess: np.ndarray,
             twk = np.where(den > 0, np.bincount(jj.ravel(), (fr * (w * band.twinkle)[:, None]).ravel(), n_wl)
                            / np.where(den > 0, den, 1.0), 0.0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        eff = fr * w[:, None] / np.where(den > 0, den, np.inf)[jj]
+        per_bin = 1.0 / np.where(den > 0, den, np.inf)
     # bins share pixels: their estimates are correlated (the 1 / den scales cancel in the coefficient)
-    return f_new, var_f, _lag_correlation(jj, fr, w2v, var_num, n_wl), twk, eff
+    return f_new, var_f, _lag_correlation(jj, fr, w2v, var_num, n_wl), twk, (w, per_bin)
 
 
 def _lag_correlation(jj: np.ndarray, fr: np.ndarray, pixel_var: np.ndarray, bin_var: np.ndarray,

@@ -84,6 +84,25 @@ def test_noise_draw_changes_the_noise_only():
     assert np.array_equal(noisy[0].stored, render_event(spec).stored)
 
 
+def test_true_background_is_the_mean_of_meteor_free_light():
+    # Rendered.background_adu (an oracle for benches) is the light of a frame without the
+    # meteor and without twinkle: without noise (no sky, no twinkle) it is every frame's light
+    # wherever the meteor never reaches; with noise the sky is in it, and a frame's light there
+    # differs from it only by the stars' twinkle
+    spec = tiny()
+    clean = render_event(dataclasses.replace(spec, noise=False))
+    still = np.all(clean.linear_clean == clean.linear_clean[0], axis=0)  # the meteor never lit
+    assert still.mean() > 0.5 and np.any(clean.background_adu[still] > 0.1)  # and (faint) stars are there
+    assert_allclose(clean.linear_clean[0][still], clean.background_adu[still], rtol=1e-6, atol=1e-4)
+    noisy = render_event(spec)
+    sky = (noisy.background_adu - clean.background_adu)[still]
+    assert float(np.median(sky[sky > 0])) == pytest.approx(spec.sky_adu, rel=0.15)  # 0.9-1.1 x gradient
+    twinkle = (noisy.linear_clean[0] - noisy.background_adu)[still]
+    # 7 % per star (render.SCINTILLATION): within 5 sigma of it
+    assert np.all(np.abs(twinkle) <= 0.35 * clean.background_adu[still] + 1e-4)
+    assert np.any(np.abs(twinkle) > 1e-4)
+
+
 @pytest.mark.parametrize("form", ["avi", "fits", "tiff", "fits-frames"])
 def test_written_event_loads_through_the_readers(tmp_path, form):
     spec = tiny(video_form=form, delta_grooves_frac=-0.005, delta_dispersion_deg=0.5, delta_tilt_deg=-3.0)

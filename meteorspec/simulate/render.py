@@ -133,6 +133,9 @@ class Rendered:
         The atmosphere applied (None: none).
     star_altitude_deg : ndarray of shape (n_stars,)
         NaN without an atmosphere.
+    background_adu : ndarray of shape (height, width), float32
+        The background's true mean: sky plus the stars over one exposure without their
+        twinkle (linear ADU), what a background estimate from infinitely many frames gives.
     """
 
     stored: np.ndarray
@@ -150,6 +153,7 @@ class Rendered:
     transmission: np.ndarray
     atmosphere: ExtinctionModel | None
     star_altitude_deg: np.ndarray
+    background_adu: np.ndarray | None = None
 
     def frame_stack(self) -> FrameStack:
         """The rendered video as the pipeline sees it after decoding (no file written)."""
@@ -402,6 +406,10 @@ def render_event(spec: EventSpec, *, station: Station | None = None) -> Rendered
             saturated=saturated, off_frame=off, first_order_on_sensor=on_sensor, n_substeps=n_sub,
             altitude_deg=alt_mid))
 
+    background = sky.copy()
+    for sp_patch in star_patches:
+        if sp_patch is not None:
+            sp_patch.add_to(background, exps[0].t_end_s - exps[0].t_start_s)
     stored = np.empty(clean.shape, dtype=np.uint8 if cam.bit_depth <= 8 else np.uint16)
     for k in range(spec.n_frames):
         frame = clean[k].astype(np.float64)
@@ -412,4 +420,5 @@ def render_event(spec: EventSpec, *, station: Station | None = None) -> Rendered
     return Rendered(stored=stored, linear_clean=clean, exposures=exps, truths=truths,
                     emission=model, response=resp, stars=stars, star_zeroth_adu_s=star_zeroth,
                     trajectory=traj, light_curve=lc, station=station, geometry=geo,
-                    transmission=trans_table, atmosphere=atmosphere, star_altitude_deg=star_alt)
+                    transmission=trans_table, atmosphere=atmosphere, star_altitude_deg=star_alt,
+                    background_adu=background.astype(np.float32))

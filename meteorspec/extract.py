@@ -128,7 +128,8 @@ nm-per-pixel. The steps, per frame:
    level's own noise, ``_STAR_LIGHT_SIGMA``) is subtracted as the level, but
    in each exposure it twinkles by the background's measured ``scintillation``,
    the same factor over a star's whole spectrum, and the level itself holds
-   that twinkle averaged over its ``level_samples`` frames. Per-pixel
+   that twinkle averaged over the frames it came from (each pixel's
+   ``level_count``, else ``level_samples``). Per-pixel
    variances miss it: its error is common to every bin of a frame, its own
    part independent between frames and the level's part common to the frames
    of one field parity. The extraction weighs the pixels' twinkle (scintillation
@@ -395,7 +396,9 @@ class FrameSpectra:
     twinkle_group : ndarray of int, shape (n_frames,)
         Frames whose background level is one estimate (field parity: first image row).
     twinkle_level : float
-        The level's twinkle variance relative to a frame's own (``1 / level_samples``).
+        The level's twinkle variance relative to a frame's own: ``1 / level_samples``, or
+        with each pixel's sample count known (``Background.level_count``) its inverse averaged
+        over the star light under the band, weighted by its twinkle variance.
     level_share : scipy.sparse.csr_matrix of shape (n_frames * n_wl, n_px), optional
         The background level's noise at image pixels seen by more than one frame
         (module notes, step 8): row ``k * n_wl + j`` holds bin ``j`` of frame ``k``'s
@@ -963,6 +966,12 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
     star_level = level_full if twinkle_ok else None
     n_level = int(getattr(background, "level_samples", 0) or 0)
     level_twinkle = 1.0 / n_level if n_level > 0 else 0.0  # the level's share of a frame's twinkle variance
+    # with each pixel's sample count known, that share is 1 / count averaged over the star light
+    # (weighted by its twinkle variance) and the star-light threshold uses the level's own variance
+    level_count = getattr(background, "level_count", None)
+    if not (star_level is not None and isinstance(level_count, np.ndarray) and level_count.shape == star_level.shape):
+        level_count = None
+    twinkle_by_count = [0.0, 0.0]  # sums of twinkle variance / count and of twinkle variance
     if isinstance(sky_full, np.ndarray) and sky_full.shape == np.shape(level_full):
         level_full = sky_full
     if level_full is not None and np.ndim(level_full) != 2:
@@ -1072,10 +1081,20 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
             # noise (a frame's sky noise over sqrt(level_samples)); the level's noise elsewhere,
             # counted as star light, would twinkle coherently over every bin
             excess = star_level[py[on], x_on] - sky_full[py[on], x_on]
-            level_sd = np.sqrt(np.maximum(var_sky[on], 0.0) * level_twinkle) if n_level > 0 else 0.0
+            if level_count is not None:
+                level_sd = np.sqrt(np.maximum(lvar[on], 0.0))
+            else:
+                level_sd = np.sqrt(np.maximum(var_sky[on], 0.0) * level_twinkle) if n_level > 0 else 0.0
             twk = np.zeros(n)
             twk[on] = scint * np.where(excess > _STAR_LIGHT_SIGMA * level_sd, excess, 0.0)
             twk = np.where(bad | ~np.isfinite(twk), 0.0, twk) * scale
+            if level_count is not None:
+                cnt = np.zeros(n)
+                cnt[on] = level_count[py[on], x_on]
+                t2 = twk**2
+                use = (cnt > 0) & (t2 > 0)
+                twinkle_by_count[0] += float(np.sum(t2[use] / cnt[use]))
+                twinkle_by_count[1] += float(np.sum(t2[use]))
         data = np.where(finite, data, 0.0) * scale
         lvar = (np.where(bad | ~np.isfinite(lvar), 0.0, lvar) * scale**2).astype(np.float32)
         var = np.where(finite, var, np.inf) * scale**2
@@ -1088,6 +1107,8 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
         band_sums[k] = float(np.sum(data[~bad]))
         field_rows[k] = int(frame.y_start_px)
 
+    if twinkle_by_count[1] > 0:
+        level_twinkle = twinkle_by_count[0] / twinkle_by_count[1]
     n_frames = len(times)
     time_s = np.asarray(times, dtype=float)
     frame_weight = np.asarray(weights, dtype=float)

@@ -217,3 +217,28 @@ def test_the_levels_own_noise_is_not_taken_for_star_light():
     fs = extract_spectra(frames, bg, tr, geo, camera=cam, wavelength_grid_nm=np.arange(500.0, 580.0, 0.5),
                          optimal=False, floor_correction=False)
     assert np.max(fs.twinkle_share) < 0.03
+
+
+def test_the_levels_twinkle_share_follows_each_pixels_sample_count():
+    # a background that knows each pixel's sample count: the level's share of the twinkle variance
+    # is 1 / count over the star light (here 3 under the star's spectrum, 9 elsewhere), not the
+    # event's single level_samples
+    from meteorspec.background import Background
+
+    cam, geo, tr, meteor, star = _scene()
+    shape = (cam.height, cam.width)
+    count = np.full(shape, LEVEL_SAMPLES, np.uint16)
+    count[star > 1.0] = 3
+    sky = np.full(shape, SKY_ADU, np.float32)
+    bg = Background(level_adu=(sky + star).astype(np.float32), noise_adu=np.ones(shape, np.float32),
+                    read_noise_adu=READ_ADU, gain_e_per_adu=GAIN, star_mask=np.zeros(shape, bool),
+                    frames_used=np.arange(LEVEL_SAMPLES), scintillation=SCINT, sky_adu=sky,
+                    level_samples=LEVEL_SAMPLES, level_count=count)
+    frames = [Frame(m.index, m.time_s, m.exposure_s, (m.signal + sky + star).astype(np.float32), m.saturated)
+              for m in meteor]
+    fs = extract_spectra(frames, bg, tr, geo, camera=cam, wavelength_grid_nm=np.arange(500.0, 580.0, 0.5),
+                         floor_correction=False)
+    assert np.max(fs.twinkle_share) > 0.1
+    # star light counts above 3 sigma of the level's own noise, sqrt((9 + 20 / 2) / 3) = 2.5 ADU
+    # where the count is 3: all of it lies where the count is 3
+    assert fs.twinkle_level == pytest.approx(1.0 / 3.0, rel=1e-9)

@@ -140,6 +140,32 @@ def test_dropping_frames_sums_exactly_the_remaining_frames(event):
     assert_allclose(whole.flux, view.flux - dropped, rtol=1e-9, atol=1e-9 * np.nanmax(view.flux))
 
 
+def test_recombined_frames_keep_the_stored_error_structure(tmp_path):
+    # frames whose bins correlate (shared pixels) and share an error (twinkle): the file keeps the
+    # whole flight's structure; with every frame kept the review reproduces it exactly, with
+    # frames dropped it keeps the coefficients and never states less than the frames' quadrature sum
+    frames = _true_frames()
+    n_f, n_wl = frames.flux.shape
+    corr = np.zeros((n_f, n_wl, 2), np.float32)
+    corr[:, :, 0], corr[:, :, 1] = 0.6, 0.2
+    twinkle = np.where(frames.mask, 0.0, 0.3)
+    frames = replace(frames, correlation=corr, twinkle_share=twinkle, twinkle_group=np.zeros(n_f, int),
+                     twinkle_level=0.1)
+    path = write_synthetic_event(tmp_path / f"{EVENT_ID}.h5", frames)
+    view = open_event(path)
+    assert view.correlation.shape == (n_wl, 2) and view.common_share.shape[1] > 0
+    stored = frames.whole_flight()
+    every = combine_frames(view, np.ones(n_f, bool))
+    assert_allclose(every.flux_err, stored.flux_err, rtol=1e-6)
+    assert_allclose(every.covariance(), stored.covariance(), rtol=1e-5, atol=1e-12 * np.nanmax(stored.covariance()))
+    keep = kept_frames(view, Corrections(dropped_frames=(3, 4)))
+    some = combine_frames(view, keep)
+    quadrature = np.sqrt(np.nansum(view.per_frame_err[keep] ** 2, axis=0))
+    assert np.all(some.flux_err >= quadrature * (1 - 1e-9))
+    assert np.all(some.flux_err > 1.01 * quadrature)  # the twinkle, common to frames, adds coherently
+    assert some.correlation.shape == (n_wl, 2)
+
+
 def test_a_masked_sample_is_scaled_by_the_light_share_of_the_kept_frames(event):
     # FrameSpectra.whole_flight's rule: the unmasked samples' sum over the share of the light they carry
     frames, path = event

@@ -255,6 +255,8 @@ class EventView:
     software_version: str = ""   # of the automatic run under review
     response_nm: tuple[np.ndarray, np.ndarray] | None = None
     shape_rel_err: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+    correlation: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))   # /spectrum/flux_correlation
+    common_share: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))  # /spectrum/flux_common_share
 
     @property
     def n_frames(self) -> int:
@@ -343,7 +345,15 @@ class EventView:
                    software_version=str(ev["attrs"].get("software_version", "")), response_nm=response_nm,
                    shape_rel_err=(np.asarray(d["per_frame_shape_rel_err"], float)
                                   if np.shape(d.get("per_frame_shape_rel_err", ())) == pf.shape
-                                  else np.zeros((0, 0))))
+                                  else np.zeros((0, 0))),
+                   correlation=_per_bin_columns(d.get("flux_correlation"), wl.size),
+                   common_share=_per_bin_columns(d.get("flux_common_share"), wl.size))
+
+
+def _per_bin_columns(value: Any, n_wl: int) -> np.ndarray:
+    """A stored (n_wl, k) table of per-bin columns, or an empty one where absent or misshapen."""
+    a = np.asarray(value if value is not None else np.zeros((0, 0)), float)
+    return a if a.ndim == 2 and a.shape[0] == n_wl and np.all(np.isfinite(a)) else np.zeros((0, 0))
 
 
 def estimate_frame_weight(per_frame: np.ndarray, mask: np.ndarray, *, lit: np.ndarray | None = None,
@@ -449,12 +459,30 @@ def combine_frames(view: EventView, keep: np.ndarray) -> Spectrum:
     Where none of the kept frames is masked this is exactly the sum of their per-frame
     spectra; elsewhere the sum is divided by the share of the kept frames' light that the
     unmasked ones carry.
+
+    The file keeps the whole flight's error structure but not each frame's: the bins'
+    correlation (pixels shared by neighbouring bins, and the background level's noise shared
+    by frames) and the errors common to far bins (twinkling star light), and errors summed
+    over frames beyond their quadrature sum. The kept frames' spectrum takes the whole
+    flight's correlation and common shares, and each bin's variance is raised from the kept
+    frames' quadrature sum by the whole flight's ratio of its stored variance to that sum.
+    With every frame kept this is the stored error structure exactly; with frames dropped it
+    overstates the errors that frames share (fewer frames share them), never understates them.
     """
-    rel = view.shape_rel_err[keep] if view.shape_rel_err.shape == view.per_frame.shape else np.zeros((0, 0))
-    spectra = FrameSpectra(view.wavelength_nm, view.bin_width_nm, view.per_frame[keep],
-                           view.per_frame_err[keep] ** 2, view.per_frame_mask[keep], view.time_s[keep], (),
-                           frame_weight=view.frame_weight[keep], shape_rel_err=rel)
-    return spectra.whole_flight()
+    def plain(index: np.ndarray) -> Spectrum:
+        rel = (view.shape_rel_err[index] if view.shape_rel_err.shape == view.per_frame.shape
+               else np.zeros((0, 0)))
+        return FrameSpectra(view.wavelength_nm, view.bin_width_nm, view.per_frame[index],
+                            view.per_frame_err[index] ** 2, view.per_frame_mask[index], view.time_s[index], (),
+                            frame_weight=view.frame_weight[index], shape_rel_err=rel).whole_flight()
+
+    kept = plain(keep)
+    everything = plain(np.ones(view.n_frames, bool))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.asarray(view.flux_err, float) ** 2 / everything.flux_err**2
+    ratio = np.where(np.isfinite(ratio) & (ratio > 1.0), ratio, 1.0) if ratio.shape == kept.flux_err.shape else 1.0
+    return Spectrum(kept.wavelength_nm, kept.bin_width_nm, kept.flux, kept.flux_err * np.sqrt(ratio), kept.mask,
+                    view.correlation, view.common_share)
 
 
 def corrected_wavelength(wavelength_nm: np.ndarray, shift_nm: float, stretch: float) -> np.ndarray:

@@ -466,8 +466,10 @@ def combine_frames(view: EventView, keep: np.ndarray) -> Spectrum:
     over frames beyond their quadrature sum. The kept frames' spectrum takes the whole
     flight's correlation and common shares, and each bin's variance is raised from the kept
     frames' quadrature sum by the whole flight's ratio of its stored variance to that sum.
-    With every frame kept this is the stored error structure exactly; with frames dropped it
-    overstates the errors that frames share (fewer frames share them), never understates them.
+    With every frame kept this is the stored error structure exactly. With frames dropped it is
+    an approximation: it overstates the errors that frames share (fewer frames share them), and
+    the bins' correlation is the whole flight's mix of the frames' (each frame's is set by its
+    band's pixels, much alike along a flight).
     """
     def plain(index: np.ndarray) -> Spectrum:
         rel = (view.shape_rel_err[index] if view.shape_rel_err.shape == view.per_frame.shape

@@ -1440,7 +1440,11 @@ def _common_term(g: NDArray, problem: _Problem, *, diagonal: bool = False) -> ND
     return a @ a.T - (g * s2) @ g.T - _pair_term(g, within)
 
 
-_PAIR_BLOCK = 2048  # correlated bin pairs per block of _pair_term (memory, not results)
+# correlated bin pairs per block of _pair_term (memory, not results): each block's temporaries are
+# rows x pairs; 512 keeps them near 25 MB for 2000 line rows. With the level's noise a slow meteor's
+# whole flight correlates bins a frame's shift apart (sample event 20261113T230251Z_QM03: 49 lags),
+# and 2048 took the process's peak from 520 to 603 MB; 512 gives 499 MB and no slower a fit.
+_PAIR_BLOCK = 512
 
 
 def _pair_term(g: NDArray, pairs: tuple[NDArray, NDArray, NDArray], *, diagonal: bool = False) -> NDArray:

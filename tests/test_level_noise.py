@@ -21,6 +21,7 @@ from meteorspec.extract import FrameSpectra, extract_spectra
 from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
 from meteorspec.video import Frame
 from test_extract import LinearTrack, camera, render, times
+from test_twinkle import window_sums
 
 SKY_ADU, READ_ADU, GAIN = 20.0, 3.0, 2.0
 DARK_FRAMES = 4  # samples of the level: its variance is a quarter of a frame's sky variance
@@ -65,11 +66,9 @@ def _draws(n_draws: int, *, with_count: bool = True, optimal: bool = False):
                   for m in meteor]
         fs = extract_spectra(frames, bg, tr, geo, camera=cam, wavelength_grid_nm=grid, optimal=optimal,
                              floor_correction=False)
-        wf = fs.whole_flight()
-        sel = [(grid >= lo) & (grid < hi) & ~wf.mask for lo, hi in WINDOWS_NM]
-        sums.append([float(np.sum(wf.flux[s] * wf.bin_width_nm[s])) for s in sel])
-        g = np.stack([np.where(s, wf.bin_width_nm, 0.0) for s in sel])
-        cov.append(g @ np.nan_to_num(wf.covariance()) @ g.T)
+        s, c = window_sums(fs.whole_flight(), WINDOWS_NM)
+        sums.append(s)
+        cov.append(c)
     return np.array(sums), np.mean(cov, axis=0), fs
 
 

@@ -72,12 +72,17 @@ def _draws(n_draws: int, *, stated_scint: float, optimal: bool = False):
             frames.append(Frame(m.index, m.time_s, m.exposure_s, img.astype(np.float32), m.saturated))
         fs = extract_spectra(frames, bg, tr, geo, camera=cam, wavelength_grid_nm=grid, optimal=optimal,
                              floor_correction=False)
-        wf = fs.whole_flight()
-        sel = [(grid >= lo) & (grid < hi) & ~wf.mask for lo, hi in WINDOWS_NM]
-        sums.append([float(np.sum(wf.flux[s] * wf.bin_width_nm[s])) for s in sel])
-        g = np.stack([np.where(s, wf.bin_width_nm, 0.0) for s in sel])
-        cov.append(g @ np.nan_to_num(wf.covariance()) @ g.T)
+        s, c = window_sums(fs.whole_flight(), WINDOWS_NM)
+        sums.append(s)
+        cov.append(c)
     return np.array(sums), np.mean(cov, axis=0), fs
+
+
+def window_sums(wf: Spectrum, windows_nm) -> tuple[list[float], np.ndarray]:
+    """Energies of the whole flight's unmasked bins in each window and their stated covariance."""
+    sel = [(wf.wavelength_nm >= lo) & (wf.wavelength_nm < hi) & ~wf.mask for lo, hi in windows_nm]
+    g = np.stack([np.where(s, wf.bin_width_nm, 0.0) for s in sel])
+    return [float(np.sum(wf.flux[s] * wf.bin_width_nm[s])) for s in sel], g @ np.nan_to_num(wf.covariance()) @ g.T
 
 
 @pytest.mark.parametrize("optimal", [False, True])

@@ -1078,8 +1078,9 @@ def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry
         twk = np.zeros(0)
         if star_level is not None:
             # star light: the level above the smooth sky by more than 3 sigma of the level's own
-            # noise (a frame's sky noise over sqrt(level_samples)); the level's noise elsewhere,
-            # counted as star light, would twinkle coherently over every bin
+            # noise (from each pixel's sample count, else a frame's sky noise over
+            # sqrt(level_samples)); the level's noise elsewhere, counted as star light, would
+            # twinkle coherently over every bin
             excess = star_level[py[on], x_on] - sky_full[py[on], x_on]
             if level_count is not None:
                 level_sd = np.sqrt(np.maximum(lvar[on], 0.0))
@@ -2267,7 +2268,7 @@ def _smooth_sky_variance(band: _Band) -> float:
 
 
 def _horne(band: _Band, jj: np.ndarray, fr: np.ndarray, first_guess: np.ndarray, widths: np.ndarray,
-           n_wl: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+           n_wl: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, tuple[np.ndarray, np.ndarray]]:
     """Horne (1986) profile-weighted estimate per bin, with fractional pixel membership.
 
     Each pixel estimates the local spectral density as ``D / (p disp s)``
@@ -2296,13 +2297,14 @@ def _horne(band: _Band, jj: np.ndarray, fr: np.ndarray, first_guess: np.ndarray,
     residuals (+1.7 to +2.5 % on the faint sample's groups against the
     boxcar sum, 10 fresh-noise renders). The estimate's variance uses the
     local model (each pixel's sky variance plus the shot noise of the
-    estimate itself), so the stated errors stay right. The last value returned
-    is the same weighted sum of the pixels' twinkle of star light
-    (``band.twinkle``): one coherent error per bin (module notes, step 7).
-    Before it come the lag correlations, and last each pixel's weight in its
-    bins as a per-pixel and a per-bin factor of ``fr`` (the estimate is the
-    sum over pixels of ``fr`` times both factors times the data).
-    The variance includes the background level's (``band.level_var``).
+    estimate itself, and the background level's, ``band.level_var``), so the
+    stated errors stay right.
+
+    Returns the estimate, its variance and lag correlations, the same weighted
+    sum of the pixels' twinkle of star light (``band.twinkle``: one coherent
+    error per bin, module notes step 7), and each pixel's weight in its bins
+    as a per-pixel and a per-bin factor of ``fr`` (the estimate is the sum
+    over pixels of ``fr`` times both factors times the data).
     """
     p = band.prof_px
     good = ~band.bad

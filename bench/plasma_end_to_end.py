@@ -71,6 +71,14 @@ event by event.
 The random events are rendered without an atmosphere by default, which the noise-free truth
 assumes (with ``--keep-pointing`` it is skipped).
 
+``--oracle-draws K`` (implies ``--oracle``) also fits the noise-free truth K times with noise
+added, drawn from the spectrum's own covariance (:meth:`Spectrum.covariance`: the bins'
+correlation and the errors common to many bins), seeded by the event's id. The mean of those
+fits minus the noise-free fit is what noise alone does to the plasma fit's composition on
+average (its estimator bias), apart from extraction and calibration; their spread against the
+fits' stated errors checks those errors on the fit alone. A mean of K fits has a standard
+error of sd / sqrt(K) (common practice).
+
 The SNR of an event is recovered from its spec by inverting
 ``simulate.peak_for_line_snr`` (bisection). No assertions; ``--out FILE`` writes one JSON
 line per event and mode for later study.
@@ -86,6 +94,7 @@ import shutil
 import sys
 import tempfile
 import time
+import zlib
 from pathlib import Path
 
 import numpy as np
@@ -296,6 +305,22 @@ def summarise(rows: list[dict], label: str) -> None:
               f"95th {np.percentile(eo, 95):.3f}, max {eo.max():.3f}; > 0.03 on {int((eo > 0.03).sum())} "
               f"({int((eo[broad] > 0.03).sum())} at FWHM(517) > 20 nm); the pipeline's > 0.08 on "
               f"{int((ed > 0.08).sum())}, of which the truth fit > 0.03 on {int(((ed > 0.08) & (eo > 0.03)).sum())}")
+    drawn = [r for r in oracle if r.get("oracle_noise_draws", 0) >= 2]
+    if drawn:
+        bias = np.array([r["oracle_noise_bias"] for r in drawn])
+        se = np.array([r["oracle_noise_bias_se"] for r in drawn])
+        zm = np.array([r["oracle_noise_z_mean"] for r in drawn])
+        ratio = np.array([r["oracle_noise_sd"] for r in drawn]) / np.array([r["oracle_noise_stated"] for r in drawn])
+        print(f"  noise drawn onto the truth (--oracle-draws), {len(drawn)} events, "
+              f"{sum(r['oracle_noise_draws'] for r in drawn)} fits: mean shift by noise (fits - noise-free fit) "
+              + "/".join(f"{bias[:, j].mean():+.4f}" for j in range(3))
+              + " +- " + "/".join(f"{math.sqrt(np.sum(se[:, j] ** 2)) / len(drawn):.4f}" for j in range(3))
+              + ", in stated sigmas " + "/".join(f"{zm[:, j].mean():+.2f}" for j in range(3))
+              + "; fits' sd / stated, median " + "/".join(f"{np.median(ratio[:, j]):.2f}" for j in range(3)))
+        for r, b, s_ in zip(drawn, bias, se):
+            print(f"    {r['event']}: snr {r['snr']:.0f}, FWHM(517) {r.get('fwhm_517_nm', math.nan):.0f} nm, "
+                  f"{r['oracle_noise_draws']} fits, shift " + "/".join(f"{x:+.3f}" for x in b)
+                  + " +- " + "/".join(f"{x:.3f}" for x in s_))
     by_base: dict[str, list[dict]] = {}
     for r in rows:
         by_base.setdefault(r.get("base_station", "?"), []).append(r)
@@ -339,11 +364,13 @@ class _FitRecorder:
         pipeline.fit_plasma = self._orig
 
 
-def oracle_fit(spec, calls: list[tuple], result) -> dict:
+def oracle_fit(spec, calls: list[tuple], result, *, draws: int = 0) -> dict:
     """The composition the plasma fit gives on the event's noise-free truth (module notes, --oracle).
 
     The call whose group intensities are the event's ``/plasma`` ones is repeated on the truth;
     ``{}`` when there is none (no composition) or the event was rendered through an atmosphere.
+    ``draws``: also refit the truth with that many draws of the spectrum's own noise
+    (module notes, ``--oracle-draws``; :func:`noise_draw_fits`).
     """
     from scipy.special import ndtr
 
@@ -384,8 +411,56 @@ def oracle_fit(spec, calls: list[tuple], result) -> dict:
     g = np.array([truth_fit.group_intensity[k] for k in GROUPS])
     comp = g / g.sum()
     true_comp = np.array([spec.composition[k] for k in GROUPS])
-    return {"oracle_fit": comp.tolist(), "oracle_err": np.abs(comp - true_comp).tolist(),
-            "oracle_chi2": float(truth_fit.chi2_reduced)}
+    out = {"oracle_fit": comp.tolist(), "oracle_err": np.abs(comp - true_comp).tolist(),
+           "oracle_chi2": float(truth_fit.chi2_reduced)}
+    if draws > 0:
+        out |= noise_draw_fits(dataclasses.replace(spectrum, flux=scale * density), kw, comp, draws=draws,
+                               seed=zlib.crc32(result.event_id.encode()))
+    return out
+
+
+def noise_draw_fits(truth_spectrum, kw: dict, comp0: np.ndarray, *, draws: int, seed: int) -> dict:
+    """Plasma fits of a noise-free spectrum with ``draws`` draws of its own noise added.
+
+    The noise is Gaussian with the spectrum's covariance over its usable bins
+    (:meth:`Spectrum.covariance`, Cholesky factor). Returns the mean composition of the fits
+    minus ``comp0`` (the noise-free fit's) with its standard error, the fits' sd, their median
+    stated error (:func:`meteorspec.classify.composition_from_groups` of each fit's group
+    covariance) and the mean of (fit - comp0) / stated.
+    """
+    from meteorspec.classify import composition_from_groups
+
+    flux = np.asarray(truth_spectrum.flux, float)
+    err = np.asarray(truth_spectrum.flux_err, float)
+    good = np.flatnonzero(~np.asarray(truth_spectrum.mask, bool) & np.isfinite(flux) & np.isfinite(err)
+                          & (err > 0))
+    cov = np.nan_to_num(truth_spectrum.covariance())[np.ix_(good, good)]
+    w, v = np.linalg.eigh(0.5 * (cov + cov.T))
+    root = v * np.sqrt(np.clip(w, 0.0, None))  # cov = root root^T (clipped round-off)
+    rng = np.random.default_rng(seed)
+    comps, stated = [], []
+    for _ in range(int(draws)):
+        f = flux.copy()
+        f[good] += root @ rng.standard_normal(good.size)
+        fit = pipeline.fit_plasma(dataclasses.replace(truth_spectrum, flux=f), **kw)
+        if not fit:
+            continue
+        g = np.array([fit.group_intensity[k] for k in GROUPS])
+        values, errors = composition_from_groups(g, fit.group_covariance)
+        if np.all(np.isfinite(values)):
+            comps.append(values)
+            stated.append(errors)
+    if len(comps) < 2:
+        return {"oracle_noise_draws": len(comps)}
+    c, e = np.array(comps), np.array(stated)
+    d = c - np.asarray(comp0, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = d / e
+    return {"oracle_noise_draws": len(c), "oracle_noise_bias": d.mean(axis=0).tolist(),
+            "oracle_noise_bias_se": (d.std(axis=0, ddof=1) / math.sqrt(len(c))).tolist(),
+            "oracle_noise_sd": c.std(axis=0, ddof=1).tolist(),
+            "oracle_noise_stated": np.median(e, axis=0).tolist(),
+            "oracle_noise_z_mean": np.nanmean(np.where(np.isfinite(z), z, np.nan), axis=0).tolist()}
 
 
 def run_random(args) -> dict[str, list[dict]]:
@@ -413,7 +488,8 @@ def run_random(args) -> dict[str, list[dict]]:
                 with _FitRecorder() as recorder:
                     result = pipeline.process_event(sim.event_dir, stations_dir=stations,
                                                     refine_geometry=(mode != "true"))
-                oracle = oracle_fit(spec, recorder.calls, result) if args.oracle else {}
+                oracle = (oracle_fit(spec, recorder.calls, result, draws=args.oracle_draws)
+                          if args.oracle or args.oracle_draws else {})
                 r = measure(result, sim.truth, snr=snr) | oracle | {
                     "mode": mode, "kind": kind, "seed": args.seed, "noise_draw": args.noise_draw,
                     "base_station": spec.station,
@@ -486,6 +562,8 @@ def main(argv=None) -> int:
                     help="render with another draw of the noise (0: the seed's own)")
     ap.add_argument("--oracle", action="store_true",
                     help="also fit each event's noise-free truth on the pipeline's grid and settings")
+    ap.add_argument("--oracle-draws", type=int, default=0, metavar="K",
+                    help="also fit that truth K times with draws of the spectrum's own noise (implies --oracle)")
     args = ap.parse_args(argv)
     args.modes = [m.strip() for m in args.modes.split(",") if m.strip()]
     for m in args.modes:

@@ -77,7 +77,10 @@ correlation and the errors common to many bins), seeded by the event's id. The m
 fits minus the noise-free fit is what noise alone does to the plasma fit's composition on
 average (its estimator bias), apart from extraction and calibration; their spread against the
 fits' stated errors checks those errors on the fit alone. A mean of K fits has a standard
-error of sd / sqrt(K) (common practice).
+error of sd / sqrt(K) (common practice). ``--oracle-set KEY=VALUE`` (repeatable) replaces one
+of the pipeline's ``fit_plasma`` keywords in the truth fits (noise-free and drawn), e.g.
+``self_absorption=False`` or ``temperature_prior_k=(4867.0,1.0)``, to see which freedom of the
+fit a shift comes from.
 
 The SNR of an event is recovered from its spec by inverting
 ``simulate.peak_for_line_snr`` (bisection). No assertions; ``--out FILE`` writes one JSON
@@ -87,6 +90,7 @@ line per event and mode for later study.
 from __future__ import annotations
 
 import argparse
+import ast
 import dataclasses
 import json
 import math
@@ -364,13 +368,14 @@ class _FitRecorder:
         pipeline.fit_plasma = self._orig
 
 
-def oracle_fit(spec, calls: list[tuple], result, *, draws: int = 0) -> dict:
+def oracle_fit(spec, calls: list[tuple], result, *, draws: int = 0, settings: dict | None = None) -> dict:
     """The composition the plasma fit gives on the event's noise-free truth (module notes, --oracle).
 
     The call whose group intensities are the event's ``/plasma`` ones is repeated on the truth;
     ``{}`` when there is none (no composition) or the event was rendered through an atmosphere.
     ``draws``: also refit the truth with that many draws of the spectrum's own noise
-    (module notes, ``--oracle-draws``; :func:`noise_draw_fits`).
+    (module notes, ``--oracle-draws``; :func:`noise_draw_fits`). ``settings``: ``fit_plasma``
+    keywords that replace the call's in these truth fits (``--oracle-set``).
     """
     from scipy.special import ndtr
 
@@ -405,6 +410,7 @@ def oracle_fit(spec, calls: list[tuple], result, *, draws: int = 0) -> dict:
     good = ~np.asarray(spectrum.mask, bool) & np.isfinite(flux) & np.isfinite(err) & (err > 0)
     w = 1.0 / err[good] ** 2
     scale = float(np.sum(density[good] * flux[good] * w) / np.sum(density[good] ** 2 * w))
+    kw = kw | (settings or {})
     truth_fit = pipeline.fit_plasma(dataclasses.replace(spectrum, flux=scale * density), **kw)
     if not truth_fit:
         return {"oracle_reason": truth_fit.reason}
@@ -413,6 +419,8 @@ def oracle_fit(spec, calls: list[tuple], result, *, draws: int = 0) -> dict:
     true_comp = np.array([spec.composition[k] for k in GROUPS])
     out = {"oracle_fit": comp.tolist(), "oracle_err": np.abs(comp - true_comp).tolist(),
            "oracle_chi2": float(truth_fit.chi2_reduced)}
+    if settings:
+        out["oracle_settings"] = {k: repr(v) for k, v in settings.items()}
     if draws > 0:
         out |= noise_draw_fits(dataclasses.replace(spectrum, flux=scale * density), kw, comp, draws=draws,
                                seed=zlib.crc32(result.event_id.encode()))
@@ -488,8 +496,9 @@ def run_random(args) -> dict[str, list[dict]]:
                 with _FitRecorder() as recorder:
                     result = pipeline.process_event(sim.event_dir, stations_dir=stations,
                                                     refine_geometry=(mode != "true"))
-                oracle = (oracle_fit(spec, recorder.calls, result, draws=args.oracle_draws)
-                          if args.oracle or args.oracle_draws else {})
+                oracle = (oracle_fit(spec, recorder.calls, result, draws=args.oracle_draws,
+                                     settings=args.oracle_set)
+                          if args.oracle or args.oracle_draws or args.oracle_set else {})
                 r = measure(result, sim.truth, snr=snr) | oracle | {
                     "mode": mode, "kind": kind, "seed": args.seed, "noise_draw": args.noise_draw,
                     "base_station": spec.station,
@@ -564,8 +573,21 @@ def main(argv=None) -> int:
                     help="also fit each event's noise-free truth on the pipeline's grid and settings")
     ap.add_argument("--oracle-draws", type=int, default=0, metavar="K",
                     help="also fit that truth K times with draws of the spectrum's own noise (implies --oracle)")
+    ap.add_argument("--oracle-set", action="append", default=[], metavar="KEY=VALUE",
+                    help="a fit_plasma keyword (Python literal) that replaces the pipeline's in the truth fits; "
+                         "repeatable, e.g. self_absorption=False")
     args = ap.parse_args(argv)
     args.modes = [m.strip() for m in args.modes.split(",") if m.strip()]
+    settings = {}
+    for item in args.oracle_set:
+        key, sep, value = item.partition("=")
+        if not sep or not key.strip():
+            ap.error(f"--oracle-set {item!r}: expected KEY=VALUE")
+        try:
+            settings[key.strip()] = ast.literal_eval(value.strip())
+        except (ValueError, SyntaxError):
+            ap.error(f"--oracle-set {item!r}: the value must be a Python literal")
+    args.oracle_set = settings
     for m in args.modes:
         if m not in MODES:
             ap.error(f"unknown mode {m!r}; known: {', '.join(MODES)}")

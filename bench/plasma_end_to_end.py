@@ -431,7 +431,8 @@ def noise_draw_fits(truth_spectrum, kw: dict, comp0: np.ndarray, *, draws: int, 
     """Plasma fits of a noise-free spectrum with ``draws`` draws of its own noise added.
 
     The noise is Gaussian with the spectrum's covariance over its usable bins
-    (:meth:`Spectrum.covariance`, Cholesky factor). Returns the mean composition of the fits
+    (:meth:`Spectrum.covariance`; drawn through its symmetric square root from the
+    eigen-decomposition, negative round-off eigenvalues clipped to 0). Returns the mean composition of the fits
     minus ``comp0`` (the noise-free fit's) with its standard error, the fits' sd, their median
     stated error (:func:`meteorspec.classify.composition_from_groups` of each fit's group
     covariance) and the mean of (fit - comp0) / stated.

@@ -32,7 +32,7 @@ from .optics import SpectralGeometry
 from .plasma import (WIDTH_SCALE_BOUNDS, PlasmaFit, ScaleScan, effective_response, fit_plasma, fit_plasma_per_frame,
                      group_templates)
 from .result import STAGES, EventResult, FrameTimes, InputRecord
-from .track import Track, find_track, remeasure_light_curve
+from .track import Track, find_track, remeasure_light_curve, unless_a_line
 from .wavesol import WavelengthSolution, geometry_values
 from .version import software_version
 from .video import FrameStack, read_stack
@@ -218,7 +218,9 @@ def locate_meteor(stack: FrameStack, station: Station, *,
     One binned copy (``binned``, made while decoding, or one pass here) feeds both the
     background model and the tracker; when a meteor is found, the background is
     re-estimated with its light masked frame by frame and the meteor is tracked again
-    against it (centroids, trajectory and light curve).
+    against it (centroids, trajectory and light curve). A tracked source with first-order
+    light where a zeroth order's own spectrum is dark is a line of the spectrum: the track is
+    then empty, flagged ``zeroth_order_not_found`` (:func:`~meteorspec.track.unless_a_line`).
 
     Notes
     -----
@@ -246,6 +248,9 @@ def locate_meteor(stack: FrameStack, station: Station, *,
             again = find_track(stack, refined, geometry, camera=camera, orders=orders, seed=0, binned=binned)
             track = again if same_path(track, again) else remeasure_light_curve(stack, refined, track)
             background = refined
+    # against the final background: a first one that holds a fireball's spectrum dims its
+    # 400-800 nm light (seed-6 event 17 of bench/plasma_end_to_end.py: ratio 1.1, then 0.015)
+    track = unless_a_line(track, background, geometry, binned, order=orders[0])
     return background, track
 
 

@@ -53,11 +53,12 @@ from .background import BIN_PX, Background, BinnedFrames, bin_frames, bin_rows, 
 from .config import Camera
 from .optics import LensModel, SpectralGeometry
 
-__all__ = ["Track", "GreatCircle", "find_track", "remeasure_light_curve", "STATUSES", "FLAGS"]
+__all__ = ["Track", "GreatCircle", "find_track", "remeasure_light_curve", "light_near_source", "unless_a_line",
+           "STATUSES", "FLAGS"]
 
 STATUSES = ("measured", "saturated", "off_frame", "from_spectrum", "interpolated", "absent")
 FLAGS = ("saturated", "zeroth_order_off_frame", "motion_parallel_to_dispersion", "low_snr",
-         "zeroth_order_from_spectrum")
+         "zeroth_order_from_spectrum", "zeroth_order_not_found")
 
 # Wavelengths sampled along a first-order spectrum (nm): the visible range a
 # silicon sensor records well; meteor lines from Ca II 393 nm to O I 777 nm (common practice).
@@ -65,6 +66,15 @@ _SPECTRUM_NM = (400.0, 800.0)
 # Samples for locating a zeroth order from its spectrum reach beyond it: the dark ends anchor the position.
 _LOCATE_NM = (330.0, 950.0)
 _PARALLEL_LIMIT_DEG = 20.0  # from the issue: streak within ~20 deg of the dispersion smears lines
+# First-order light shorter than this does not reach the ground: the atmosphere's ozone cuts
+# off below about 300 nm (common practice, from memory), and lens glass below about 350 nm.
+_DARK_BELOW_NM = 300.0
+# Median over the tracked frames of the light along the first-order curve within
+# _DARK_BELOW_NM of the tracked source (both sides) over its light at 400-800 nm, above which
+# the source is a line of its own spectrum and not a zeroth order (:func:`light_near_source`).
+# On the 144 events of ``bench/plasma_end_to_end.py --seed 5|6|7|8`` the zeroth orders give
+# |ratio| <= 0.13; a line taken for the zeroth order (seed-8 event 004) gave 3.7-3.9.
+_NOT_ZEROTH_RATIO = 0.5
 _LOW_SNR = 10.0             # median per-frame zeroth-order SNR below this: "low_snr"
 
 
@@ -987,6 +997,84 @@ def _locate_from_spectrum(frames, background, geometry, gc, orders, times, expos
             misses = 0 if try_frame(p) else misses + 1
             p += direction
     return found
+
+
+def light_near_source(track: Track, background: Background, geometry: SpectralGeometry,
+                      binned: BinnedFrames, *, order: int = 1) -> tuple[float, int]:
+    """How much first-order light lies where a zeroth order's own spectrum must be dark.
+
+    A zeroth order's first order starts beyond ``_DARK_BELOW_NM``: along its first-order
+    curve, within that wavelength of the source on either side (order ``order`` ahead,
+    ``-order`` behind), there is nothing. A line of the spectrum at ``lam0`` that was taken
+    for the zeroth order has its neighbours there, since the grating adds ``order lam / d`` to
+    the tangential direction cosines: the curve through the line at ``lam`` ahead or behind
+    is the first order at ``lam0 + lam`` or ``lam0 - lam``. Per frame where the zeroth order was
+    measured: the mean smoothed SNR (the tracker's binned maps) along that stretch, beyond the
+    source's own image (12 px plus its streak), over the mean along its first order at
+    400-800 nm, or over 2 where that is below 2 sigma (a line at the red end of its spectrum
+    has nothing ahead of it); frames where neither reaches 2 sigma are skipped.
+
+    Returns
+    -------
+    ratio : float
+        Median over the frames counted (NaN if none).
+    n_frames : int
+        Frames counted.
+    """
+    if not track:
+        return float("nan"), 0
+    ahead_nm = np.linspace(*_SPECTRUM_NM, 48)
+    near_nm = np.linspace(10.0, _DARK_BELOW_NM, 59)
+    models: dict[tuple[int, int, int], _BinnedModel] = {}
+    seen = np.flatnonzero(np.isin(track.status, ("measured", "saturated"))
+                          & np.isfinite(track.x_meas_px) & np.isfinite(track.y_meas_px))
+    vx, vy = track.velocity_px_s(track.time_s[seen]) if seen.size else (np.zeros(0), np.zeros(0))
+    streak = np.hypot(vx, vy) * (track.exposure_s if np.isfinite(track.exposure_s) else 0.0)
+    ratios = []
+    for k, pos in enumerate(seen):
+        key = (int(binned.y_start_px[pos]), int(binned.y_step_px[pos]), int(binned.n_rows[pos]))
+        model = models.get(key)
+        if model is None:
+            model = models[key] = _BinnedModel(background, *key)
+        snr = _box2(binned.data[pos] - model.level) / (4.0 * model.noise2)
+        x0, y0 = float(track.x_meas_px[pos]), float(track.y_meas_px[pos])
+        clear = 12.0 + float(streak[k]) if np.isfinite(streak[k]) else 12.0
+        means = []
+        for parts in (((order, ahead_nm),), ((order, near_nm), (-order, near_nm))):
+            values = []
+            for m, lam in parts:
+                xs, ys = geometry.spectrum_pixel(x0, y0, lam, m)
+                i, j = model.to_index(xs, ys)
+                ok = (np.isfinite(i) & np.isfinite(j) & (i >= 0) & (i < snr.shape[0]) & (j >= 0)
+                      & (j < snr.shape[1]) & (np.hypot(xs - x0, ys - y0) > clear))
+                values.append(snr[i[ok].astype(int), j[ok].astype(int)])
+            v = np.concatenate(values)
+            means.append(float(np.mean(v)) if v.size >= 5 else float("nan"))
+        ahead, near = means
+        if not np.isfinite(near) or not max(ahead if np.isfinite(ahead) else 0.0, near) >= 2.0:
+            continue
+        # a line near the red end of its spectrum has nothing at 400-800 nm ahead of it
+        ratios.append(near / max(ahead if np.isfinite(ahead) else 0.0, 2.0))
+    return (float(np.median(ratios)) if ratios else float("nan")), len(ratios)
+
+
+def unless_a_line(track: Track, background: Background, geometry: SpectralGeometry,
+                  binned: BinnedFrames, *, order: int = 1) -> Track:
+    """``track``, or an empty track when its source is a line of the spectrum (:func:`light_near_source`).
+
+    Such a source is followed when the zeroth order never reaches the sensor and a bright
+    line of the spectrum moves like one: its wavelength zero point is unknown, and a spectrum
+    extracted from it would be shifted by that line's wavelength. The empty track carries the
+    reason and the flag ``"zeroth_order_not_found"``; three measured frames at least decide.
+    """
+    ratio, n = light_near_source(track, background, geometry, binned, order=order)
+    if n < 3 or not ratio >= _NOT_ZEROTH_RATIO:
+        return track
+    empty = _empty_track(track.time_s, track.frame_index, track.exposure_s,
+                         f"the moving source is a line of its own spectrum, not a zeroth order (first-order "
+                         f"light within {_DARK_BELOW_NM:.0f} nm of it, {ratio:.2f} times its 400-800 nm "
+                         f"light, median of {n} frames); the zeroth order was not found on the sensor")
+    return dataclasses.replace(empty, flags=("zeroth_order_not_found",))
 
 
 def remeasure_light_curve(frames: Sequence, background: Background, track: Track) -> Track:

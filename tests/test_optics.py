@@ -197,6 +197,26 @@ def test_spectrum_pixel_locate_and_zeroth_round_trips(geo):
     assert np.nanmax(np.abs(lam2 - lam)[ok] / geo.dispersion_nm_per_px(x0, y0, lam)[ok]) < 1e-2
 
 
+@pytest.mark.parametrize("geo", GEOMETRIES, ids=[g.lens.projection for g in GEOMETRIES])
+def test_orders_chain_through_a_line_of_the_spectrum(geo):
+    # Harvey & Vernold 1998, Appl. Opt. 37, 8158: diffraction adds m lambda / d to the
+    # direction cosines in the grating plane, so from the first-order image of lambda0 the
+    # order -1 at lambda lands where the first order of lambda0 - lambda does, and the
+    # order +1 at lambda where the first order of lambda0 + lambda does. The tracker's test
+    # of a line taken for a zeroth order (meteorspec.track.light_near_source) rests on it.
+    rng = np.random.default_rng(5)
+    x0, y0 = rng.uniform(200, 600, 40), rng.uniform(150, 450, 40)
+    lam0 = rng.uniform(450.0, 800.0, 40)
+    lam = rng.uniform(10.0, 300.0, 40)
+    xl, yl = geo.spectrum_pixel(x0, y0, lam0)
+    for order, sign in ((-1, -1.0), (1, 1.0)):
+        xc, yc = geo.spectrum_pixel(xl, yl, lam, order)
+        xe, ye = geo.spectrum_pixel(x0, y0, lam0 + sign * lam)
+        ok = np.isfinite(xc) & np.isfinite(xe)
+        assert ok.sum() > 20
+        assert np.max(np.hypot(xc - xe, yc - ye)[ok]) < ROUND_TRIP_PX
+
+
 def test_zeroth_order_is_order_zero():
     geo = GEOMETRIES[1]
     x, y = geo.spectrum_pixel(320.0, 240.0, 600.0, order=0)

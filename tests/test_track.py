@@ -14,10 +14,10 @@ import numpy as np
 import pytest
 from scipy.ndimage import gaussian_filter
 
-from meteorspec.background import estimate_background
+from meteorspec.background import bin_frames, estimate_background
 from meteorspec.config import Camera
 from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
-from meteorspec.track import STATUSES, Track, find_track
+from meteorspec.track import STATUSES, Track, find_track, light_near_source, unless_a_line
 from meteorspec.video import Frame
 
 W, H = 320, 240
@@ -267,6 +267,34 @@ def test_zeroth_order_off_sensor_located_from_spectrum():
     assert np.all(_err(track, truth, located) <= 1.0)
     on = truth["lit"] & (track.status == "measured")
     assert np.sqrt(np.mean(_err(track, truth, on) ** 2)) <= 0.3
+
+
+def test_line_of_a_spectrum_whose_zeroth_order_stays_off_the_sensor_is_not_taken_for_it():
+    # the zeroth order stays beyond the left edge all the time, while its spectrum (Mg I b,
+    # Na I D and O I 777 on a continuum) crosses the sensor: the tracker can only follow a
+    # line. First-order light within 300 nm of a zeroth order does not reach the ground (the
+    # ozone cut-off near 300 nm; common practice), so light there marks the source as a line.
+    frames, truth, geo = make_event(start_px=(-45.0, 60.0), end_px=(-35.0, 190.0),
+                                    line_nm=(518.0, 589.0, 777.0), line_share=0.25, spectrum_adu_s=4.0e5)
+    cam = _camera()
+    binned = bin_frames(frames, camera=cam)
+    bg = estimate_background(frames, camera=cam, binned=binned)
+    track = find_track(frames, bg, geo, camera=cam, binned=binned)
+    assert track  # a line, moving as a zeroth order would
+    assert np.nanmedian(track.x_px) > 0.0 > np.max(truth["x_mid"][truth["lit"]])
+    refused = unless_a_line(track, bg, geo, binned)
+    assert not refused
+    assert refused.flags == ("zeroth_order_not_found",)
+    assert "line of its own spectrum" in refused.reason
+    # the real zeroth order of the same kind of event passes: no light where it must be dark
+    frames, truth, geo = make_event(line_nm=(518.0, 589.0, 777.0), line_share=0.25, spectrum_adu_s=4.0e5)
+    binned = bin_frames(frames, camera=cam)
+    bg = estimate_background(frames, camera=cam, binned=binned)
+    track = find_track(frames, bg, geo, camera=cam, binned=binned)
+    ratio, n = light_near_source(track, bg, geo, binned)
+    # the smoothed map's noise over ~100 samples: |mean| well below 0.1 of the spectrum's light
+    assert n >= 10 and abs(ratio) < 0.1
+    assert unless_a_line(track, bg, geo, binned) is track
 
 
 def test_interlaced_fields_measured_in_full_frame_y():

@@ -470,3 +470,15 @@ def test_scaled_solution_corrects_the_station_groove_density():
     assert out.errors["grooves_per_mm"] == pytest.approx(492.5 * 1.018 * 2e-4, rel=1e-12)
     for k in ("dispersion_angle_deg", "tilt_deg", "tilt_azimuth_deg", "focal_px"):
         assert out.values[k] == sol.values[k]
+
+
+def test_group_with_no_line_in_the_fitted_range_counts_as_poorly_covered():
+    # coverage is the share of a group's model light on usable bins; NaN when none of its lines
+    # lies in the fitted range (a fireball whose whole-flight sum keeps only a few unsaturated
+    # bins). It must send the pipeline to the frames that record every group, as a share below
+    # one half does; NaN compares false, so a plain "< 0.5" let such a fit through with no group.
+    fit = dataclasses.replace(plasma.PlasmaFit.failed("x"), success=True,
+                              group_coverage={"na": math.nan, "mg": 1.0, "fe": 0.4})
+    assert pipeline.poorly_covered_groups(fit) == ["na", "fe"]
+    whole = dataclasses.replace(fit, group_coverage={"na": 1.0, "mg": 0.99, "fe": 0.5})
+    assert pipeline.poorly_covered_groups(whole) == []

@@ -2067,7 +2067,8 @@ def time_resolved_from_fits(time_s: ArrayLike, fits: list[Any], *,
         for g in GROUPS:
             flux[g][i] = float(fit.group_intensity[g])
             err[g][i] = float(fit.group_intensity_err[g])
-            unmeasured[g][i] = bool(coverage.get(g, 1.0) < min_coverage)
+            # NaN (none of the group's lines in the frame's fitted range) is unmeasured too
+            unmeasured[g][i] = not coverage.get(g, 1.0) >= min_coverage
     return time_resolved(t, flux, err, o777_per_frame=o777_per_frame, o777_err=o777_err,
                          min_snr=min_snr, unmeasured=unmeasured, window_curves=window_curves,
                          weak_curves=weak_curves)

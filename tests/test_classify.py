@@ -523,6 +523,12 @@ def test_time_resolved_from_fits_marks_frames_with_uncovered_groups():
     tr = cl.time_resolved_from_fits(t, fits)
     assert abs(tr.peak_time_s["Na I"] - t[np.argmax(clean)]) <= 1.0 / 25.0
     assert np.all(np.isfinite(tr.na[saturated]))  # composition keeps those frames
+    # NaN coverage (none of the Na lines in the frame's fitted range) is not a measurement either
+    for f, s in zip(fits, saturated):
+        if s:
+            f.group_coverage = {"na": float("nan"), "mg": 1.0, "fe": 1.0}
+    tr = cl.time_resolved_from_fits(t, fits)
+    assert abs(tr.peak_time_s["Na I"] - t[np.argmax(clean)]) <= 1.0 / 25.0
 
 
 # ------------------------------------------------------------------------------------------

@@ -184,9 +184,15 @@ from scipy.special import erf, gammaln, ndtr
 from .config import Camera
 from .optics import SpectralGeometry
 
-__all__ = ["FrameSpectra", "Spectrum", "extract_spectra", "default_wavelength_grid", "EXTRACTION_FLAGS"]
+__all__ = ["FrameSpectra", "Spectrum", "extract_spectra", "default_wavelength_grid", "EXTRACTION_FLAGS",
+           "SHEAR_PSF_SIGMA_PX"]
 
 #: Flags this stage can raise (contract vocabulary plus our own).
+SHEAR_PSF_SIGMA_PX = 1.5
+"""Default PSF sigma (px) of :func:`extract_spectra`: sets its shear towards the motion (module
+notes, step 3), its band and its profile fits; the instrument width of its lines
+(:func:`meteorspec.lines.line_streak_px`) takes the shear from it."""
+
 EXTRACTION_FLAGS = ("saturated", "saturation_recovered", "spectrum_off_frame", "motion_parallel_to_dispersion",
                     "low_snr", "no_luminous_frames", "optimal_extraction")
 
@@ -872,7 +878,7 @@ def _track_index(track: Any, time_s: float, exposure_s: float) -> int | None:
 def extract_spectra(frames: Iterable[Any], background: Any, track: Any, geometry: SpectralGeometry, *,
                     camera: Camera, wavelength_grid_nm: np.ndarray | None = None, order: int = 1,
                     optimal: bool | None = None, half_width_px: float | None = None,
-                    psf_sigma_px: float = 1.5, max_lost_fraction: float = 0.1,
+                    psf_sigma_px: float = SHEAR_PSF_SIGMA_PX, max_lost_fraction: float = 0.1,
                     max_saturated_fraction: float = 0.8,
                     optimal_snr_threshold: float = 30.0, low_snr_threshold: float = 10.0,
                     floor_correction: bool = True) -> FrameSpectra:

@@ -26,7 +26,7 @@ from .classify import (DEEP_SATURATED_SHARE, FITS_DISAGREE_SIGMA, LIGHT_CURVE_BA
 from .config import Camera, Event, Station, find_station_file, load_event, load_station
 from .errors import InputError
 from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
-from .extract import FrameSpectra, Spectrum, extract_spectra
+from .extract import SHEAR_PSF_SIGMA_PX, FrameSpectra, Spectrum, extract_spectra
 from .lines import identify_lines, instrument_fwhm_nm, line_streak_px
 from .optics import SpectralGeometry
 from .plasma import (WIDTH_SCALE_BOUNDS, PlasmaFit, ScaleScan, effective_response, fit_plasma, fit_plasma_per_frame,
@@ -1007,10 +1007,12 @@ def _instrument_fwhm(geometry: SpectralGeometry, track: Track, wavelength_nm: np
         j = int(ok[np.argmin(np.abs(wl[ok] - 550.0))]) if ok.size else -1
         dx, dy = (dx_all[j], dy_all[j]) if ok.size else (0.0, 0.0)  # none: the PSF alone
     streak_px = float(np.nanmedian(np.abs(vx * dx + vy * dy))) * track.exposure_s
-    line_streak = line_streak_px(geometry, x0, y0, vx, vy, track.exposure_s, wl, order=order)
+    psf_sigma_px = track.psf_sigma_px if np.isfinite(track.psf_sigma_px) else 1.3
+    # the blur along the dispersion that the extraction's shear towards the motion leaves
+    line_streak = line_streak_px(geometry, x0, y0, vx, vy, track.exposure_s, wl, order=order,
+                                 psf_sigma_px=psf_sigma_px, shear_sigma_px=SHEAR_PSF_SIGMA_PX)
     streak_px = np.where(np.isfinite(line_streak), line_streak,
                          streak_px if np.isfinite(streak_px) else 0.0)
-    psf_sigma_px = track.psf_sigma_px if np.isfinite(track.psf_sigma_px) else 1.3
     return instrument_fwhm_nm(geometry, x0, y0, wavelength_nm, psf_fwhm_px=2.3548 * psf_sigma_px,
                               streak_px=streak_px * float(streak_scale), order=order)
 

@@ -391,6 +391,7 @@ def estimate_frame_weight(per_frame: np.ndarray, mask: np.ndarray, *, lit: np.nd
 def _fwhm_from_geometry(ev: Mapping[str, Any], wl: np.ndarray) -> np.ndarray | None:
     """Instrument FWHM from ``/calibration`` and ``/track`` (the pipeline's recipe, simplified:
     every finite track point, not the luminous ones only; each line image's own streak)."""
+    from ..extract import SHEAR_PSF_SIGMA_PX
     from ..lines import instrument_fwhm_nm, line_streak_px
     from ..optics import SpectralGeometry
 
@@ -412,10 +413,11 @@ def _fwhm_from_geometry(ev: Mapping[str, Any], wl: np.ndarray) -> np.ndarray | N
     exposure = float(track["attrs"].get("exposure_s", np.nan))
     streak = float(np.nanmedian(np.abs(vx * dx + vy * dy))) * exposure if np.isfinite(exposure) else 0.0
     streak = streak if np.isfinite(streak) else 0.0
-    line = line_streak_px(geo, x0, y0, vx, vy, exposure, wl, order=1)
-    streak = np.where(np.isfinite(line), line, streak)  # the zeroth order's where an image leaves the field
     sigma = float(track["attrs"].get("psf_sigma_px", np.nan))
     sigma = sigma if np.isfinite(sigma) and sigma > 0 else 1.3
+    line = line_streak_px(geo, x0, y0, vx, vy, exposure, wl, order=1, psf_sigma_px=sigma,
+                          shear_sigma_px=SHEAR_PSF_SIGMA_PX)
+    streak = np.where(np.isfinite(line), line, streak)  # the zeroth order's where an image leaves the field
     try:
         fwhm = instrument_fwhm_nm(geo, x0, y0, wl, psf_fwhm_px=2.3548 * sigma,
                                   streak_px=streak)

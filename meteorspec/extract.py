@@ -187,12 +187,12 @@ from .optics import SpectralGeometry
 __all__ = ["FrameSpectra", "Spectrum", "extract_spectra", "default_wavelength_grid", "EXTRACTION_FLAGS",
            "SHEAR_PSF_SIGMA_PX"]
 
-#: Flags this stage can raise (contract vocabulary plus our own).
 SHEAR_PSF_SIGMA_PX = 1.5
 """Default PSF sigma (px) of :func:`extract_spectra`: sets its shear towards the motion (module
 notes, step 3), its band and its profile fits; the instrument width of its lines
 (:func:`meteorspec.lines.line_streak_px`) takes the shear from it."""
 
+#: Flags this stage can raise (contract vocabulary plus our own).
 EXTRACTION_FLAGS = ("saturated", "saturation_recovered", "spectrum_off_frame", "motion_parallel_to_dispersion",
                     "low_snr", "no_luminous_frames", "optimal_extraction")
 

@@ -232,7 +232,8 @@ def line_streak_px(geometry, x0_px: float, y0_px: float, vx_px_s: ArrayLike, vy_
             across = (xb - xa) * -dy[None, :] + (yb - ya) * dx[None, :]
             s2 = float(psf_sigma_px if shear_sigma_px is None else shear_sigma_px) ** 2
             kappa = across * across / (across * across + 12.0 * s2)
-            stretch = np.where(kappa > 0, kappa * float(psf_sigma_px) / np.where(kappa > 0, np.abs(across), 1.0), 0.0)
+            # kappa is 0 where nothing moves across, and the stretch with it
+            stretch = kappa * float(psf_sigma_px) / np.maximum(np.abs(across), 1e-12)
             along = along * np.sqrt((1.0 - kappa) ** 2 + 12.0 * stretch * stretch)
     out = np.full(wl.shape, np.nan)
     seen = np.isfinite(along).any(axis=0)

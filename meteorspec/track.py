@@ -240,6 +240,10 @@ class _BinnedModel:
         vb = bin_rows(var, by, BIN_PX) / (by * BIN_PX)  # variance of a block mean
         self.noise2 = np.sqrt(_box2(vb) / 4.0)            # of the mean of 2x2 block means
 
+    def snr(self, binned_frame: np.ndarray) -> np.ndarray:
+        """The frame's residual over the level, 2x2-box smoothed, in units of its noise."""
+        return _box2(binned_frame - self.level) / (4.0 * self.noise2)
+
     def to_pixel(self, i, j):
         """Full-frame pixel of the centre of the 2x2 box at smoothed index (i, j)."""
         row = (np.asarray(i, float) + 1.0) * self.by - 0.5
@@ -663,8 +667,7 @@ def find_track(frames: Sequence, background: Background, geometry: SpectralGeome
         binned_frame = binned.data[pos]
         if not np.isfinite(binned_frame.sum(dtype=np.float64)):
             raise ValueError(f"frame {index[pos]} holds NaN or infinite values")
-        resid = binned_frame - model.level
-        snr = _box2(resid) / (4.0 * model.noise2)
+        snr = model.snr(binned_frame)
         i, j = _local_maxima(snr, detect_sigma, max_candidates)
         if i.size == 0:
             continue
@@ -1011,10 +1014,10 @@ def light_near_source(track: Track, background: Background, geometry: SpectralGe
     for the zeroth order has its neighbours there, since the grating adds ``order lam / d`` to
     the tangential direction cosines: the curve through the line at ``lam`` ahead or behind
     is the first order at ``lam0 + lam`` or ``lam0 - lam``. Per frame where the zeroth order was
-    measured: the mean smoothed SNR (the tracker's binned maps) along that stretch, beyond the
-    source's own image (12 px plus its streak), over the mean along its first order at
-    400-800 nm, or over 2 where that is below 2 sigma (a line at the red end of its spectrum
-    has nothing ahead of it); frames where neither reaches 2 sigma are skipped.
+    measured: the mean smoothed SNR (the tracker's binned maps, smoothed over 8 px) along that
+    stretch, beyond the source's own image (12 px plus its streak), over the mean along its
+    first order at 400-800 nm, or over 2 where that is below 2 sigma (a line at the red end of
+    its spectrum has nothing ahead of it); frames where neither reaches 2 sigma are skipped.
 
     Returns
     -------
@@ -1038,7 +1041,7 @@ def light_near_source(track: Track, background: Background, geometry: SpectralGe
         model = models.get(key)
         if model is None:
             model = models[key] = _BinnedModel(background, *key)
-        snr = _box2(binned.data[pos] - model.level) / (4.0 * model.noise2)
+        snr = model.snr(binned.data[pos])
         x0, y0 = float(track.x_meas_px[pos]), float(track.y_meas_px[pos])
         clear = 12.0 + float(streak[k]) if np.isfinite(streak[k]) else 12.0
         means = []

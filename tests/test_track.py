@@ -273,7 +273,7 @@ def test_line_of_a_spectrum_whose_zeroth_order_stays_off_the_sensor_is_not_taken
     # the zeroth order stays beyond the left edge all the time, while its spectrum (Mg I b,
     # Na I D and O I 777 on a continuum) crosses the sensor: the tracker can only follow a
     # line. First-order light within 300 nm of a zeroth order does not reach the ground (the
-    # ozone cut-off near 300 nm; common practice), so light there marks the source as a line.
+    # ozone cut-off near 300 nm; common practice, from memory), so light there marks the source as a line.
     frames, truth, geo = make_event(start_px=(-45.0, 60.0), end_px=(-35.0, 190.0),
                                     line_nm=(518.0, 589.0, 777.0), line_share=0.25, spectrum_adu_s=4.0e5)
     cam = _camera()

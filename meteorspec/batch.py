@@ -22,6 +22,10 @@ Design
   pipeline's one-line reason; an unexpected exception inside a stage is caught
   in :func:`run_event` and recorded the same way; a worker process that dies is
   recorded by the driver.
+- **A failure never replaces a result**: where the output already holds an
+  ``ok`` or ``partial`` result (and its review log) from earlier inputs, a run
+  that fails (an input since damaged, or ``force`` on one) leaves that file as
+  it is and says so in its one-line reason; the failure is in the night table.
 - **Killed runs**: outputs are renamed into place only when complete; stale
   temporary files (``.<name>.*.tmp``) from a killed run are removed at start,
   and the night table is rewritten atomically after events complete, so a
@@ -223,7 +227,7 @@ def run_event(job: EventJob) -> EventRow:
 
     Never raises: bad input and unexpected errors inside a stage both end as a
     ``failed`` row with a one-line reason (and a ``failed`` file when one can be
-    written without destroying a file we cannot read).
+    written without destroying a file we cannot read or an earlier result).
     """
     from .errors import InputError
     from .pipeline import process_event
@@ -243,13 +247,32 @@ def run_event(job: EventJob) -> EventRow:
             logging.getLogger(__name__).debug("event %s raised\n%s", event_path, traceback.format_exc())
             result = EventResult(event_id=event_id, station="", start_utc="", software_version=software_version(),
                                  status="failed", error=f"{event_path}: internal error: {_one_line(exc)}")
-        written = write_event(output_path(job.out_dir, result.event_id), result)
+        target = output_path(job.out_dir, result.event_id)
+        kept = _result_status(target) if result.status == "failed" else None
+        if kept is not None:
+            return _timed(EventRow(event_id=result.event_id, status="failed", event=job.event_path,
+                                   output=target.name, action="processed",
+                                   error=f"{result.error}; {target.name} keeps its earlier {kept} result"), t0)
+        written = write_event(target, result)
         return _timed(row_from_file(written, event_path=job.event_path, action="processed"), t0)
     except InputError as exc:  # e.g. an unreadable previous output that we refuse to overwrite
         return _timed(EventRow(event_id=event_id, status="failed", event=job.event_path, error=str(exc)), t0)
     except Exception as exc:  # noqa: BLE001
         return _timed(EventRow(event_id=event_id, status="failed", event=job.event_path,
                                error=f"{event_path}: {_one_line(exc)}"), t0)
+
+
+def _result_status(output: Path) -> str | None:
+    """``"ok"`` or ``"partial"`` when ``output`` is a readable event file holding a result, else None."""
+    from .store import read_root
+
+    if not output.is_file():
+        return None
+    try:
+        status = str(read_root(output).get("status", ""))
+    except Exception:  # noqa: BLE001 - unreadable: the store decides whether it may be replaced
+        return None
+    return status if status in ("ok", "partial") else None
 
 
 def _timed(row: EventRow, t0: float) -> EventRow:

@@ -339,6 +339,28 @@ def test_an_unreadable_output_is_redone_only_if_it_can_be_replaced_safely(tmp_pa
     assert rows[1].action == "skipped"
 
 
+def test_a_failed_rerun_keeps_the_earlier_result(tmp_path):
+    from meteorspec.store import read_root
+
+    folders = make_night(tmp_path / "night", 2)
+    events = find_events([tmp_path / "night"])
+    first = run_night(events, out_dir=tmp_path / "out").rows
+    assert {r.status for r in first} <= {"ok", "partial"}
+    kept = tmp_path / "out" / first[0].output
+    before = kept.read_bytes()
+    # the video of a processed event is damaged later: the rerun fails, the earlier result stays
+    (folders[0] / "video.fits").write_bytes(b"not a FITS file")
+    for force in (False, True):
+        rows = run_night(events, out_dir=tmp_path / "out", force=force).rows
+        assert rows[0].status == "failed" and rows[0].output == kept.name
+        assert "video.fits" in rows[0].error and "keeps its earlier" in rows[0].error and "\n" not in rows[0].error
+        assert kept.read_bytes() == before
+        assert read_root(kept)["status"] == first[0].status
+        assert rows[1].status == first[1].status
+    table = {r["event_id"]: r for r in read_table(tmp_path / "out" / "night.csv")}
+    assert table[first[0].event_id]["status"] == "failed"
+
+
 def test_duplicate_event_ids_are_not_run(tmp_path):
     folders = make_night(tmp_path / "night", 2)
     text = (folders[0] / "event.toml").read_text()

@@ -8,6 +8,7 @@ message naming the file, the key and the problem.
 from __future__ import annotations
 
 import csv
+import difflib
 import math
 import re
 import tomllib
@@ -22,6 +23,9 @@ from .errors import InputError
 
 PROJECTIONS = ("equidistant", "equisolid", "stereographic", "orthographic", "rectilinear")
 BIT_DEPTHS = (8, 10, 12, 16)
+# Frame rates a meteor camera records at, from 10 s time-lapse stills to fast high-speed video; a
+# rate outside is a slip of unit or digits (1e9 passed before and gave exposures of a nanosecond).
+FPS_RANGE = (0.1, 1.0e5)
 _ID_RE = re.compile(r"[A-Za-z0-9_-]+\Z")  # \Z: "$" would let a trailing newline through
 # Event ids become file names: allow what is safe on every file system (no ':',
 # which Windows forbids and NTFS reads as an alternate-data-stream separator),
@@ -149,6 +153,17 @@ def _read_toml(path: Path) -> dict[str, Any]:
         raise InputError(path, f"not valid TOML ({exc})") from None
 
 
+def _slip_of(key: str, names: list[str]) -> str | None:
+    """The name in ``names`` that ``key`` most likely misspells, or None.
+
+    A unit suffix left off or added (``tilt`` / ``tilt_deg``), or a spelling close enough
+    that difflib's ratio reaches 0.8 (``k_1`` / ``k1``: one character in three).
+    """
+    prefixed = [n for n in names if n.startswith(key + "_") or key.startswith(n + "_")]
+    close = difflib.get_close_matches(key, prefixed or names, n=1, cutoff=0.0 if prefixed else 0.8)
+    return close[0] if close else None
+
+
 class _Section:
     """Typed access to one TOML table with file/key-naming errors."""
 
@@ -166,6 +181,7 @@ class _Section:
         if not isinstance(value, dict):
             raise InputError(path, "must be a table", key=f"[{name}]")
         self.table = value
+        self.asked: set[str] = set()  # every key the parser looked for, given or not
 
     def present(self) -> bool:
         return self.given
@@ -177,6 +193,7 @@ class _Section:
         return InputError(self.path, problem, key=self._key(key))
 
     def _raw(self, key: str, required: bool) -> Any:
+        self.asked.add(key)
         if key not in self.table:
             if required:
                 raise self.fail(key, "missing key")
@@ -209,6 +226,19 @@ class _Section:
         if not isinstance(raw, str):
             raise self.fail(key, f"must be a string, got {type(raw).__name__} {raw!r}")
         return raw
+
+    def check_slips(self, *read: str) -> None:
+        """Refuse a key the parser did not read that nearly names an optional key left out.
+
+        A slip in an optional key (``k_1`` for ``k1``, ``tilt`` for ``tilt_deg``) would leave
+        that key's default in force without a word. Other keys nobody reads (a network's own
+        notes, a camera's model) are left alone. ``read``: keys read without the typed getters.
+        """
+        known = self.asked | set(read)
+        absent = sorted(k for k in known if k not in self.table)
+        for key in self.table:
+            if key not in known and (guess := _slip_of(key, absent)) is not None:
+                raise self.fail(key, f"not a key of [{self.name}]; did you mean {guess!r}?")
 
     def boolean(self, key: str, *, required: bool = True, default: bool | None = None) -> bool | None:
         raw = self._raw(key, required)
@@ -294,6 +324,7 @@ def load_station(path: str | Path) -> Station:
         raise st.fail("latitude_deg", f"must be within [-90, 90], got {lat}")
     if lon is not None and not -180 <= lon <= 360:
         raise st.fail("longitude_deg", f"must be within [-180, 360], got {lon}")
+    st.check_slips()
 
     cam = _Section(path, doc, "camera")
     width = cam.integer("width")
@@ -333,6 +364,7 @@ def load_station(path: str | Path) -> Station:
         interlaced=interlaced, black_level_adu=black, field_order=field_order,
         read_noise_adu=read_noise, gain_e_per_adu=gain,
     )
+    cam.check_slips()
 
     ln = _Section(path, doc, "lens")
     projection = ln.string("projection")
@@ -345,6 +377,7 @@ def load_station(path: str | Path) -> Station:
         projection=projection, focal_px=focal, cx=ln.number("cx"), cy=ln.number("cy"),
         k1=ln.number("k1", required=False, default=0.0), k2=ln.number("k2", required=False, default=0.0),
     )
+    ln.check_slips()
 
     gr = _Section(path, doc, "grating")
     grooves = gr.number("grooves_per_mm")
@@ -365,11 +398,13 @@ def load_station(path: str | Path) -> Station:
         tilt_azimuth_deg=gr.number("tilt_azimuth_deg", required=False, default=0.0),
         orders=tuple(orders_raw),
     )
+    gr.check_slips("orders")
 
     response = None
     rs = _Section(path, doc, "response", required=False)
     if rs.present():
         response = load_response(path.parent / rs.string("file"))
+        rs.check_slips()
 
     pointing = None
     pt = _Section(path, doc, "pointing", required=False)
@@ -379,6 +414,7 @@ def load_station(path: str | Path) -> Station:
             raise pt.fail("altitude_deg", f"must be within [-90, 90], got {alt}")
         pointing = Pointing(altitude_deg=alt, azimuth_deg=pt.number("azimuth_deg"),
                             roll_deg=pt.number("roll_deg", required=False, default=0.0))
+        pt.check_slips()
 
     return Station(id=sid, camera=camera, lens=lens, grating=grating, path=path, latitude_deg=lat,
                    longitude_deg=lon, elevation_m=elev, response=response, pointing=pointing)
@@ -425,10 +461,13 @@ def load_event(path: str | Path) -> Event:
     fps = ev.number("fps")
     if fps <= 0:
         raise ev.fail("fps", f"must be positive, got {fps}")
+    if not FPS_RANGE[0] <= fps <= FPS_RANGE[1]:
+        raise ev.fail("fps", f"must be within [{FPS_RANGE[0]:g}, {FPS_RANGE[1]:g}] frames per second, got {fps:g}")
     video_name = ev.string("video")
     video = path.parent / video_name
     if not video.exists():
         raise ev.fail("video", f"{video_name!r} not found next to event.toml")
+    ev.check_slips()
 
     speed = speed_err = None
     tr = _Section(path, doc, "trajectory", required=False)
@@ -440,6 +479,7 @@ def load_event(path: str | Path) -> Event:
         speed_err = tr.number("speed_err_km_s", required=False)
         if speed_err is not None and speed_err < 0:
             raise tr.fail("speed_err_km_s", f"must not be negative, got {speed_err}")
+        tr.check_slips()
     return Event(id=eid, station=station, start_utc=start, fps=fps, video=video, path=path,
                  speed_km_s=speed, speed_err_km_s=speed_err)
 

@@ -359,6 +359,15 @@ STATION_ERRORS = [
      r"must be within \[-90, 90\]"),
     ("altitude-low", {("pointing", "altitude_deg"): "-91"}, "[pointing] altitude_deg",
      r"must be within \[-90, 90\]"),
+    # a slip in an optional key would leave its default in force without a word
+    ("slip-k1", {("lens", "k_1"): "-0.2", ("lens", "k1"): DROP},
+     "[lens] k_1", "not a key of \\[lens\\]; did you mean 'k1'"),
+    ("slip-unit-dropped", {("grating", "tilt"): "1.5", ("grating", "tilt_deg"): DROP},
+     "[grating] tilt", "did you mean 'tilt_deg'"),
+    ("slip-unit-dropped-camera", {("camera", "read_noise"): "2.0", ("camera", "read_noise_adu"): DROP},
+     "[camera] read_noise", "did you mean 'read_noise_adu'"),
+    ("slip-station", {("station", "latitude"): "45.0", ("station", "latitude_deg"): DROP},
+     "[station] latitude", "did you mean 'latitude_deg'"),
     # an empty optional section is a forgotten key, not an absent section
     ("response-empty", {("response", "file"): DROP}, "[response] file", "missing key"),
     ("pointing-empty", {("pointing", "altitude_deg"): DROP, ("pointing", "azimuth_deg"): DROP,
@@ -373,6 +382,14 @@ def test_invalid_station_raises_one_line_error(tmp_path, changes, key, problem):
     with pytest.raises(InputError) as excinfo:
         load_station(path)
     assert_one_line_error(excinfo, path, key, problem)
+
+
+def test_keys_nobody_reads_are_left_alone_unless_a_slip(tmp_path):
+    # a network's own notes load, and a near name is no slip while the key it resembles is given
+    path = write_station(tmp_path, {("camera", "model"): '"invented cam"', ("lens", "focal_mm"): "4.0",
+                                    ("station", "operator"): '"night shift"', ("notes", "text"): '"ok"',
+                                    ("lens", "k_1"): "-0.2"})
+    assert load_station(path).lens.focal_px == 700.0
 
 
 def test_section_that_is_not_a_table(tmp_path):
@@ -543,6 +560,10 @@ EVENT_ERRORS = [
     ("no-fps", {("event", "fps"): DROP}, "[event] fps", "missing key"),
     ("no-video", {("event", "video"): DROP}, "[event] video", "missing key"),
     ("fps-zero", {("event", "fps"): "0.0"}, "[event] fps", "must be positive"),
+    ("fps-huge", {("event", "fps"): "1e9"}, "[event] fps", r"within \[0.1, 100000\] frames per second"),
+    ("fps-tiny", {("event", "fps"): "0.01"}, "[event] fps", r"within \[0.1, 100000\]"),
+    ("slip-speed", {("trajectory", "speed"): "30.0", ("trajectory", "speed_km_s"): DROP},
+     "[trajectory] speed", "did you mean 'speed_km_s'"),
     ("fps-negative", {("event", "fps"): "-25"}, "[event] fps", "must be positive"),
     ("fps-nan", {("event", "fps"): "nan"}, "[event] fps", "must be finite"),
     ("fps-inf", {("event", "fps"): "inf"}, "[event] fps", "must be finite"),

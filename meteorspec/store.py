@@ -329,6 +329,8 @@ def read_root(path: str | Path) -> dict[str, Any]:
 
 
 def _open(path: str | Path) -> h5py.File:
+    if not Path(path).is_file():  # h5py's message for it is a page of its internals
+        raise InputError(path, "no such file")
     try:
         return h5py.File(path, "r")
     except OSError as exc:

@@ -56,4 +56,5 @@ def test_show_of_a_file_that_is_not_hdf5_is_one_line(tmp_path, capsys):
 @pytest.mark.parametrize("missing", ["missing.h5"])
 def test_show_of_a_missing_file(tmp_path, capsys, missing):
     assert main(["show", str(tmp_path / missing)]) == 2
-    assert missing in capsys.readouterr().err
+    err = capsys.readouterr().err.strip()
+    assert err == f"meteorspec: {tmp_path / missing}: no such file", err

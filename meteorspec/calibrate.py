@@ -102,6 +102,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import json
 import logging
 import math
 import os
@@ -3156,19 +3157,21 @@ def _write_new_file(path: Path, text: str, *, overwrite: bool = False) -> None:
         raise
 
 
-def _set_toml_value(text: str, section: str, key: str, value: float) -> str:
+def _set_toml_value(text: str, section: str, key: str, value: float | str) -> str:
     """Replace (or add) ``key = value`` in ``[section]`` keeping comments and layout."""
+    # a string as a TOML basic string (JSON's escapes are TOML's); a float as its repr
+    literal = json.dumps(value) if isinstance(value, str) else repr(value)
     sec = re.search(rf"(?m)^\[{re.escape(section)}\]\s*$", text)
     if sec is None:
-        return text.rstrip("\n") + f"\n\n[{section}]\n{key} = {value!r}\n"
+        return text.rstrip("\n") + f"\n\n[{section}]\n{key} = {literal}\n"
     nxt = re.search(r"(?m)^\[", text[sec.end():])
     end = sec.end() + (nxt.start() if nxt else len(text) - sec.end())
     body = text[sec.end():end]
     pat = re.compile(rf"(?m)^(\s*{re.escape(key)}\s*=\s*)([^#\n]*?)(\s*(#.*)?)$")
     if pat.search(body):
-        body = pat.sub(lambda mm: f"{mm.group(1)}{value!r}{mm.group(3)}", body, count=1)
+        body = pat.sub(lambda mm: f"{mm.group(1)}{literal}{mm.group(3)}", body, count=1)
     else:
-        body = f"\n{key} = {value!r}" + body
+        body = f"\n{key} = {literal}" + body
     return text[:sec.end()] + body + text[end:]
 
 
@@ -3178,7 +3181,9 @@ def write_refined_station(station: Station, solution: WavelengthSolution, *, dat
 
     The original file's text is copied with the grating (and fitted lens) values replaced,
     so comments and the other sections stay; a header comment says what was done. The
-    original is never touched and an existing refined file is never overwritten.
+    original is never touched and an existing refined file is never overwritten. Written to
+    another folder (``out_dir``), the ``[response]`` file is named relative to that folder, so
+    that the refined file finds the same curve.
     """
     try:
         text = Path(station.path).read_text(encoding="utf-8")
@@ -3194,6 +3199,13 @@ def write_refined_station(station: Station, solution: WavelengthSolution, *, dat
     header = (f"# Refined by meteorspec calibrate from {station.path.name} ({date}): "
               f"{len(solution.residuals)} line positions, rms {solution.rms_nm:.3f} nm.\n# 1-sigma: {err}\n")
     folder = Path(station.path).parent if out_dir is None else Path(out_dir)
+    if station.response is not None and folder.resolve() != Path(station.path).parent.resolve():
+        curve = Path(station.response.path).resolve()
+        try:
+            where = Path(os.path.relpath(curve, folder.resolve())).as_posix()
+        except ValueError:  # another drive (Windows): no relative path exists
+            where = curve.as_posix()
+        text = _set_toml_value(text, "response", "file", where)
     base = f"{station.id}.refined-{date}"
     for k in range(1, 1000):
         path = folder / (f"{base}.toml" if k == 1 else f"{base}-{k}.toml")

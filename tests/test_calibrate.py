@@ -298,6 +298,32 @@ def test_calibrate_night_writes_beside_and_never_overwrites(tmp_path):
         calibrate_night([], station)
 
 
+def test_refined_file_in_another_folder_finds_the_same_response(tmp_path):
+    from meteorspec.calibrate import _solution_from_fit, write_refined_station
+    text = (
+        "[station]\nid = \"QX8\"\n\n[camera]\nwidth = 1024\nheight = 1024\nbit_depth = 8\ngamma = 1.0\n"
+        "saturation_adu = 255\ninterlaced = false\n\n[lens]\nprojection = \"equisolid\"\nfocal_px = 355.0\n"
+        "cx = 511.5\ncy = 512.0\n\n[grating]\ngrooves_per_mm = 612.0\ndispersion_angle_deg = -13.0\n\n"
+        "[response]\nfile = \"curves/QX8 response.csv\"  # measured on a star\n")
+    (tmp_path / "stations" / "curves").mkdir(parents=True)
+    (tmp_path / "stations" / "curves" / "QX8 response.csv").write_text(
+        "wavelength_nm,response\n400.0,0.5\n500.0,1.0\n600.0,0.8\n")
+    path = tmp_path / "stations" / "QX8.toml"
+    path.write_text(text)
+    station = load_station(path)
+    rng = np.random.default_rng(5)
+    x0, y0 = _track_allsky(15, (10.0, 40.0))
+    m = _measurements(ALLSKY, x0, y0, LABS_NM, sigma_px=0.1, rng=rng)
+    sol = _solution_from_fit(fit_geometry(m, SpectralGeometry.from_station(station)), m, "event")
+    for out_dir in (tmp_path / "refined", None):  # elsewhere, and beside the original
+        if out_dir is not None:
+            out_dir.mkdir()
+        refined = load_station(write_refined_station(station, sol, date="20261205", out_dir=out_dir))
+        assert refined.response.path.resolve() == station.response.path.resolve()
+        assert_allclose(refined.response.response, station.response.response)
+    assert "# measured on a star" in (tmp_path / "refined" / "QX8.refined-20261205.toml").read_text()
+
+
 # --------------------------------------------------------------------------- simulator
 
 

@@ -179,7 +179,9 @@ def measure(result, truth: dict, *, snr: float) -> dict:
                 "class_fit": str(comp["class"]), "class_confidence": float(comp["class_confidence"]),
                 "class_reason": str(comp.get("class_reason", "")),
                 "err_reported": [float(comp[f"{g}_err"]) for g in GROUPS],
-                "temperature_k": float(_attrs(result, "plasma").get("temperature_k", math.nan))}
+                "temperature_k": float(_attrs(result, "plasma").get("temperature_k", math.nan)),
+                "error_method": str(_attrs(result, "plasma").get("group_error_method", "")),
+                "composition_source": str(comp.get("source", ""))}
         g = np.array([float(_attrs(result, "plasma")[f"{k}_intensity"]) for k in GROUPS])
         cov = np.asarray(plasma["datasets"]["group_covariance"][0], float)
         scale = float(np.clip(g, 0, None).sum())

@@ -119,6 +119,36 @@ def test_figures_draw_on_a_given_axes_and_return_its_figure():
     assert plot_composition({"na": 0.2, "mg": 0.5, "fe": 0.3, "class": "normal"}, ax=axes[5]) is fig
 
 
+def test_a_kept_result_after_a_failed_rerun_says_so(tmp_path):
+    # a rerun that fails keeps the earlier file (meteorspec.batch.run_event); the report must not
+    # show that file as the current result without saying the latest run failed
+    folders = make_night(tmp_path / "night", 2)
+    events = find_events([tmp_path / "night"])
+    out = tmp_path / "out"
+    first = run_night(events, out_dir=out).rows
+    (folders[0] / "video.fits").write_bytes(b"not a FITS file")
+    rows = run_night(events, out_dir=out).rows
+    assert rows[0].status == "failed" and "keeps its earlier" in rows[0].error
+    index = write_report(out, report_dir=tmp_path / "html")
+    text = html.unescape(index.read_text())
+    failed_row = next(r for r in text.split("<tr>") if first[0].event_id in r)
+    kept_row = next(r for r in text.split("<tr>") if first[1].event_id in r)
+    assert "latest run" in failed_row and "video.fits" in failed_row
+    assert "latest run" not in kept_row
+    page = html.unescape((tmp_path / "html" / "events" / f"{first[0].event_id}.html").read_text())
+    assert "The latest run of this event failed" in page and "video.fits" in page
+    other = html.unescape((tmp_path / "html" / "events" / f"{first[1].event_id}.html").read_text())
+    assert "latest run" not in other
+    # a later run that succeeds rewrites the table: the note goes
+    (folders[0] / "video.fits").unlink()
+    make_night(tmp_path / "again", 1)  # the same seeded video of the first event
+    (folders[0] / "video.fits").write_bytes((tmp_path / "again" / "cam" / "ev000" / "video.fits").read_bytes())
+    assert run_night(events, out_dir=out).rows[0].status in ("ok", "partial")
+    write_report(out, report_dir=tmp_path / "html")
+    page = html.unescape((tmp_path / "html" / "events" / f"{first[0].event_id}.html").read_text())
+    assert "latest run" not in page
+
+
 def test_report_of_a_missing_folder_is_a_clear_error(tmp_path):
     with pytest.raises(FileNotFoundError, match="no such folder"):
         write_report(tmp_path / "nope")

@@ -8,6 +8,7 @@ by a one-line note saying which stage has not run (or which input is missing).
 
 from __future__ import annotations
 
+import csv
 import html
 import math
 import os
@@ -445,7 +446,7 @@ def _attr_table(attrs: Mapping[str, Any]) -> str:
 
 
 def _event_page(ev: Mapping[str, Any], *, h5_href: str, img_dir: Path, stem: str, prev_href: str | None,
-                next_href: str | None) -> str:
+                next_href: str | None, latest_failure: str = "") -> str:
     a = ev["attrs"]
     flags = list(a.get("flags", []))
     nav = ['<a href="../index.html">&larr; night</a>']
@@ -457,6 +458,8 @@ def _event_page(ev: Mapping[str, Any], *, h5_href: str, img_dir: Path, stem: str
     body = [f'<nav class="pager">{" ".join(nav)}</nav>',
             f"<p>{_badge(str(a.get('status', '')))} station <b>{_e(a.get('station', ''))}</b>, "
             f"start {_e(a.get('start_utc', ''))}, software {_e(a.get('software_version', ''))}</p>"]
+    if latest_failure:
+        body.append(f'<p class="error">{_e(_latest_failure_text(latest_failure))}</p>')
     if a.get("error"):
         body.append(f'<p class="error">{_e(a["error"])}</p>')
     body.append("<h2>Flags</h2>")
@@ -479,6 +482,31 @@ def _event_page(ev: Mapping[str, Any], *, h5_href: str, img_dir: Path, stem: str
     body.append(_review_log_html(ev["groups"].get("review")))
     title = f"Event {a.get('event_id', stem)}"
     return _page(title, "meteorspec event report", "\n".join(body), css_href="../style.css")
+
+
+def latest_failures(out_dir: Path) -> dict[str, str]:
+    """Event files whose latest run failed but kept an earlier result, with the run's reason.
+
+    ``meteorspec process`` never replaces an ok or partial file by a failed run (see
+    :func:`meteorspec.batch.run_event`); the failure is only in the night table, which every
+    run rewrites. Without this the report would show the kept result as if it were current.
+    An unreadable table gives no entries (the report reads the event files, not the table).
+    """
+    from ..batch import NIGHT_TABLE, read_table
+
+    table = out_dir / NIGHT_TABLE
+    if not table.is_file():
+        return {}
+    try:
+        rows = read_table(table)
+    except (OSError, UnicodeDecodeError, csv.Error):
+        return {}
+    return {row["output"]: " ".join(str(row.get("error") or "").split()) for row in rows
+            if row.get("status") == "failed" and row.get("output")}
+
+
+def _latest_failure_text(reason: str) -> str:
+    return f"The latest run of this event failed; the results below are from an earlier run. {reason}"
 
 
 def write_report(out_dir: str | Path, *, report_dir: str | Path | None = None) -> Path:
@@ -514,6 +542,7 @@ def write_report(out_dir: str | Path, *, report_dir: str | Path | None = None) -
             events.append((path, read_event(path), ""))
         except Exception as exc:  # noqa: BLE001 - one unreadable file must not stop the report
             events.append((path, None, " ".join(str(exc).split())))
+    failures = latest_failures(out)
     stems = [_safe_name(p.stem) for p, _, _ in events]
     hrefs = [f"events/{s}.html" for s in stems]
 
@@ -524,7 +553,10 @@ def write_report(out_dir: str | Path, *, report_dir: str | Path | None = None) -
             rows.append(f"<tr><td>{_e(path.stem)}</td><td>{_badge('failed')}</td><td colspan=8></td>"
                         f'<td class="error">{_e(problem)}</td></tr>')
             continue
-        page = _event_page(ev, h5_href=h5_rel, img_dir=rep / "img", stem=stems[i],
+        status = str(ev["attrs"].get("status", ""))
+        # the table's failure is about this file only while the file holds a kept earlier result
+        failure = failures.get(path.name, "") if status in ("ok", "partial") else ""
+        page = _event_page(ev, h5_href=h5_rel, img_dir=rep / "img", stem=stems[i], latest_failure=failure,
                            prev_href=f"{stems[i - 1]}.html" if i > 0 and events[i - 1][1] is not None else None,
                            next_href=f"{stems[i + 1]}.html" if i + 1 < len(events) and events[i + 1][1] is not None
                            else None)
@@ -534,12 +566,13 @@ def write_report(out_dir: str | Path, *, report_dir: str | Path | None = None) -
         cls = comp.get("class", "")
         rows.append(
             f'<tr><td><a href="{_e(hrefs[i])}">{_e(a.get("event_id", path.stem))}</a></td>'
-            f"<td>{_badge(str(a.get('status', '')))}</td><td>{_e(a.get('station', ''))}</td>"
+            f"<td>{_badge(status)}{' ' + _badge('failed') + ' latest run' if failure else ''}</td>"
+            f"<td>{_e(a.get('station', ''))}</td>"
             f"<td>{_e(cls)}</td><td class=num>{_pm(comp, 'na')}</td><td class=num>{_pm(comp, 'mg')}</td>"
             f"<td class=num>{_pm(comp, 'fe')}</td><td class=num>{_num(comp.get('speed_km_s'), '{:.1f}')}</td>"
             f"<td>{review_cell(ev)}</td>"
             f"<td>{_flags_html(list(a.get('flags', [])))}</td>"
-            f'<td class="error">{_e(a.get("error", ""))}</td></tr>')
+            f'<td class="error">{_e(failure or a.get("error", ""))}</td></tr>')
 
     comps = [(ev["groups"].get("composition") or {"attrs": {}})["attrs"] for _, ev, _ in events if ev is not None]
     band, band_note = normal_band()

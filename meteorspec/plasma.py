@@ -31,7 +31,8 @@ The observed flux density (data units per nm) in bin ``k`` is
   (Borovicka 1994 fits each component's own area). Optically thin lines only fix
   ``A * N``; ``A`` and ``N`` separate only when some lines saturate. With ``self_absorption=False`` ``A`` is fixed and the
   column densities are reported as NaN.
-* ``P_ik``: the Gaussian instrument profile of FWHM ``fwhm_nm(lambda_i) * width_scale``
+* ``P_ik``: the instrument profile of FWHM ``fwhm_nm(lambda_i) * width_scale`` (a Gaussian,
+  or with ``box_nm`` a Gaussian convolved with the motion smear, :func:`box_profile_cdf`)
   centred at ``lambda_i + shift_nm + stretch * (lambda_i - lambda_mid)`` (a residual
   wavelength-calibration error, offset and scale), integrated over bin ``k`` and divided
   by its width.
@@ -152,6 +153,8 @@ _K_EV_K = _K_J_K / 1.602176634e-19  # eV/K, exact
 
 _LN10 = math.log(10.0)
 _SIGMA_PER_FWHM = 1.0 / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+# FWHM of the Gaussian whose variance is that of a box of unit length, sqrt(8 ln 2 / 12)
+_BOX_FWHM_PER_LENGTH = math.sqrt(8.0 * math.log(2.0) / 12.0)
 _MAIN_T_BOUNDS_K = (3000.0, 8000.0)
 MAIN_TEMPERATURE_PRIOR_K = (4500.0, 500.0)
 """Default prior of the main-component temperature (centre, 1-sigma), K: published
@@ -418,6 +421,43 @@ def _fwhm_function(fwhm_nm: float | ArrayLike | Callable, grid_nm: NDArray) -> C
     return fn
 
 
+def _box_function(box_nm: float | ArrayLike | Callable | None, grid_nm: NDArray) -> Callable | None:
+    """Streak box length (nm) as a function of wavelength, or None (no box; see :func:`fit_plasma`)."""
+    if box_nm is None or callable(box_nm):
+        return box_nm
+    arr = np.asarray(box_nm, dtype=float)
+    if not np.all(np.isfinite(arr) & (arr >= 0)):
+        raise ValueError("box_nm must be finite and >= 0")
+    if not np.any(arr > 0):
+        return None
+    if arr.ndim == 0:
+        value = float(arr)
+        return lambda lam: np.full(np.shape(lam), value)  # noqa: E731
+    if arr.shape != grid_nm.shape:
+        raise ValueError(f"box_nm has shape {arr.shape}; expected a scalar, the shape of the "
+                         f"wavelength grid {grid_nm.shape}, or a callable")
+    return lambda lam: np.interp(lam, grid_nm, arr)  # noqa: E731
+
+
+def _split_profile(fwhm_nm: NDArray, box_fn: Callable | None, centre_nm: NDArray
+                   ) -> tuple[NDArray | None, NDArray]:
+    """(box length, FWHM of the Gaussian) of profiles whose equal-variance FWHM is ``fwhm_nm``.
+
+    The box's variance ``L^2 / 12`` is the share of the variance it takes:
+    ``fwhm^2 = g^2 + (0.680 L)^2`` (:func:`meteorspec.lines.instrument_fwhm_nm`). A box longer
+    than the width allows is shortened so that the Gaussian keeps a tenth of the FWHM (the
+    pipeline's smear never exceeds its width: per frame it is the part of the blur that stays
+    a box, :func:`meteorspec.lines.line_smear_px`).
+    """
+    if box_fn is None or fwhm_nm.size == 0:
+        return None, fwhm_nm
+    box = np.broadcast_to(np.asarray(box_fn(centre_nm), dtype=float), fwhm_nm.shape)
+    box = np.where(np.isfinite(box), np.clip(box, 0.0, None), 0.0)
+    box_var = np.minimum((_BOX_FWHM_PER_LENGTH * box) ** 2, 0.99 * fwhm_nm**2)
+    box = np.sqrt(box_var) / _BOX_FWHM_PER_LENGTH
+    return box, np.sqrt(fwhm_nm**2 - box_var)
+
+
 def _spectrum_arrays(spectrum) -> tuple[NDArray, NDArray, NDArray, NDArray, NDArray]:
     """wavelength, bin width, flux, flux_err and the good-bin mask of a Spectrum-like object."""
     try:
@@ -447,23 +487,87 @@ def _spectrum_arrays(spectrum) -> tuple[NDArray, NDArray, NDArray, NDArray, NDAr
 # Model
 # --------------------------------------------------------------------------------------------
 
-class _Profiles:
-    """Gaussians of unit area integrated over each bin, per nm of bin, for many lines.
+_BOX_MIN_BETA = 1e-5
+"""Box half-lengths (in Gaussian sigmas) below this are left out of a line profile: the box's
+variance ``beta^2 / 3`` (3e-11 here) is then below what the difference quotient of
+:func:`box_profile_cdf` keeps (it loses ``log10(1 / beta)`` of double precision's 16 digits)."""
 
-    ``matrix()`` is the (n_bins, n_lines) profile matrix; ``derivatives()`` gives the
-    matrices of its exact derivatives with respect to the line centre (``dP/dc``) and to
-    the log of the width (``sigma dP/dsigma``), from the Gaussian pdf at the bin edges
-    (the derivative of an ``ndtr`` difference is a difference of pdfs), so that the
+
+def box_profile_cdf(z: ArrayLike, beta: ArrayLike) -> NDArray[np.float64]:
+    """Cumulative distribution of a unit Gaussian convolved with a box of half-length ``beta``.
+
+    Both in units of the Gaussian's sigma, about the profile's centre. The density is
+    ``(Phi(z + beta) - Phi(z - beta)) / (2 beta)`` (:func:`box_profile_pdf`); its integral is
+    ``(psi(z + beta) - psi(z - beta)) / (2 beta)`` with ``psi(z) = z Phi(z) + phi(z)``, the
+    antiderivative of the normal cdf ``Phi`` (``d psi / dz = Phi``; e.g. Abramowitz & Stegun
+    1964, 26.2: ``phi' = -z phi``). ``beta`` -> 0 gives ``Phi(z)``; where ``beta`` is below
+    :data:`_BOX_MIN_BETA` that limit is used (the difference quotient would lose digits).
+
+    A meteor moving during an exposure draws each line as a streak: along the dispersion the
+    extraction leaves a uniform smear (:func:`meteorspec.lines.line_smear_px`) over the PSF,
+    which is this profile. The Gaussian of equal variance that a plain width gives instead
+    has a narrower top and longer wings; where a streak is as long as the PSF or longer
+    (motion along the dispersion) it misplaces light between blended lines.
+    """
+    z = np.asarray(z, dtype=float)
+    beta = np.asarray(beta, dtype=float)
+    small = beta < _BOX_MIN_BETA
+    b = np.where(small, 1.0, beta)
+    low = -np.abs(z)  # F(z) = 1 - F(-z): the upper half from the lower tail keeps its digits
+    boxed = (_psi(low + b) - _psi(low - b)) / (2.0 * b)
+    boxed = np.where(z > 0, 1.0 - boxed, boxed)
+    return np.where(small, ndtr(z), boxed)
+
+
+def box_profile_pdf(z: ArrayLike, beta: ArrayLike) -> NDArray[np.float64]:
+    """Density (per sigma) of a unit Gaussian convolved with a box of half-length ``beta``
+    (:func:`box_profile_cdf`); ``beta`` below :data:`_BOX_MIN_BETA`: the Gaussian's own."""
+    z = np.asarray(z, dtype=float)
+    beta = np.asarray(beta, dtype=float)
+    small = beta < _BOX_MIN_BETA
+    b = np.where(small, 1.0, beta)
+    low = -np.abs(z)  # the density is even: the lower tail keeps the digits of a far upper one
+    boxed = (ndtr(low + b) - ndtr(low - b)) / (2.0 * b)
+    return np.where(small, np.exp(-0.5 * z * z) / math.sqrt(2.0 * math.pi), boxed)
+
+
+def _psi(z: NDArray) -> NDArray:
+    """``z Phi(z) + phi(z)``: the antiderivative of the normal cdf (0 at -inf)."""
+    out = ndtr(z)
+    out *= z
+    phi = np.square(z)
+    phi *= -0.5
+    np.exp(phi, out=phi)
+    phi *= 1.0 / math.sqrt(2.0 * math.pi)
+    out += phi
+    return out
+
+
+class _Profiles:
+    """Line profiles of unit area integrated over each bin, per nm of bin, for many lines.
+
+    A profile is a Gaussian (``sigma_nm``) convolved with a box of length ``box_nm`` (the
+    motion streak along the dispersion that the extraction leaves, see :func:`box_profile_cdf`;
+    none by default). ``matrix()`` is the (n_bins, n_lines) profile matrix; ``derivatives()``
+    gives the matrices of its exact derivatives with respect to the line centre (``dP/dc``)
+    and to the log of the profile's scale (``s dP/ds`` for the whole profile widened by ``s``:
+    Gaussian and box together), from the profile density at the bin edges (the derivative of
+    a difference of the cumulative profile is a difference of densities), so that the
     optimiser needs no profile matrices at shifted or widened positions.
     """
 
     def __init__(self, centre_nm: NDArray, sigma_nm: NDArray, lo_nm: NDArray, hi_nm: NDArray,
                  *, contiguous: bool, line_weight: NDArray | None = None,
-                 bin_weight: NDArray | None = None):
+                 bin_weight: NDArray | None = None, box_nm: NDArray | None = None):
         n_bins, n = lo_nm.size, centre_nm.size
         self.shape = (n_bins, n)
-        first = np.searchsorted(hi_nm, centre_nm - 7.0 * sigma_nm)
-        last = np.minimum(np.searchsorted(lo_nm, centre_nm + 7.0 * sigma_nm, side="right"),
+        # the box's half-length in sigmas (a plain Gaussian below _BOX_MIN_BETA)
+        beta = (np.zeros(n) if box_nm is None
+                else 0.5 * np.broadcast_to(np.asarray(box_nm, dtype=float), (n,)) / sigma_nm)
+        self.beta = beta if np.any(beta >= _BOX_MIN_BETA) else None
+        reach = 7.0 * sigma_nm + (0.0 if self.beta is None else beta * sigma_nm)
+        first = np.searchsorted(hi_nm, centre_nm - reach)
+        last = np.minimum(np.searchsorted(lo_nm, centre_nm + reach, side="right"),
                           n_bins)
         count = np.maximum(last - first, 0)
         span = max(int(count.max()) if n else 0, 1)
@@ -484,13 +588,13 @@ class _Profiles:
             ke = np.clip(first[:, None] + np.arange(span + 1)[None, :], 0, n_bins)
             self.z_edge = (edges[ke] - centre_nm[:, None]) * inv_sigma
             self.z_lo, self.z_hi = self.z_edge[:, :-1], self.z_edge[:, 1:]
-            cdf = ndtr(self.z_edge)
+            cdf, self._pdf_edge = self._cdf(self.z_edge)
             cdf_lo, cdf_hi = cdf[:, :-1], cdf[:, 1:]
         else:
             self.z_edge = None
             self.z_lo = (lo_nm[kc] - centre_nm[:, None]) * inv_sigma
             self.z_hi = (hi_nm[kc] - centre_nm[:, None]) * inv_sigma
-            cdf_lo, cdf_hi = ndtr(self.z_lo), ndtr(self.z_hi)
+            (cdf_lo, self._pdf_lo), (cdf_hi, self._pdf_hi) = self._cdf(self.z_lo), self._cdf(self.z_hi)
         # ndtr differences lose digits in the far tail; beyond 7 sigma nothing is kept anyway
         self._matrix = self._csc((cdf_hi - cdf_lo) * self.inv_width)
         self._derivatives = None
@@ -510,20 +614,50 @@ class _Profiles:
         return sparse.csc_matrix((m.data[a:b], m.indices[a:b], m.indptr[start:stop + 1] - a),
                                  shape=(self.shape[0], stop - start))
 
+    def _cdf(self, z: NDArray) -> tuple[NDArray, NDArray | None]:
+        """Cumulative profile at ``z`` sigmas from the centre (rows: lines), and with a box its
+        density there (per sigma; the two share their normal cdf values), else None."""
+        if self.beta is None:
+            return ndtr(z), None
+        beta = self.beta[:, None]
+        small = beta < _BOX_MIN_BETA
+        b = np.where(small, 1.0, beta)
+        # the profile is even: both from the lower tail, which keeps the digits of a far upper one
+        low = -np.abs(z)
+        up, down = low + b, low - b
+        cdf_up, cdf_down = ndtr(up), ndtr(down)
+        norm = 1.0 / math.sqrt(2.0 * math.pi)
+        psi_up = up * cdf_up + norm * np.exp(-0.5 * up * up)
+        psi_down = down * cdf_down + norm * np.exp(-0.5 * down * down)
+        cdf = (psi_up - psi_down) / (2.0 * b)
+        cdf = np.where(z > 0, 1.0 - cdf, cdf)
+        pdf = (cdf_up - cdf_down) / (2.0 * b)
+        if np.any(small):  # the Gaussian limit (box_profile_cdf)
+            cdf = np.where(small, ndtr(z), cdf)
+            pdf = np.where(small, norm * np.exp(-0.5 * z * z), pdf)
+        return cdf, pdf
+
+    def _pdf(self, z: NDArray, stored: NDArray | None) -> NDArray:
+        """Profile density at ``z`` sigmas from the centre, per sigma (rows: lines)."""
+        if stored is not None:
+            return stored
+        return np.exp(-0.5 * z * z) / math.sqrt(2.0 * math.pi)
+
     def derivatives(self) -> tuple[sparse.csc_matrix, sparse.csc_matrix]:
-        """(dP/dc, sigma dP/dsigma) as matrices shaped like ``matrix()``."""
+        """(dP/dc, s dP/ds) as matrices shaped like ``matrix()`` (``s``: the profile's scale)."""
         if self._derivatives is None:
-            norm = 1.0 / math.sqrt(2.0 * math.pi)
             if self.z_edge is not None:
-                pdf = norm * np.exp(-0.5 * self.z_edge**2)
+                pdf = self._pdf(self.z_edge, self._pdf_edge)
                 pdf_lo, pdf_hi = pdf[:, :-1], pdf[:, 1:]
                 zpdf = pdf * self.z_edge
                 zpdf_lo, zpdf_hi = zpdf[:, :-1], zpdf[:, 1:]
             else:
-                pdf_lo = norm * np.exp(-0.5 * self.z_lo**2)
-                pdf_hi = norm * np.exp(-0.5 * self.z_hi**2)
+                pdf_lo = self._pdf(self.z_lo, self._pdf_lo)
+                pdf_hi = self._pdf(self.z_hi, self._pdf_hi)
                 zpdf_lo, zpdf_hi = pdf_lo * self.z_lo, pdf_hi * self.z_hi
             d_centre = (pdf_lo - pdf_hi) * self.inv_width / self.sigma[:, None]
+            # a profile widened by s as a whole (Gaussian and box): d/d ln s of a bin's share
+            # is (lo - c) p(lo) - (hi - c) p(hi), which in sigma units is this
             d_log_sigma = (zpdf_lo - zpdf_hi) * self.inv_width
             self._derivatives = (self._csc(d_centre), self._csc(d_log_sigma))
         return self._derivatives
@@ -640,10 +774,12 @@ class _Model:
                  component: NDArray, *, self_absorption: bool, continuum_degree: int,
                  air_multiplets: int = _AIR_MULTIPLETS, group_freedom_dex: float | None = None,
                  response_degree: int = 0, n2_tied: bool = False,
-                 response_table: tuple[NDArray, NDArray] | None = None, scale: float = 0.0):
+                 response_table: tuple[NDArray, NDArray] | None = None, scale: float = 0.0,
+                 box_fn: Callable | None = None):
         self.wl, self.bw = wl, bw
         self.lo, self.hi = wl - bw / 2, wl + bw / 2
         self.fwhm_fn = fwhm_fn
+        self.box_fn = box_fn
         self.self_absorption = bool(self_absorption)
         metal = component != "air"
         self.metal = lines.select(metal)
@@ -734,9 +870,11 @@ class _Model:
         # instrument widths depend only on the unshifted positions, so are computed once
         self._centre_all = np.concatenate([self.metal.wavelength_nm, self.air.wavelength_nm,
                                            self.n2_wl])
-        self._sigma_all = (np.broadcast_to(np.asarray(fwhm_fn(self._centre_all), dtype=float),
-                                           self._centre_all.shape) * _SIGMA_PER_FWHM
-                           if self._centre_all.size else np.zeros(0))
+        fwhm_all = (np.broadcast_to(np.asarray(fwhm_fn(self._centre_all), dtype=float),
+                                    self._centre_all.shape)
+                    if self._centre_all.size else np.zeros(0))
+        self._box_all, gauss_fwhm = _split_profile(fwhm_all, box_fn, self._centre_all)
+        self._sigma_all = gauss_fwhm * _SIGMA_PER_FWHM
         # The data were divided bin by bin by the response R the light was recorded with: a
         # line's light reaches bin k as R(line) x profile, then is divided by R(bin k). Where
         # R changes across a blurred line (coarse dispersion, blue end) its divided profile is
@@ -854,7 +992,8 @@ class _Model:
         moved = centre + shift + stretch * (centre - self.mid_nm)
         prof = _Profiles(moved, self._sigma_all * width, self.lo, self.hi,
                          contiguous=self._contiguous, line_weight=self._r_line,
-                         bin_weight=self._r_bin)
+                         bin_weight=self._r_bin,
+                         box_nm=None if self._box_all is None else self._box_all * width)
         p_all = prof.matrix()
         n_metal, n_air = len(self.metal), len(self.air)
         p_metal = prof.columns(0, n_metal).tocsr()  # row-major products are faster
@@ -937,7 +1076,8 @@ def synthetic_spectrum(wavelength_nm: ArrayLike, bin_width_nm: ArrayLike, *,
                        area_scale: float = 1.0, hot_area_scale: float | None = None,
                        self_absorption: bool = True,
                        nuisance: dict[str, float] | None = None, shift_nm: float = 0.0,
-                       continuum_degree: int = 3) -> NDArray[np.float64]:
+                       continuum_degree: int = 3,
+                       box_nm: float | ArrayLike | Callable | None = None) -> NDArray[np.float64]:
     """Bin-integrated synthetic meteor spectrum (flux density, data units per nm).
 
     Parameters
@@ -968,6 +1108,8 @@ def synthetic_spectrum(wavelength_nm: ArrayLike, bin_width_nm: ArrayLike, *,
     shift_nm : float
         Added to every line position.
     continuum_degree : int
+    box_nm : float, array or callable, optional
+        Motion smear inside ``fwhm_nm`` (as in :func:`fit_plasma`).
 
     Returns
     -------
@@ -978,7 +1120,8 @@ def synthetic_spectrum(wavelength_nm: ArrayLike, bin_width_nm: ArrayLike, *,
     component = np.where(np.isin(lines.species, AIR_SPECIES), "air",
                          np.where(np.isin(lines.species, list(hot_species)), "hot", "main"))
     model = _Model(wl, bw, _fwhm_function(fwhm_nm, wl), lines, component,
-                   self_absorption=self_absorption, continuum_degree=continuum_degree)
+                   self_absorption=self_absorption, continuum_degree=continuum_degree,
+                   box_fn=_box_function(box_nm, wl))
     model.params["log_t"].value = math.log10(temperature_k)
     model.params["log_t_hot"].value = math.log10(hot_temperature_k)
     model.params["log_scale"].value = math.log10(area_scale)
@@ -1894,7 +2037,8 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
                temperature_prior_k: tuple[float, float] | None = MAIN_TEMPERATURE_PRIOR_K,
                response_prior_sigma: float | None = RESPONSE_PRIOR_SIGMA,
                max_nfev: int = 300, bootstrap_draws: int = BOOTSTRAP_DRAWS,
-               wavelength_scale: float = 0.0, scale_search: float = 0.0) -> PlasmaFit:
+               wavelength_scale: float = 0.0, scale_search: float = 0.0,
+               box_nm: float | ArrayLike | Callable | None = None) -> PlasmaFit:
     """Fit the two-temperature LTE model to a (whole-flight) spectrum.
 
     Parameters
@@ -1905,6 +2049,13 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     fwhm_nm : float, array or callable
         Instrument FWHM (see :func:`meteorspec.lines.instrument_fwhm_nm`): a scalar, one
         value per bin, or a function of wavelength.
+    box_nm : float, array or callable, optional
+        Length along the spectrum of the motion smear inside ``fwhm_nm``
+        (:func:`meteorspec.lines.line_smear_px` times the dispersion), in the same forms. The
+        line profile is then a Gaussian convolved with that box (:func:`box_profile_cdf`),
+        the two sharing ``fwhm_nm``'s variance; None or 0: a Gaussian of FWHM ``fwhm_nm``.
+        The fit's width factor widens both. Kept in ``config["box_nm"]`` (per bin) for the
+        models rebuilt from the fit (:func:`group_templates`, :func:`fit_plasma_per_frame`).
     line_list : LineList, optional
         Default: the project line list (:func:`meteorspec.atomic.load_line_list`).
     speed_km_s : float, optional
@@ -2005,7 +2156,7 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     resembles a hotter thin one, and a single start can stop in that local minimum. The
     optimiser is ``scipy.optimize.least_squares`` (trust-region reflective, bounds,
     ``x_scale='jac'``) with an analytic Jacobian for columns, areas, group factors, linear
-    terms, shift, stretch and width (Gaussian pdf at the bin edges) and finite differences of
+    terms, shift, stretch and width (the profile density at the bin edges) and finite differences of
     the line energies for the temperatures; the group factors', the temperature's and the
     response factor's Gaussian priors enter as extra residuals. Uncertainties are from
     ``(J^T J)^-1`` at the solution,
@@ -2023,6 +2174,7 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
     """
     wl, bw, flux, err, good = _spectrum_arrays(spectrum)
     fwhm_fn = _fwhm_function(fwhm_nm, wl)
+    box_fn = _box_function(box_nm, wl)
     line_list = _default_lines() if line_list is None else line_list
     if good.sum() < 20:
         return PlasmaFit.failed(f"only {int(good.sum())} usable spectrum bins (need >= 20)",
@@ -2066,7 +2218,8 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
                   response_prior_sigma=(None if response_prior_sigma is None
                                         else float(response_prior_sigma)),
                   response_table=(None if response_nm is None else
-                                  tuple(np.asarray(a, dtype=float).copy() for a in response_nm)))
+                                  tuple(np.asarray(a, dtype=float).copy() for a in response_nm)),
+                  box_nm=None if box_fn is None else np.asarray(box_fn(wl), dtype=float).copy())
     lines = line_list.select(index)
     metal = component != "air"
     line_index = np.concatenate([index[metal], index[~metal]])
@@ -2076,7 +2229,7 @@ def fit_plasma(spectrum, *, fwhm_nm: float | ArrayLike | Callable,
                        continuum_degree=continuum_degree, group_freedom_dex=group_freedom_dex,
                        response_degree=response_degree, n2_tied=bool(n2_tied),
                        response_table=config["response_table"],
-                       scale=wavelength_scale if scale is None else scale)
+                       scale=wavelength_scale if scale is None else scale, box_fn=box_fn)
         model.params["shift_nm"].free = bool(fit_shift)
         model.params["stretch"].free = bool(fit_shift)
         model.params["width_scale"].free = bool(fit_width)
@@ -2284,7 +2437,8 @@ def _fitted_lines(whole_flight_fit: PlasmaFit, wavelength_nm: ArrayLike, bin_wid
                    cfg["component"], self_absorption=cfg["self_absorption"],
                    continuum_degree=cfg["continuum_degree"],
                    response_degree=cfg.get("response_degree", 0),
-                   n2_tied=cfg.get("n2_tied", False), response_table=cfg.get("response_table"))
+                   n2_tied=cfg.get("n2_tied", False), response_table=cfg.get("response_table"),
+                   box_fn=_box_function(cfg.get("box_nm"), wl))
     for name, q in model.params.items():
         q.value = whole_flight_fit.parameters[name]
     p_metal = model.profiles()[0]
@@ -2378,7 +2532,8 @@ def fit_plasma_per_frame(frame_spectra, whole_flight_fit: PlasmaFit, *,
                    self_absorption=cfg["self_absorption"],
                    continuum_degree=cfg["continuum_degree"],
                    response_degree=cfg.get("response_degree", 0),
-                   n2_tied=cfg.get("n2_tied", False), response_table=cfg.get("response_table"))
+                   n2_tied=cfg.get("n2_tied", False), response_table=cfg.get("response_table"),
+                   box_fn=_box_function(cfg.get("box_nm"), wl))
     wf_params = whole_flight_fit.parameters
     metal = cfg["component"] != "air"
     line_index = np.concatenate([cfg["line_index"][metal], cfg["line_index"][~metal]])

@@ -27,7 +27,8 @@ from .atomic import LineList
 from .plasma import (PlasmaFit, _default_lines, _fwhm_function, _spectrum_arrays,
                      select_model_lines)
 
-__all__ = ["LineTable", "PeakTable", "find_peaks", "identify_lines", "instrument_fwhm_nm", "line_streak_px"]
+__all__ = ["LineTable", "PeakTable", "find_peaks", "identify_lines", "instrument_fwhm_nm", "line_streak_px",
+           "line_smear_px"]
 
 STATUSES = ("identified", "blend", "unidentified")
 _SIGMA_PER_FWHM = 1.0 / (2.0 * math.sqrt(2.0 * math.log(2.0)))
@@ -218,27 +219,61 @@ def line_streak_px(geometry, x0_px: float, y0_px: float, vx_px_s: ArrayLike, vy_
     streak was counted whole: seed-8 event 002 of ``bench/plasma_end_to_end.py`` (7.6 px along
     and 7.5 px across per exposure) was given 16.5 nm at Na I D, whose Gaussian fit is 11.3 nm.
     """
+    along, _ = _streak_parts(geometry, x0_px, y0_px, vx_px_s, vy_px_s, exposure_s, wavelength_nm,
+                             order=order, psf_sigma_px=psf_sigma_px, shear_sigma_px=shear_sigma_px)
+    return _frame_median(along)
+
+
+def line_smear_px(geometry, x0_px: float, y0_px: float, vx_px_s: ArrayLike, vy_px_s: ArrayLike,
+                  exposure_s: float, wavelength_nm: ArrayLike, *, order: int = 1,
+                  psf_sigma_px: float, shear_sigma_px: float | None = None) -> NDArray[np.float64]:
+    """The uniform smear along the dispersion that the extraction leaves of each line, px.
+
+    Of the blur that :func:`line_streak_px` returns as one box length (with ``psf_sigma_px``),
+    the part that stays a box: ``(1 - kappa) m_T``. The rest is the PSF stretched by the
+    shear, a Gaussian. A line's profile along the spectrum is therefore the PSF (widened by
+    that stretch) convolved with a box of this length, not a Gaussian
+    (:func:`meteorspec.plasma.box_profile_cdf`); for motion along the dispersion it is the
+    whole streak. Median over the frames; NaN where a wavelength's image leaves the lens field.
+    """
+    _, smear = _streak_parts(geometry, x0_px, y0_px, vx_px_s, vy_px_s, exposure_s, wavelength_nm,
+                             order=order, psf_sigma_px=psf_sigma_px, shear_sigma_px=shear_sigma_px)
+    return _frame_median(smear)
+
+
+def _streak_parts(geometry, x0_px: float, y0_px: float, vx_px_s: ArrayLike, vy_px_s: ArrayLike,
+                  exposure_s: float, wavelength_nm: ArrayLike, *, order: int,
+                  psf_sigma_px: float | None, shear_sigma_px: float | None) -> tuple[NDArray, NDArray]:
+    """Per frame and wavelength: (box length of the whole blur, the uniform smear), px
+    (:func:`line_streak_px`, :func:`line_smear_px`; without ``psf_sigma_px`` both the streak)."""
     wl = np.asarray(wavelength_nm, dtype=float)
     half_x = 0.5 * np.asarray(vx_px_s, dtype=float)[:, None] * exposure_s
     half_y = 0.5 * np.asarray(vy_px_s, dtype=float)[:, None] * exposure_s
     if half_x.size == 0 or not np.isfinite(exposure_s):
-        return np.full(wl.shape, np.nan)
+        return np.full((1, wl.size), np.nan), np.full((1, wl.size), np.nan)
     xa, ya = geometry.spectrum_pixel(x0_px - half_x, y0_px - half_y, wl[None, :], order)
     xb, yb = geometry.spectrum_pixel(x0_px + half_x, y0_px + half_y, wl[None, :], order)
     dx, dy = geometry.direction(x0_px, y0_px, wl, order)
     with np.errstate(invalid="ignore"):
         along = np.abs((xb - xa) * dx[None, :] + (yb - ya) * dy[None, :])
+        smear = along
         if psf_sigma_px is not None:
             across = (xb - xa) * -dy[None, :] + (yb - ya) * dx[None, :]
             s2 = float(psf_sigma_px if shear_sigma_px is None else shear_sigma_px) ** 2
             kappa = across * across / (across * across + 12.0 * s2)
             # kappa is 0 where nothing moves across, and the stretch with it
             stretch = kappa * float(psf_sigma_px) / np.maximum(np.abs(across), 1e-12)
+            smear = along * (1.0 - kappa)
             along = along * np.sqrt((1.0 - kappa) ** 2 + 12.0 * stretch * stretch)
-    out = np.full(wl.shape, np.nan)
-    seen = np.isfinite(along).any(axis=0)
+    return along, smear
+
+
+def _frame_median(values: NDArray) -> NDArray[np.float64]:
+    """Median over the frames (rows) of each wavelength seen in some frame, else NaN."""
+    out = np.full(values.shape[1], np.nan)
+    seen = np.isfinite(values).any(axis=0)
     if seen.any():
-        out[seen] = np.nanmedian(along[:, seen], axis=0)
+        out[seen] = np.nanmedian(values[:, seen], axis=0)
     return out
 
 

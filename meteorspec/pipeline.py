@@ -27,7 +27,7 @@ from .config import Camera, Event, Station, find_station_file, load_event, load_
 from .errors import InputError
 from .extinction import ExtinctionModel, extinction_correction, pixel_altaz
 from .extract import SHEAR_PSF_SIGMA_PX, FrameSpectra, Spectrum, extract_spectra
-from .lines import identify_lines, instrument_fwhm_nm, line_streak_px
+from .lines import identify_lines, instrument_fwhm_nm, line_smear_px, line_streak_px
 from .optics import SpectralGeometry
 from .plasma import (WIDTH_SCALE_BOUNDS, PlasmaFit, ScaleScan, effective_response, fit_plasma, fit_plasma_per_frame,
                      group_templates)
@@ -347,12 +347,13 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
             result.add_flag(APERTURE_FROM_LIGHT)
     flux_unit = _flux_unit(station)
     measured = _measured_spectra(result, spectra, solution, station, track, order=order)
-    spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg = measured
+    spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg, box_nm = measured
     # a station fallback of the calibration: its groove density may be off (the event could not
     # measure it), so the plasma fit first scans the wavelength scale that the lines prefer;
     # a measured scale corrects the groove density, and the spectra are extracted again on it
     scale_kw = {"scale_search": STATION_SCALE_SEARCH} if refine_geometry and solution.source == "station" else {}
-    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s, response_nm=response_nm, **scale_kw)
+    fit = fit_plasma(whole, fwhm_nm=fwhm_nm, box_nm=box_nm, speed_km_s=event.speed_km_s, response_nm=response_nm,
+                     **scale_kw)
     scan = fit.config.get("wavelength_scale_scan") if fit else None
     if scan is not None and not scan.reason:
         solution = scaled_solution(solution, scan)
@@ -360,8 +361,8 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         result.add_flag(SCALE_FROM_PLASMA)
         spectra = extract_spectra(stack, background, track, solution.geometry, camera=camera, order=order)
         measured = _measured_spectra(result, spectra, solution, station, track, order=order)
-        spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg = measured
-        fit = fit_plasma(whole, fwhm_nm=fwhm_nm, speed_km_s=event.speed_km_s, response_nm=response_nm)
+        spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg, box_nm = measured
+        fit = fit_plasma(whole, fwhm_nm=fwhm_nm, box_nm=box_nm, speed_km_s=event.speed_km_s, response_nm=response_nm)
         if fit:  # the HDF5 keeps what the scan found (the refit's axis carries it)
             fit = dataclasses.replace(fit, config=fit.config | {"wavelength_scale_scan": scan})
     subset_attrs: dict[str, object] = {}
@@ -378,7 +379,7 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         # of an exposure where the meteor lights up or goes out inside it)
         psf_fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order, streak_scale=0.0)
         fallback = fit_unsaturated_frames(spectra, fwhm_nm=fwhm_nm, why=why_not_subset, scale_search=search,
-                                          psf_fwhm_nm=psf_fwhm_nm, **subset_kw)
+                                          psf_fwhm_nm=psf_fwhm_nm, box_nm=box_nm, **subset_kw)
         # the whole-flight fit may still measure a group from the unsaturated wings of its
         # lines; keep whichever composition is the more precise
         if fallback is not None and (not fit or _composition_error(fallback[1]) <= _composition_error(fit)):
@@ -405,6 +406,8 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         return
     result.parts["plasma"] = plasma_part(fit, whole, flux_unit=flux_unit)
     result.parts["plasma"]["datasets"]["instrument_fwhm_nm"] = (np.asarray(fwhm_nm, float), "nm")
+    if fit.config.get("box_nm") is not None:  # the line profile's motion smear (the review refits with it)
+        result.parts["plasma"]["datasets"]["instrument_box_nm"] = (np.asarray(fit.config["box_nm"], float), "nm")
     if response_nm is not None:  # the review refits with the same response-aware line model
         result.parts["plasma"]["datasets"]["response_wavelength_nm"] = (np.asarray(response_nm[0], float), "nm")
         result.parts["plasma"]["datasets"]["response"] = (np.asarray(response_nm[1], float), "1")
@@ -463,11 +466,12 @@ def _measured_spectra(result: EventResult, spectra: FrameSpectra, solution: Wave
                       track: Track, *, order: int) -> tuple:
     """Extracted spectra made physical, for the plasma fit; adds their flags and ``/spectrum``.
 
-    Returns ``(spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg)``:
+    Returns ``(spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg, box_nm)``:
     the spectra divided by the station response and the atmosphere, their whole-flight sum, the
     instrument FWHM on its grid, the station response as ``(wavelength_nm, response)`` (or
     None), the curve the spectra were divided by (the plasma model skews blurred lines as the
-    divisions did) and the meteor's altitude per frame (or None).
+    divisions did), the meteor's altitude per frame (or None) and the motion smear inside the
+    FWHM (nm, on the grid; the plasma fit's line profile).
     """
     _add_flags(result, spectra.flags)
     frame_altitude_deg = _frame_altitude_deg(solution.geometry, station, track)
@@ -475,12 +479,12 @@ def _measured_spectra(result: EventResult, spectra: FrameSpectra, solution: Wave
     _add_flags(result, flags)
     result.parts["spectrum"] = spectrum_part(spectra, flux_unit=_flux_unit(station))
     whole = spectra.whole_flight()
-    fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order)
+    fwhm_nm, box_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order, with_box=True)
     station_response = None if station.response is None else (station.response.wavelength_nm,
                                                                station.response.response)
     response_nm = effective_response(spectra, response_nm=station_response, altitude_deg=frame_altitude_deg,
                                      extinction=ExtinctionModel.for_station(station))
-    return spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg
+    return spectra, whole, fwhm_nm, station_response, response_nm, frame_altitude_deg, box_nm
 
 
 def scaled_solution(solution: WavelengthSolution, scan: ScaleScan) -> WavelengthSolution:
@@ -830,8 +834,8 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
                            min_share: float = 0.0, response_nm: tuple | None = None,
                            altitude_deg: np.ndarray | None = None, extinction: ExtinctionModel | None = None,
                            min_coverage_saturated: float = 0.25, why: list[str] | None = None,
-                           scale_search: float = 0.0,
-                           psf_fwhm_nm: np.ndarray | None = None) -> tuple[Spectrum, PlasmaFit, dict] | None:
+                           scale_search: float = 0.0, psf_fwhm_nm: np.ndarray | None = None,
+                           box_nm: np.ndarray | None = None) -> tuple[Spectrum, PlasmaFit, dict] | None:
     """Plasma fit of the sum of the frames that record every group unsaturated.
 
     Used when the whole-flight spectrum has lost a group's lines (saturated or off the
@@ -857,7 +861,8 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
     With ``psf_fwhm_nm`` the fit gets the frames' own width where the fit's width factor
     (:data:`meteorspec.plasma.WIDTH_SCALE_BOUNDS`) cannot reach it: their motion streak is that
     of a whole exposure times :func:`streak_share` of the frames (a meteor that lights up late
-    in its first exposure draws a short streak there).
+    in its first exposure draws a short streak there). ``box_nm``: the motion smear inside
+    ``fwhm_nm`` (``fit_plasma(box_nm=...)``), shortened with the streak.
 
     Returns
     -------
@@ -903,6 +908,7 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
                                      altitude_deg=None if altitude_deg is None
                                      else np.asarray(altitude_deg, dtype=float)[frames])
     fit_fwhm_nm = np.asarray(fwhm_nm, dtype=float)
+    fit_box_nm = box_nm
     streak = streak_share(subset)
     if psf_fwhm_nm is not None and np.isfinite(streak):
         psf = np.asarray(psf_fwhm_nm, dtype=float)
@@ -915,7 +921,8 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
         # at its bound (seed 6 event 015, lit over its first exposure's last quarter: 0.29)
         if np.any(own < WIDTH_SCALE_BOUNDS[0] * fit_fwhm_nm):
             fit_fwhm_nm = own
-    fit = fit_plasma(whole, fwhm_nm=fit_fwhm_nm, speed_km_s=speed_km_s, response_nm=response_nm,
+            fit_box_nm = None if box_nm is None else np.asarray(box_nm, dtype=float) * streak
+    fit = fit_plasma(whole, fwhm_nm=fit_fwhm_nm, box_nm=fit_box_nm, speed_km_s=speed_km_s, response_nm=response_nm,
                      scale_search=scale_search)
     min_coverage = min_coverage_saturated if saturated else 0.5
     which = "least saturated" if saturated else "unsaturated"
@@ -977,7 +984,7 @@ def _flag_missing(result: EventResult) -> None:
 
 
 def _instrument_fwhm(geometry: SpectralGeometry, track: Track, wavelength_nm: np.ndarray, *,
-                     order: int, streak_scale: float = 1.0) -> np.ndarray:
+                     order: int, streak_scale: float = 1.0, with_box: bool = False):
     """Instrument FWHM per wavelength bin at the middle of the luminous track.
 
     The PSF comes from the tracker; the motion streak along the dispersion widens lines
@@ -991,6 +998,9 @@ def _instrument_fwhm(geometry: SpectralGeometry, track: Track, wavelength_nm: np
     zeroth-order streak left the lines 10-35 % wider than the FWHM the fit was given.
     Where a wavelength's image leaves the lens field at either end of the streak, the
     zeroth order's streak is used. ``streak_scale`` multiplies the streak (0: the PSF alone).
+    ``with_box``: return ``(fwhm_nm, box_nm)``, the second the length in nm of the uniform smear
+    inside that width (:func:`meteorspec.lines.line_smear_px`; the plasma fit's line profile,
+    ``fit_plasma(box_nm=...)``).
     """
     lum = track.luminous & np.isfinite(track.x_px)
     x0, y0 = float(np.median(track.x_px[lum])), float(np.median(track.y_px[lum]))
@@ -1006,15 +1016,22 @@ def _instrument_fwhm(geometry: SpectralGeometry, track: Track, wavelength_nm: np
         ok = np.flatnonzero(np.isfinite(dx_all) & np.isfinite(dy_all))
         j = int(ok[np.argmin(np.abs(wl[ok] - 550.0))]) if ok.size else -1
         dx, dy = (dx_all[j], dy_all[j]) if ok.size else (0.0, 0.0)  # none: the PSF alone
-    streak_px = float(np.nanmedian(np.abs(vx * dx + vy * dy))) * track.exposure_s
+    zeroth_px = float(np.nanmedian(np.abs(vx * dx + vy * dy))) * track.exposure_s
+    zeroth_px = zeroth_px if np.isfinite(zeroth_px) else 0.0
     psf_sigma_px = track.psf_sigma_px if np.isfinite(track.psf_sigma_px) else 1.3
     # the blur along the dispersion that the extraction's shear towards the motion leaves
     line_streak = line_streak_px(geometry, x0, y0, vx, vy, track.exposure_s, wl, order=order,
                                  psf_sigma_px=psf_sigma_px, shear_sigma_px=SHEAR_PSF_SIGMA_PX)
-    streak_px = np.where(np.isfinite(line_streak), line_streak,
-                         streak_px if np.isfinite(streak_px) else 0.0)
-    return instrument_fwhm_nm(geometry, x0, y0, wavelength_nm, psf_fwhm_px=2.3548 * psf_sigma_px,
+    streak_px = np.where(np.isfinite(line_streak), line_streak, zeroth_px)
+    fwhm = instrument_fwhm_nm(geometry, x0, y0, wavelength_nm, psf_fwhm_px=2.3548 * psf_sigma_px,
                               streak_px=streak_px * float(streak_scale), order=order)
+    if not with_box:
+        return fwhm
+    smear = line_smear_px(geometry, x0, y0, vx, vy, track.exposure_s, wl, order=order,
+                          psf_sigma_px=psf_sigma_px, shear_sigma_px=SHEAR_PSF_SIGMA_PX)
+    smear = np.where(np.isfinite(smear), smear, zeroth_px) * float(streak_scale)
+    box = smear * np.asarray(geometry.dispersion_nm_per_px(x0, y0, wl, order), dtype=float)
+    return fwhm, np.where(np.isfinite(box), box, 0.0)
 
 
 def calibration_part(solution: WavelengthSolution) -> dict[str, object]:

@@ -227,6 +227,9 @@ class EventView:
         (see :func:`estimate_frame_weight`).
     fwhm_nm : ndarray of shape (n_wl,)
         Instrument FWHM on the stored grid.
+    box_nm : ndarray of shape (n_wl,) or None
+        The motion smear inside that width (``/plasma/instrument_box_nm``; the plasma fit's
+        line profile, :func:`meteorspec.plasma.fit_plasma`); None for a file without it.
     response_nm : (ndarray, ndarray) or None
         The station response the spectra were divided by (``/plasma/response_wavelength_nm``,
         ``/plasma/response``): the plasma fit models blurred lines divided by it bin by bin.
@@ -255,6 +258,7 @@ class EventView:
     software_version: str = ""   # of the automatic run under review
     response_nm: tuple[np.ndarray, np.ndarray] | None = None
     shape_rel_err: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+    box_nm: np.ndarray | None = None
     correlation: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))   # /spectrum/flux_correlation
     common_share: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))  # /spectrum/flux_common_share
 
@@ -335,9 +339,11 @@ class EventView:
         rw = np.asarray(plasma["datasets"].get("response_wavelength_nm", []), float)
         rv = np.asarray(plasma["datasets"].get("response", []), float)
         response_nm = (rw, rv) if rw.ndim == 1 and rw.size >= 2 and rv.shape == rw.shape else None
+        box = np.asarray(plasma["datasets"].get("instrument_box_nm", []), float)
+        box = box if box.shape == wl.shape and np.all(np.isfinite(box) & (box >= 0)) else None
         return cls(path=str(path), event_id=str(ev["attrs"].get("event_id", "")), wavelength_nm=wl,
                    bin_width_nm=bw, per_frame=pf, per_frame_err=pfe, per_frame_mask=pfm, time_s=time_s,
-                   frame_weight=weight, fwhm_nm=fwhm,
+                   frame_weight=weight, fwhm_nm=fwhm, box_nm=box,
                    flux=np.asarray(d.get("flux", np.full(wl.size, np.nan)), float),
                    flux_err=np.asarray(d.get("flux_err", np.full(wl.size, np.nan)), float),
                    lines={k: np.asarray(v) for k, v in lines.items()}, composition=comp, speed_km_s=speed,
@@ -632,6 +638,7 @@ def rederive(view: EventView, corrections: Corrections, *, line_list: LineList |
                                     "(a grating's scale is not off by 20 %)")
     spectrum = regrid(whole, shift_nm=shift, stretch=stretch)
     fwhm = np.asarray(view.fwhm_nm, float) * stretch
+    box = None if view.box_nm is None else np.asarray(view.box_nm, float) * stretch
     if corrections.ignored_nm:
         mask = np.asarray(spectrum.mask, bool).copy()
         for lo, hi in corrections.ignored_nm:
@@ -646,7 +653,7 @@ def rederive(view: EventView, corrections: Corrections, *, line_list: LineList |
             notes.append(f"rejected lines belong to the {', '.join(groups)} group(s): that group's intensity "
                          "now sums its remaining lines only")
         line_list = line_list.select(~drop)
-    options = {"response_nm": view.response_nm} | dict(plasma_options or {})
+    options = {"response_nm": view.response_nm, "box_nm": box} | dict(plasma_options or {})
     fit = fit_plasma(spectrum, fwhm_nm=fwhm, line_list=line_list, speed_km_s=view.speed_km_s, **options)
     table = identify_lines(spectrum, fwhm_nm=fwhm, line_list=line_list, plasma_fit=fit if fit else None)
     composition = None

@@ -279,15 +279,16 @@ def test_na_peak_saturated_counts_d_bins_scaled_up_from_their_wings():
 class _LineTrack:
     """A zeroth order moving at constant velocity (the attributes _instrument_fwhm reads)."""
 
-    def __init__(self, x0_px: float, vx_px_s: float, n: int = 9, exposure_s: float = 0.04) -> None:
+    def __init__(self, x0_px: float, vx_px_s: float, n: int = 9, exposure_s: float = 0.04,
+                 vy_px_s: float = 0.0) -> None:
         self.time_s = (np.arange(n) + 0.5) * exposure_s
         self.x_px = x0_px + vx_px_s * (self.time_s - self.time_s.mean())
-        self.y_px = np.full(n, 240.0)
+        self.y_px = 240.0 + vy_px_s * (self.time_s - self.time_s.mean())
         self.luminous = np.ones(n, bool)
-        self.exposure_s, self.psf_sigma_px, self._v = exposure_s, 1.0, vx_px_s
+        self.exposure_s, self.psf_sigma_px, self._v = exposure_s, 1.0, (vx_px_s, vy_px_s)
 
     def velocity_px_s(self, time_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        return np.full(np.shape(time_s), self._v), np.zeros(np.shape(time_s))
+        return np.full(np.shape(time_s), self._v[0]), np.full(np.shape(time_s), self._v[1])
 
 
 def test_instrument_fwhm_when_550_nm_lies_beyond_the_lens_field():
@@ -347,6 +348,40 @@ def test_instrument_fwhm_streak_of_each_line_image_off_axis_on_a_rectilinear_len
                      "track": {"datasets": {"x": track.x_px, "y": track.y_px, "time_s": track.time_s},
                                "attrs": {"exposure_s": 0.04, "psf_sigma_px": 1.0}}}}
     assert_allclose(_fwhm_from_geometry(ev, lam), expected, rtol=1e-4)
+    # motion along the dispersion: the whole line-image streak stays a box (the plasma fit's
+    # line profile, lines.line_smear_px), and the PSF is the rest of the width
+    fwhm_b, box = pipeline._instrument_fwhm(geo, track, lam, order=1, with_box=True)
+    assert_allclose(fwhm_b, fwhm)
+    assert_allclose(box, streak * disp, rtol=1e-4)
+    assert_allclose(np.sqrt(fwhm**2 - (math.sqrt(8 * math.log(2) / 12) * box) ** 2), 2.3548 * disp, rtol=1e-4)
+
+
+def test_instrument_box_is_the_smear_that_the_shear_leaves():
+    # An oblique streak (5 px along x, 4 px along y per exposure) through a grating dispersing
+    # along x. The extraction integrates along a direction sheared towards the motion by
+    # kappa = m_N^2 / (m_N^2 + 12 s^2) (meteorspec.extract, module notes, step 3; s = 1.5 px,
+    # extract.SHEAR_PSF_SIGMA_PX): (1 - kappa) m_T of the streak stays a box along the spectrum,
+    # and the PSF (sigma 1 px) is stretched by kappa m_T / m_N, a Gaussian. m_T and m_N, the
+    # line image's motion along and across the spectrum, come from the optics (its own tests).
+    from meteorspec.extract import SHEAR_PSF_SIGMA_PX
+    from meteorspec.optics import GratingModel, LensModel, SpectralGeometry
+    geo = SpectralGeometry(LensModel("rectilinear", 300.0, 320.0, 240.0), GratingModel(600.0, 0.0))
+    lam = np.array([420.0, 589.0, 777.0])
+    track = _LineTrack(330.0, 125.0, vy_px_s=100.0)
+    fwhm, box = pipeline._instrument_fwhm(geo, track, lam, order=1, with_box=True)
+    xa, ya = geo.spectrum_pixel(330.0 - 2.5, 240.0 - 2.0, lam, 1)
+    xb, yb = geo.spectrum_pixel(330.0 + 2.5, 240.0 + 2.0, lam, 1)
+    dx, dy = geo.direction(330.0, 240.0, lam, 1)
+    m_t = np.abs((xb - xa) * dx + (yb - ya) * dy)
+    m_n = (xb - xa) * -dy + (yb - ya) * dx
+    kappa = m_n**2 / (m_n**2 + 12 * SHEAR_PSF_SIGMA_PX**2)
+    disp = geo.dispersion_nm_per_px(330.0, 240.0, lam, 1)
+    assert np.all(kappa > 0.2) and np.all(kappa < 0.8)  # a real split between box and stretch
+    assert_allclose(box, (1 - kappa) * m_t * disp, rtol=1e-9)
+    stretch_px = kappa * m_t * 1.0 / np.abs(m_n)
+    gauss = np.sqrt(fwhm**2 - (math.sqrt(8 * math.log(2) / 12) * box) ** 2)
+    # the rest of the variance is the PSF's and the stretch's (2.3548 ~ sqrt(8 ln 2) to 2e-5)
+    assert_allclose(gauss, 2.3548 * np.hypot(1.0, stretch_px) * disp, rtol=1e-4)
 
 
 def test_clean_light_compares_apertures_on_the_bins_both_record_unsaturated():

@@ -922,15 +922,6 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
         if np.any(own < WIDTH_SCALE_BOUNDS[0] * fit_fwhm_nm):
             fit_fwhm_nm = own
             fit_box_nm = None if box_nm is None else np.asarray(box_nm, dtype=float) * streak
-        elif box_nm is not None and streak < 1.0:
-            # the width factor widens the profile as a whole; the frames' shorter smear is a
-            # shape, which it cannot give: their own box, the Gaussian part kept (seed-5 event
-            # 030 of bench/plasma_end_to_end.py --clean, moving along the dispersion, measured
-            # on its unsaturated frames: 0.18 off with the whole flight's box)
-            box = np.asarray(box_nm, dtype=float)
-            gauss2 = np.clip(fit_fwhm_nm**2 - (_BOX_FWHM_PER_PX * box) ** 2, 0.0, None)
-            fit_box_nm = box * streak
-            fit_fwhm_nm = np.sqrt(gauss2 + (_BOX_FWHM_PER_PX * fit_box_nm) ** 2)
     fit = fit_plasma(whole, fwhm_nm=fit_fwhm_nm, box_nm=fit_box_nm, speed_km_s=speed_km_s, response_nm=response_nm,
                      scale_search=scale_search)
     min_coverage = min_coverage_saturated if saturated else 0.5
@@ -959,10 +950,6 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
                            "it is; saturated lines measured from the unmasked wings of their profile "
                            "(group_coverage: share of each group's model light on measured bins)")
     return whole, fit, attrs
-
-
-# FWHM of the Gaussian whose variance is that of a box of unit length (lines.instrument_fwhm_nm)
-_BOX_FWHM_PER_PX = math.sqrt(8.0 * math.log(2.0) / 12.0)
 
 
 def streak_share(spectra: FrameSpectra) -> float:

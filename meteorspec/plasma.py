@@ -499,8 +499,8 @@ def box_profile_cdf(z: ArrayLike, beta: ArrayLike) -> NDArray[np.float64]:
     Both in units of the Gaussian's sigma, about the profile's centre. The density is
     ``(Phi(z + beta) - Phi(z - beta)) / (2 beta)`` (:func:`box_profile_pdf`); its integral is
     ``(psi(z + beta) - psi(z - beta)) / (2 beta)`` with ``psi(z) = z Phi(z) + phi(z)``, the
-    antiderivative of the normal cdf ``Phi`` (``d psi / dz = Phi``; e.g. Abramowitz & Stegun
-    1964, 26.2: ``phi' = -z phi``). ``beta`` -> 0 gives ``Phi(z)``; where ``beta`` is below
+    antiderivative of the normal cdf ``Phi`` (``d psi / dz = Phi`` since ``phi' = -z phi``; worked
+    here, and checked against quadrature in the tests). ``beta`` -> 0 gives ``Phi(z)``; where ``beta`` is below
     :data:`_BOX_MIN_BETA` that limit is used (the difference quotient would lose digits).
 
     A meteor moving during an exposure draws each line as a streak: along the dispersion the

@@ -430,7 +430,7 @@ def oracle_fit(spec, calls: list[tuple], result, *, draws: int = 0, settings: di
     (module notes, ``--oracle-draws``; :func:`noise_draw_fits`). ``settings``: ``fit_plasma``
     keywords that replace the call's in these truth fits (``--oracle-set``).
     """
-    from meteorspec.plasma import box_profile_cdf
+    from meteorspec.plasma import _split_profile, box_profile_cdf
     from meteorspec.simulate.emission import build_emission
 
     plasma_attrs = _attrs(result, "plasma")
@@ -448,11 +448,12 @@ def oracle_fit(spec, calls: list[tuple], result, *, draws: int = 0, settings: di
     fwhm = kw["fwhm_nm"]
     fwhm = fwhm(wl) if callable(fwhm) else np.broadcast_to(np.asarray(fwhm, float), wl.shape)
     fwhm = np.interp(em.wavelength_nm, wl, fwhm * fit.width_scale)
-    box = fit.config.get("box_nm")  # the fit's line profile: a Gaussian and the motion smear in it
-    box = np.zeros_like(fwhm) if box is None else np.interp(em.wavelength_nm, wl, box * fit.width_scale)
-    box_fwhm2 = np.minimum((math.sqrt(8.0 * math.log(2.0) / 12.0) * box) ** 2, 0.99 * fwhm**2)
-    sigma = np.sqrt(fwhm**2 - box_fwhm2) / math.sqrt(8.0 * math.log(2.0))
-    beta = (np.sqrt(box_fwhm2) / math.sqrt(8.0 * math.log(2.0) / 12.0) / 2.0 / sigma)[:, None]
+    # the fit's line profile: a Gaussian and the motion smear in it, split as the model splits it
+    box = fit.config.get("box_nm")
+    box_fn = None if box is None else (lambda lam: np.interp(lam, wl, box * fit.width_scale))
+    box, gauss_fwhm = _split_profile(fwhm, box_fn, em.wavelength_nm)
+    sigma = gauss_fwhm / math.sqrt(8.0 * math.log(2.0))
+    beta = (np.zeros_like(sigma) if box is None else 0.5 * box / sigma)[:, None]
     x = em.wavelength_nm[:, None]
     blur = (box_profile_cdf((wl + 0.5 * bw - x) / sigma[:, None], beta)
             - box_profile_cdf((wl - 0.5 * bw - x) / sigma[:, None], beta)) / bw

@@ -378,8 +378,12 @@ def _reduce(result: EventResult, event: Event, station: Station, stack: FrameSta
         # the lines' width without motion: a subset of frames has its own streaks (the lit part
         # of an exposure where the meteor lights up or goes out inside it)
         psf_fwhm_nm = _instrument_fwhm(solution.geometry, track, whole.wavelength_nm, order=order, streak_scale=0.0)
+        # Gaussian lines here: the frames that qualify are mostly partly lit (the first and last),
+        # whose smear is neither the whole flight's nor even, and the box profile moved such fits
+        # farther from the truth (fireballs of bench/plasma_end_to_end.py --clean, seed 8 event
+        # 003 0.018 -> 0.125 off, seed 5 event 030 0.009 -> 0.179; sample event QM04 0.10 -> 0.35)
         fallback = fit_unsaturated_frames(spectra, fwhm_nm=fwhm_nm, why=why_not_subset, scale_search=search,
-                                          psf_fwhm_nm=psf_fwhm_nm, box_nm=box_nm, **subset_kw)
+                                          psf_fwhm_nm=psf_fwhm_nm, **subset_kw)
         # the whole-flight fit may still measure a group from the unsaturated wings of its
         # lines; keep whichever composition is the more precise
         if fallback is not None and (not fit or _composition_error(fallback[1]) <= _composition_error(fit)):

@@ -866,7 +866,8 @@ def fit_unsaturated_frames(spectra: FrameSpectra, *, fwhm_nm: np.ndarray, speed_
     (:data:`meteorspec.plasma.WIDTH_SCALE_BOUNDS`) cannot reach it: their motion streak is that
     of a whole exposure times :func:`streak_share` of the frames (a meteor that lights up late
     in its first exposure draws a short streak there). ``box_nm``: the motion smear inside
-    ``fwhm_nm`` (``fit_plasma(box_nm=...)``), shortened with the streak.
+    ``fwhm_nm`` (``fit_plasma(box_nm=...)``), shortened with the streak where the frames' own
+    width replaces ``fwhm_nm``; the pipeline passes none (Gaussian lines, see ``_reduce``).
 
     Returns
     -------

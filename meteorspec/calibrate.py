@@ -703,11 +703,6 @@ def _masked_residual(frame: Any, background: Any) -> tuple[NDArray, NDArray]:
     return res, np.sqrt(var).astype(np.float32)
 
 
-#: Frames other than the first and last lit ones that the whole-spectrum fit needs before it
-#: leaves those two out (see _calibrate): its check of the two halves of the track fits at
-#: least two frames in each.
-_WHOLE_SPECTRUM_MIN_INNER = 4
-
 #: Least significance of a frame's first-order light (summed over the wavelengths usable in it
 #: and its two neighbours) for its light-curve slope to be taken from the first order: at 10
 #: sigma the slope's noise (~0.07 in ``g``, ~0.006 of the streak) is well below the shifts it
@@ -2056,22 +2051,11 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
                              and np.isfinite(disp) and coarse.get("chosen") is not None)
             if not (np.isfinite(disp) and disp > whole_spectrum_min_nm_per_px) and not fine_fallback:
                 return sol
-    # the whole-spectrum fit takes the zeroth orders of the linear light curve (with the first
-    # order's light where the zeroth order's flux is missing: _relit_cuts), as it was set up and
-    # tuned with (meteorspec.calfit). With the first and last lit frames' centres modelled
-    # (_edge_centre_frac), on bench_calibration.py --n 30 --seed 4 --truth-track one of its
-    # solutions improved (event 008, line max 0.75 -> 0.36 nm) and one was then flagged
-    # ambiguous (005); modelled from the first order's light, 5 of 8 events of --allsky 8
-    # --seed 7 met every figure, 7 without. Those two frames are left out instead:
-    if sum(c.lit_edge == 0 for c in cuts) >= _WHOLE_SPECTRUM_MIN_INNER:
-        # lit for part of their exposure, their light sits away from the middle (up to 2.5 px on
-        # a fast all-sky meteor, where the linear light curve keeps it) and their lines are
-        # shorter streaks than the model draws. On --allsky 8 --seed 7 event 004 (a meteor
-        # ending bright) their positions 1.8 and 2.5 px off pulled the tilt 0.44 deg and the
-        # lines 1.33 nm at most; without them 0.47 nm. Seed 5 (--n 20): 13 of 19 events meet
-        # every figure, 12 with them; seed 4 (--truth-track): 18 of 30 either way (event 008
-        # 0.56 -> 0.12 nm at most; event 026, ambiguous at 4.3 nm, now falls back to the station)
-        cuts = [c for c in cuts if c.lit_edge == 0]
+    # the whole-spectrum fit keeps the zeroth orders of the linear light curve, as it was set up
+    # and tuned with (meteorspec.calfit): with the first and last lit frames' centres modelled,
+    # on bench_calibration.py --n 30 --seed 4 --truth-track one of its solutions improved (event
+    # 008, line max 0.75 -> 0.36 nm) and one was then flagged ambiguous (005, 1.80 nm before)
+    # (with the first order's light curve where the zeroth order's flux is missing: _relit_cuts)
     cuts = [dataclasses.replace(c, x0_px=c.x0_light_px, y0_px=c.y0_light_px) if np.isfinite(c.x0_light_px)
             else c if not np.isfinite(c.x0_linear_px)
             else dataclasses.replace(c, x0_px=c.x0_linear_px, y0_px=c.y0_linear_px) for c in cuts]

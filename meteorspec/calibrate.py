@@ -541,13 +541,6 @@ class _FrameCut:
     # missing (:func:`_first_order_slopes`): what the whole-spectrum fit is given (see _calibrate)
     x0_light_px: float = math.nan
     y0_light_px: float = math.nan
-    # the track's position at mid-exposure, before any light-curve shift, and whether the
-    # zeroth order's flux was measured in this frame (not saturated, on the sensor): what
-    # :func:`_relit_cuts` needs to place the three positions again along a better curve
-    x_track_px: float = math.nan
-    y_track_px: float = math.nan
-    zeroth_flux_measured: bool = True
-    lit_edge: int = 0  # +1: the first lit frame of a flight that starts in the record; -1: the last
 
 
 def _sample(cut: _FrameCut, x: NDArray, y: NDArray, img: NDArray | None = None) -> NDArray:
@@ -643,12 +636,10 @@ def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int,
         # saturated in 17 of 21 frames, 10 nm/px): centroids 0.13-0.48 px off at the ends of the
         # stretch, the whole-spectrum fit's free tilt 2.2 deg off and its lines 2.2 nm; from the
         # first order within 0.05 px, tilt 0.2 deg, lines 0.7 nm (with the true centroids 0.25 nm).
-        # Here only x0_light_px takes them, from the first order along ``geometry`` (the
-        # station's): given them too, the feature method on coarse spectra accepted a faint
-        # event's fit that it had rejected (event 034: grooves +0.4 %, Mg 0.22 off in
-        # composition). Along a station curve far off the spectrum these slopes are noise;
-        # :func:`_relit_cuts` places all three positions again along a searched curve (the same
-        # event, so placed: 0.035 off in composition)
+        # Only the whole-spectrum fit takes these centroids: given them too, the feature method on
+        # coarse spectra accepted a faint event's fit that it had rejected (event 034: grooves
+        # +0.4 %, Mg 0.22 off in composition, where the whole-spectrum fit it fell back on gave
+        # 0.10); on fine spectra it keeps its own (x0_px). Neither was studied further
         psf = float(getattr(track, "psf_sigma_px", math.nan))
         slopes = _first_order_slopes(frames, background, x, y, lum, good_f, geometry, order=order,
                                      psf_px=psf if np.isfinite(psf) and psf > 0 else 1.5, among=idx)
@@ -662,8 +653,6 @@ def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int,
     # light curve above cannot reach (its 1/4-streak clip); the rise (fall) is modelled from
     # the three outermost frames' fluxes (:func:`_edge_centre_frac`)
     sx_full, sy_full = vx.copy(), vy.copy()
-    x_track, y_track = x.copy(), y.copy()
-    edge = np.zeros(x.size, int)
     x_lin, y_lin = x + shift_frac * vx, y + shift_frac * vy
     x_light, y_light = x + lin_frac * vx, y + lin_frac * vy
     for i, inner, step in ((int(np.argmax(lum)), 1, 1), (int(lum.size - 1 - np.argmax(lum[::-1])), -1, -1)):
@@ -671,7 +660,6 @@ def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int,
         if not (lum.any() and 0 <= i - step < lum.size and not lum[i - step]
                 and all(0 <= j < lum.size and lum[j] for j in nb[1:])):
             continue  # not a start (end) of the light within the record
-        edge[i] = step
         frac = _edge_centre_frac(f[nb[0]], f[nb[1]], f[nb[2]])
         if frac is None:
             continue
@@ -690,8 +678,7 @@ def _cuts(frames: Sequence, background: Any, track: Any, *, max_frames: int,
         out.append(_FrameCut(int(i), float(x[i]), float(y[i]), float(vx[i]), float(vy[i]), res, sigma,
                              int(frame.y_start_px), int(frame.y_step_px),
                              float(np.median(sigma[::4, ::4])), float(x_lin[i]), float(y_lin[i]),
-                             float(x_light[i]), float(y_light[i]), float(x_track[i]), float(y_track[i]),
-                             bool(good_f[i]), int(edge[i])))
+                             float(x_light[i]), float(y_light[i])))
     return out
 
 
@@ -729,33 +716,20 @@ def _first_order_slopes(frames: Sequence, background: Any, x: NDArray, y: NDArra
                if lum[k - 1] and lum[k] and lum[k + 1] and not (measured[k - 1] and measured[k] and measured[k + 1])]
     if not targets:
         return {}
-    cuts = []
-    for j in sorted({k + d for k in targets for d in (-1, 0, 1)}):
-        frame = frames[int(j)]
-        res, sigma = _masked_residual(frame, background)
-        cuts.append(_FrameCut(int(j), float(x[j]), float(y[j]), 0.0, 0.0, res, sigma, int(frame.y_start_px),
-                              int(frame.y_step_px)))
-    return _light_slopes(_first_order_light(cuts, geometry, psf_px=psf_px, order=order), targets)
-
-
-def _first_order_light(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: float,
-                       order: int) -> dict[int, tuple[NDArray, NDArray]]:
-    """Each cut's first-order light across a band along ``geometry``'s curve at 380-880 nm and its
-    1-sigma, per wavelength (NaN where any pixel is), keyed by the cut's frame position."""
     half = max(2.0, math.ceil(2.5 * psf_px))
     offs = np.arange(-half, half + 0.01, 1.0)
     wl = np.linspace(380.0, 880.0, 251)
-    vals, sigs = _sample_curves_both(cuts, _curves(geometry, cuts, wl, order), offs)
-    return {c.position: (v.sum(axis=0), np.sqrt(np.sum(np.square(e), axis=0))) for c, v, e in zip(cuts, vals, sigs)}
-
-
-def _light_slopes(bands: dict[int, tuple[NDArray, NDArray]], targets: Sequence[int]) -> dict[int, float]:
-    """Light-curve slopes ``g`` of the ``targets`` from their own and their neighbours' first-order
-    light (:func:`_first_order_light`), on the wavelengths usable in all three (see
-    :func:`_first_order_slopes`)."""
+    bands: dict[int, tuple[NDArray, NDArray]] = {}
+    for j in sorted({k + d for k in targets for d in (-1, 0, 1)}):
+        frame = frames[int(j)]
+        res, sigma = _masked_residual(frame, background)
+        cut = _FrameCut(int(j), float(x[j]), float(y[j]), 0.0, 0.0, res, sigma, int(frame.y_start_px),
+                        int(frame.y_step_px))
+        (v,), (e,) = _sample_curves_both([cut], _curves(geometry, [cut], wl, order), offs)
+        bands[j] = (v.sum(axis=0), np.sqrt(np.sum(np.square(e), axis=0)))  # NaN where any pixel is
     out = {}
     for k in targets:
-        common = np.ones(bands[k][0].size, bool)
+        common = np.ones(wl.size, bool)
         for j in (k - 1, k, k + 1):
             common &= np.isfinite(bands[j][0]) & np.isfinite(bands[j][1])
         if not common.any():
@@ -766,73 +740,6 @@ def _light_slopes(bands: dict[int, tuple[NDArray, NDArray]], targets: Sequence[i
             continue
         out[k] = (fl[2] - fl[0]) / (2.0 * fl[1])
     return out
-
-
-def _relit_cuts(cuts: list[_FrameCut], geometry: SpectralGeometry, *, psf_px: float,
-                order: int) -> list[_FrameCut]:
-    """``cuts`` placed again where the zeroth order's flux is missing, from the first order's light
-    along ``geometry``'s curve.
-
-    :func:`_cuts` shifts each frame's zeroth order to the light's centroid over the exposure
-    from the light curve: the zeroth order's flux, and where that is missing (saturated, off the
-    sensor) the first order's along the *station's* curve, for ``x0_light_px`` only. Where the
-    station's values are far off, that band holds little of the light, and across a saturated
-    stretch the zeroth order's flux interpolated in log is flat. Seeded all-sky event
-    ``bench_calibration.py --allsky 8 --seed 7`` 006 (zeroth order saturated in 16 of 19
-    frames, station angle 3.8 deg off), rendered without noise: the first-order sums read 6,
-    23, 39, 131, 433 ... for light in the ratios 0.15, 0.33, 0.51, 0.69, 0.83, and the rising
-    frames' zeroth orders stayed 0.3-0.6 px from the light's centroid. Along a curve that lies
-    on the spectrum (``geometry``: the dispersion angle that gathers the most light) every
-    frame with both neighbours among ``cuts`` and a zeroth-order flux missing in any of the
-    three gets its slope from the first order, in all three positions (``x0_px``,
-    ``x0_linear_px``, ``x0_light_px``), and the first and last lit frames
-    (``_FrameCut.lit_edge``) whose zeroth-order fluxes are missing get their modelled centre
-    (:func:`_edge_centre_frac`) from the first order's light, in ``x0_px``. The rest keep theirs.
-    """
-    by_pos = {c.position: c for c in cuts}
-    placeable = {c.position for c in cuts if np.isfinite(c.x_track_px) and np.isfinite(c.y_track_px)}
-    targets = [p for p in sorted(placeable)
-               if (p - 1) in by_pos and (p + 1) in by_pos
-               and not all(by_pos[q].zeroth_flux_measured for q in (p - 1, p, p + 1))]
-    edges = []
-    for p in sorted(placeable):
-        step = by_pos[p].lit_edge
-        nb = (p, p + step, p + 2 * step)
-        if step and all(q in by_pos for q in nb) and not all(by_pos[q].zeroth_flux_measured for q in nb):
-            edges.append((p, step))
-    if not targets and not edges:
-        return cuts
-    need = sorted({p + d for p in targets for d in (-1, 0, 1)} | {p + k * s for p, s in edges for k in (0, 1, 2)})
-    bands = _first_order_light([by_pos[p] for p in need], geometry, psf_px=psf_px, order=order)
-    moved: dict[int, dict[str, float]] = {}
-    for p, g in _light_slopes(bands, targets).items():
-        c = by_pos[p]
-        frac = float(np.clip(g / 12.0, -0.25, 0.25))
-        x, y = c.x_track_px + frac * c.streak_dx_px, c.y_track_px + frac * c.streak_dy_px
-        moved[p] = dict(x0_px=x, y0_px=y, x0_linear_px=x, y0_linear_px=y, x0_light_px=x, y0_light_px=y)
-    for p, step in edges:
-        nb = (p, p + step, p + 2 * step)
-        common = np.ones(bands[p][0].size, bool)
-        for q in nb:
-            common &= np.isfinite(bands[q][0]) & np.isfinite(bands[q][1])
-        if not common.any():
-            continue
-        fl = [float(np.sum(bands[q][0][common])) for q in nb]
-        if not fl[1] > _FIRST_ORDER_MIN_SNR * math.sqrt(float(np.sum(np.square(bands[p + step][1][common])))):
-            continue
-        frac = _edge_centre_frac(*fl)
-        if frac is None:
-            continue
-        # the motion over the whole exposure: the neighbour's where longer (as _cuts)
-        c, nbr = by_pos[p], by_pos[p + step]
-        sx, sy = ((nbr.streak_dx_px, nbr.streak_dy_px)
-                  if math.hypot(nbr.streak_dx_px, nbr.streak_dy_px) > math.hypot(c.streak_dx_px, c.streak_dy_px)
-                  else (c.streak_dx_px, c.streak_dy_px))
-        # x0_px only: the whole-spectrum fit and the feature method on coarse spectra keep the
-        # linear light curve's centre of an edge frame (see _calibrate; with this centre there
-        # too, bench_calibration.py --allsky 8 --seed 7 met every figure on 5 events, not 7)
-        moved[p] = dict(x0_px=c.x_track_px + step * frac * sx, y0_px=c.y_track_px + step * frac * sy)
-    return [dataclasses.replace(c, **moved[c.position]) if c.position in moved else c for c in cuts]
 
 
 def _edge_centre_frac(f_edge: float, f_next: float, f_next2: float) -> float | None:
@@ -2001,12 +1908,6 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
                angle_range_deg: float, grooves_range_frac: float, order: int, event: str,
                **kwargs: Any) -> WavelengthSolution:
     """:func:`calibrate_event` on the frames' cut-outs (the features, then the whole spectrum)."""
-    if len(cuts) >= 2:
-        # the light curve inside each exposure from the first order where the zeroth order's flux
-        # is missing, sampled along the curve that gathers the most light (_relit_cuts)
-        along = _search_curve(station_geometry, cuts, angle_range_deg=angle_range_deg, tilt_range_deg=0.0,
-                              psf_px=psf, order=order)
-        cuts = _relit_cuts(cuts, along, psf_px=psf, order=order)
     coarse: dict[str, Any] = {}  # the coarse search, shared by both methods (same inputs, same result)
     fine_fallback = False
     disp = math.nan
@@ -2055,7 +1956,7 @@ def _calibrate(cuts: list[_FrameCut], psf: float, track: Any, station_geometry: 
     # and tuned with (meteorspec.calfit): with the first and last lit frames' centres modelled,
     # on bench_calibration.py --n 30 --seed 4 --truth-track one of its solutions improved (event
     # 008, line max 0.75 -> 0.36 nm) and one was then flagged ambiguous (005, 1.80 nm before)
-    # (with the first order's light curve where the zeroth order's flux is missing: _relit_cuts)
+    # (with the first order's light curve where the zeroth order's flux is missing: _cuts)
     cuts = [dataclasses.replace(c, x0_px=c.x0_light_px, y0_px=c.y0_light_px) if np.isfinite(c.x0_light_px)
             else c if not np.isfinite(c.x0_linear_px)
             else dataclasses.replace(c, x0_px=c.x0_linear_px, y0_px=c.y0_linear_px) for c in cuts]

@@ -1,10 +1,9 @@
-"""Zeroth-order positions of frames whose zeroth order is saturated (calibrate._cuts, _relit_cuts).
+"""Zeroth-order positions of frames whose zeroth order is saturated (calibrate._cuts).
 
 A frame's lines sit at the light-weighted mean of its exposure's streak. Where the zeroth
 order's flux is saturated the light curve's slope there comes from the first order
-(``calibrate._first_order_slopes``): in ``_cuts`` along the station's curve, for the
-whole-spectrum fit (``_FrameCut.x0_light_px``), and in ``_relit_cuts`` along a curve that lies
-on the spectrum, for every position. The truth is the quadrature (scipy) of the emitted rate over each exposure, independent of
+(``calibrate._first_order_slopes``), for the whole-spectrum fit (``_FrameCut.x0_light_px``).
+The truth is the quadrature (scipy) of the emitted rate over each exposure, independent of
 the calibrator's linear-light-curve model.
 """
 
@@ -16,22 +15,21 @@ from types import SimpleNamespace
 import numpy as np
 from scipy import ndimage
 
-from meteorspec.calibrate import _cuts, _first_order_slopes, _relit_cuts, meteor_template
+from meteorspec.calibrate import _cuts, _first_order_slopes, meteor_template
 from test_calibrate import WIDE, _exposure_light, _FlatBackground, _Frame
 
 
-def _event(seed=3, *, t_lit=(2.0, 22.0), zeroth_saturated=slice(5, 19)):
+def _event(seed=3):
     # a meteor moving 6 px per exposure along x whose light rises and falls as a Gaussian in
-    # time (sigma 4 exposures, peak at frame 12), emitting within ``t_lit`` (exposures); frames
-    # 2-21 lit, contiguous exposures. Its zeroth order is saturated in ``zeroth_saturated`` (no
-    # flux; default frames 5-18); the brightest line core is saturated too in frames 9 and 14
-    # only (holes that the neighbouring frames do not share)
+    # time (sigma 4 exposures, peak at frame 12); frames 2-21 lit, contiguous exposures. Its
+    # zeroth order is saturated in frames 5-18 (no flux); the brightest line core is saturated
+    # too in frames 9 and 14 only (holes that the neighbouring frames do not share)
     n, lit = 24, np.arange(2, 22)
     t_mid = np.arange(n) + 0.5
     v_px = 6.0
 
     def rate(t):
-        return math.exp(-0.5 * ((t - 12.5) / 4.0) ** 2) if t_lit[0] <= t <= t_lit[1] else 0.0
+        return math.exp(-0.5 * ((t - 12.5) / 4.0) ** 2) if 2.0 <= t <= 22.0 else 0.0
 
     energy = np.zeros(n)
     centre = np.full(n, np.nan)
@@ -40,7 +38,7 @@ def _event(seed=3, *, t_lit=(2.0, 22.0), zeroth_saturated=slice(5, 19)):
     x = np.where(np.isin(np.arange(n), lit), 60.0 + v_px * t_mid, np.nan)
     y = np.where(np.isfinite(x), 150.0, np.nan)
     flux = energy.copy()
-    flux[zeroth_saturated] = np.nan
+    flux[5:19] = np.nan
     fps = 25.0
 
     def position(t_s):
@@ -108,36 +106,3 @@ def test_first_order_slopes_ignore_holes_of_saturated_lines():
         # frames 8-10 and 13-15 compare the light of frames with saturated line cores (9, 14) only
         # on the wavelengths all three can use; 0.02 in g is 0.002 of the streak (noise ~0.005)
         assert abs(g - truth) < 0.02, (k, g, truth)
-
-
-def test_cuts_placed_again_along_a_curve_on_the_spectrum():
-    # The light rises from zero 0.4 into frame 2 and stops 0.7 into frame 21; the zeroth order
-    # is saturated in every frame between (its flux measured in the first and last only). A
-    # station angle 4 deg off puts the first-order band 10-15 px beside the spectrum, where its
-    # light ratios are not the light curve's
-    frames, track, energy, true_x = _event(t_lit=(2.4, 21.7), zeroth_saturated=slice(3, 21))
-    off = WIDE.with_grating(dispersion_angle_deg=WIDE.grating.dispersion_angle_deg + 4.0)
-    cuts = _cuts(frames, _FlatBackground(1.0), track, max_frames=40, geometry=off)
-    before = {c.position: c for c in cuts}
-    after = {c.position: c for c in _relit_cuts(cuts, WIDE, psf_px=1.3, order=1)}
-    inner = range(3, 21)
-    # the station's band leaves frames a tenth of a pixel and more from their light
-    assert max(abs(before[k].x0_light_px - true_x[k]) for k in inner) > 0.1
-    # along the spectrum's own curve every frame between is within 0.06 px of its light in all
-    # three positions, 0.6 nm at 10 nm/px. The slope is a central difference of exposure
-    # energies: its second-order error is largest beside a partly lit frame, whose light is not
-    # on the same smooth curve (frames 3 and 20: 0.05 and 0.04 px; the others within 0.01)
-    for k in inner:
-        for name in ("x0_px", "x0_linear_px", "x0_light_px"):
-            assert abs(getattr(after[k], name) - true_x[k]) < 0.06, (k, name, getattr(after[k], name), true_x[k])
-    # the first and last lit frames: the modelled centre of a rise from zero (_edge_centre_frac)
-    # from the first order's light, in x0_px. This light curve starts and stops with a step (a
-    # Gaussian cut off), which the model's power-law rise does not have: 0.4 px (0.07
-    # exposures) is asked, and that the first order's light moves the centre at least half of
-    # the way from where the zeroth order's fluxes (interpolated in log across the saturated
-    # frames) had left it (1.2 and 0.9 px)
-    for k in (2, 21):
-        assert abs(after[k].x0_px - true_x[k]) < 0.4, (k, after[k].x0_px, true_x[k])
-        assert abs(after[k].x0_px - true_x[k]) < 0.5 * abs(before[k].x0_px - true_x[k])
-        # the whole-spectrum fit keeps the linear light curve's centre there (_relit_cuts)
-        assert after[k].x0_light_px == before[k].x0_light_px
